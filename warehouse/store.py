@@ -1,0 +1,287 @@
+"""The warehouse file: opening it, its DDL and migrations, and the unit-of-work rules.
+
+Concurrency model (DuckDB 2: while one process has the file open read-write no other process can open it at
+all): **no connection outlives a unit of work**. Every caller opens with :func:`open_warehouse`, works, and
+closes. Opening retries with backoff while another process holds the lock and, when the wait runs out,
+raises :class:`WarehouseLockedError` naming the holding process. Inside one process use one cursor per
+thread (``con.cursor()``); never share a connection across threads.
+
+Only ``warehouse/`` holds SQL text; values are always bound parameters.
+"""
+
+from __future__ import annotations
+
+import os
+import re
+import time
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
+from pathlib import Path
+
+import duckdb
+
+from warehouse import schema
+from warehouse.errors import SchemaVersionError, WarehouseError, WarehouseLockedError, WarehouseNotFoundError
+
+DEFAULT_DB = "lotline.duckdb"
+"""Warehouse path when neither ``--db`` nor ``LOTLINE_DB`` is given."""
+DEFAULT_WAIT_S = 60.0
+"""How long opening waits for another process to release the file."""
+ENV_DB = "LOTLINE_DB"
+
+_DUCKDB_TYPES = {
+    schema.STRING: "VARCHAR",
+    schema.INT64: "BIGINT",
+    schema.FLOAT64: "DOUBLE",
+    schema.TIMESTAMP: "TIMESTAMP",
+    schema.BOOL: "BOOLEAN",
+}
+
+_LOCK_RE = re.compile(r"Conflicting lock is held in (?P<proc>.*?) \(PID (?P<pid>\d+)\)")
+
+
+def resolve_db_path(path: str | os.PathLike[str] | None) -> Path:
+    """The warehouse path: the explicit one, else ``$LOTLINE_DB``, else ``./lotline.duckdb``."""
+    if path:
+        return Path(path)
+    return Path(os.environ.get(ENV_DB) or DEFAULT_DB)
+
+
+def create_table_sql(t: schema.Table) -> str:
+    """``CREATE TABLE`` text for a declared table (no primary key: see DESIGN, big facts carry no index)."""
+    cols = []
+    for c in t.columns:
+        col = f'"{c.name}" {_DUCKDB_TYPES[c.dtype]}'
+        if not c.nullable:
+            col += " NOT NULL"
+        cols.append(col)
+    return f'CREATE TABLE IF NOT EXISTS "{t.name}" (\n  ' + ",\n  ".join(cols) + "\n)"
+
+
+# ------------------------------------------------------------------------------------------ migrations
+# Each migration is (version, note, function). A function receives an open connection inside a
+# transaction. Append new migrations at the end of MIGRATIONS; never edit one that has shipped.
+
+Migration = tuple[int, str, Callable[[duckdb.DuckDBPyConnection], None]]
+
+
+def _m1_core(con: duckdb.DuckDBPyConnection) -> None:
+    for t in (*schema.FACT_TABLES, *schema.OPERATION_TABLES):
+        con.execute(create_table_sql(t))
+    con.execute("CREATE SEQUENCE IF NOT EXISTS file_id_seq START 1")
+    con.execute("INSERT INTO meta VALUES ('data_version', '0')")
+
+
+def _m2_monitoring(con: duckdb.DuckDBPyConnection) -> None:
+    for t in schema.MONITORING_TABLES:
+        con.execute(create_table_sql(t))
+    for seq in ("series_id_seq", "signal_id_seq", "excursion_id_seq", "audit_id_seq", "run_id_seq"):
+        con.execute(f"CREATE SEQUENCE IF NOT EXISTS {seq} START 1")
+
+
+MIGRATIONS: list[Migration] = [
+    (1, "canonical fact and operation tables", _m1_core),
+    (2, "monitoring plan, series, control limits, signals, excursions, audit, evaluation state", _m2_monitoring),
+]
+
+
+def latest_version() -> int:
+    """The schema version this lotline writes."""
+    return max(v for v, _, _ in MIGRATIONS)
+
+
+def _current_version(con: duckdb.DuckDBPyConnection) -> int:
+    exists = con.execute(
+        "SELECT count(*) FROM information_schema.tables WHERE table_name = 'schema_version'"
+    ).fetchall()[0][0]
+    if not exists:
+        return 0
+    row = con.execute("SELECT max(version) FROM schema_version").fetchall()[0][0]
+    return int(row or 0)
+
+
+def migrate(con: duckdb.DuckDBPyConnection, path: Path) -> list[int]:
+    """Bring the file to :func:`latest_version`; return the versions applied. Refuses a newer file."""
+    current = _current_version(con)
+    latest = latest_version()
+    if current > latest:
+        raise SchemaVersionError(
+            "warehouse was written by a newer lotline",
+            path=str(path),
+            found=f"schema version {current}",
+            expected=f"at most {latest}",
+            fix="upgrade lotline (pip install -U lotline) or open a copy made by this version",
+        )
+    applied = []
+    for version, note, fn in MIGRATIONS:
+        if version <= current:
+            continue
+        with transaction(con):
+            fn(con)
+            con.execute(
+                "INSERT INTO schema_version VALUES (?, now()::TIMESTAMP, ?)",
+                [version, note],
+            )
+        applied.append(version)
+    return applied
+
+
+# ------------------------------------------------------------------------------------------ opening
+
+
+@contextmanager
+def open_warehouse(
+    path: str | os.PathLike[str] | None = None,
+    *,
+    read_only: bool = False,
+    create: bool = False,
+    wait_s: float = DEFAULT_WAIT_S,
+) -> Iterator[duckdb.DuckDBPyConnection]:
+    """Open the warehouse for one unit of work and close it afterwards.
+
+    A read-write open migrates an older file; ``create=True`` also makes a new one. A read-only open never
+    creates or migrates. While another process holds the file, retries with backoff for up to ``wait_s``.
+
+    Example:
+        >>> with open_warehouse("lotline.duckdb", create=True) as con:  # doctest: +SKIP
+        ...     con.sql("SELECT count(*) FROM measurements").fetchall()
+    """
+    p = resolve_db_path(path)
+    if not p.exists() and not create:
+        raise WarehouseNotFoundError(
+            "warehouse not found",
+            path=str(p),
+            fix="run `lotline init` or `lotline ingest PATH` first, or pass --db to the right file",
+        )
+    if create:
+        p.parent.mkdir(parents=True, exist_ok=True)
+    con = _connect_with_retry(p, read_only=read_only, wait_s=wait_s)
+    try:
+        if not read_only:
+            migrate(con, p)
+        else:
+            _check_readable(con, p)
+        yield con
+    finally:
+        con.close()
+
+
+def _check_readable(con: duckdb.DuckDBPyConnection, path: Path) -> None:
+    current = _current_version(con)
+    if current > latest_version():
+        raise SchemaVersionError(
+            "warehouse was written by a newer lotline",
+            path=str(path),
+            found=f"schema version {current}",
+            expected=f"at most {latest_version()}",
+            fix="upgrade lotline",
+        )
+    if current < latest_version():
+        raise WarehouseError(
+            "warehouse needs a migration before it can be read",
+            path=str(path),
+            found=f"schema version {current}",
+            expected=f"{latest_version()}",
+            fix="run `lotline init` once (it migrates in place)",
+        )
+
+
+def _connect_with_retry(path: Path, *, read_only: bool, wait_s: float) -> duckdb.DuckDBPyConnection:
+    deadline = time.monotonic() + wait_s
+    delay = 0.02
+    while True:
+        try:
+            return duckdb.connect(str(path), read_only=read_only)
+        except duckdb.IOException as exc:
+            text = str(exc)
+            if "lock" not in text.lower():
+                raise WarehouseError(
+                    "cannot open warehouse", path=str(path), details=text.splitlines()[0],
+                    fix="check that the file is a lotline warehouse (a DuckDB file) and readable",
+                ) from exc
+            if time.monotonic() + delay > deadline:
+                m = _LOCK_RE.search(text)
+                holder = f"PID {m.group('pid')} ({m.group('proc')})" if m else "another process"
+                raise WarehouseLockedError(
+                    f"warehouse is busy: {holder} held it for the whole {wait_s:g} s wait",
+                    path=str(path),
+                    fix=(
+                        "wait for that process to finish (an ingest or evaluate run), or stop it; "
+                        "a long wait can be allowed with --wait SECONDS"
+                    ),
+                ) from exc
+            time.sleep(delay)
+            delay = min(delay * 2, 0.5)
+        except duckdb.Error as exc:
+            raise WarehouseError(
+                "cannot open warehouse", path=str(path), details=str(exc).splitlines()[0],
+                fix="check that the file is a lotline warehouse (a DuckDB file) made by DuckDB 2",
+            ) from exc
+
+
+# ------------------------------------------------------------------------------------------ writing
+
+
+@contextmanager
+def transaction(con: duckdb.DuckDBPyConnection) -> Iterator[duckdb.DuckDBPyConnection]:
+    """One explicit transaction. On any error it rolls back and re-raises.
+
+    DuckDB 2 silently rolls back a ``COMMIT`` issued after a failed statement, so we never rely on COMMIT
+    to report an error: the exception path always issues ROLLBACK itself.
+    """
+    con.execute("BEGIN TRANSACTION")
+    try:
+        yield con
+    except BaseException:
+        try:
+            con.execute("ROLLBACK")
+        except duckdb.Error:
+            pass
+        raise
+    con.execute("COMMIT")
+
+
+def bump_data_version(con: duckdb.DuckDBPyConnection) -> int:
+    """Increase the warehouse's data version (call inside the write's transaction); return the new one."""
+    con.execute("UPDATE meta SET value = CAST(CAST(value AS BIGINT) + 1 AS VARCHAR) WHERE key = 'data_version'")
+    return int(con.execute("SELECT value FROM meta WHERE key = 'data_version'").fetchall()[0][0])
+
+
+def read_data_version(con: duckdb.DuckDBPyConnection) -> int:
+    """The data version stored in the warehouse."""
+    rows = con.execute("SELECT value FROM meta WHERE key = 'data_version'").fetchall()
+    return int(rows[0][0]) if rows else 0
+
+
+def file_stamp(path: str | os.PathLike[str] | None = None) -> tuple[int, int]:
+    """A cheap change stamp of the warehouse file (mtime in ns, size) read without opening it.
+
+    The dashboard keys its caches on this, so it reopens the file only after a write.
+    """
+    p = resolve_db_path(path)
+    stamps = []
+    for candidate in (p, p.with_name(p.name + ".wal")):
+        try:
+            st = candidate.stat()
+            stamps.append((st.st_mtime_ns, st.st_size))
+        except FileNotFoundError:
+            stamps.append((0, 0))
+    return (max(s[0] for s in stamps), sum(s[1] for s in stamps))
+
+
+def init_warehouse(path: str | os.PathLike[str] | None = None) -> dict[str, object]:
+    """Create or migrate the warehouse file; return its path, version and the migrations applied."""
+    p = resolve_db_path(path)
+    existed = p.exists()
+    with open_warehouse(p, create=True) as con:
+        version = _current_version(con)
+        rows = con.execute("SELECT version FROM schema_version ORDER BY version").fetchall()
+    return {"path": str(p), "created": not existed, "version": version, "versions": [r[0] for r in rows]}
+
+
+def table_counts(con: duckdb.DuckDBPyConnection) -> dict[str, int]:
+    """Row counts of every declared table (for summaries and tests)."""
+    out = {}
+    for t in schema.TABLES:
+        out[t.name] = int(con.execute(f'SELECT count(*) FROM "{t.name}"').fetchall()[0][0])
+    return out
