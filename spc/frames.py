@@ -1,0 +1,173 @@
+"""The column contract shared by every charting function in ``spc``.
+
+A *points frame* holds many series at once, one row per plotted point:
+
+==========  =========  ==============================================================
+column      dtype      meaning
+==========  =========  ==============================================================
+``series``  string     series key (one control chart); any hashable dtype works
+``seq``     int        order of the point; strictly increasing within a series
+``value``   float64    the plotted statistic (site value, wafer mean, defect density …)
+``center``  float64    centre line for this row (limits may change between versions)
+``sigma``   float64    sigma *of the plotted statistic* for this row (> 0)
+``n``       int        optional subgroup size / inspected area weight
+==========  =========  ==============================================================
+
+Rows of one series must be contiguous; if they are not (or ``seq`` is out of order) the functions sort
+by (series, seq) themselves, which costs time on large frames. Extra columns are allowed; functions take
+a ``passthrough`` list of column names (for example lineage ids such as ``_row``) and copy them into
+their outputs.
+
+A *signals frame* has one row per signal: ``series``, ``seq``, ``rule``, ``value`` plus the passthrough
+columns, in the order of the input points (ties broken by the order of the requested rules).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+import polars as pl
+
+SERIES = "series"
+SEQ = "seq"
+VALUE = "value"
+CENTER = "center"
+SIGMA = "sigma"
+N = "n"
+RULE = "rule"
+
+POINT_COLUMNS = (SERIES, SEQ, VALUE, CENTER, SIGMA)
+SIGNAL_COLUMNS = (SERIES, SEQ, RULE, VALUE)
+
+
+@dataclass(frozen=True)
+class Layout:
+    """A points frame in series order with the numpy arrays the vectorised kernels need."""
+
+    frame: pl.DataFrame  # sorted so that each series is contiguous and seq increases
+    value: np.ndarray  # float64
+    z: np.ndarray  # (value - center) / sigma
+    start: np.ndarray  # bool, True at the first row of each series
+    pos: np.ndarray  # int64, 0-based position of the row within its series
+    block: np.ndarray  # int64, 0-based series number (in frame order)
+    n_series: int
+
+
+def check_columns(frame: pl.DataFrame, required: Sequence[str]) -> None:
+    """Raise ValueError naming missing columns and the ones that exist.
+
+    >>> check_columns(pl.DataFrame({"series": ["a"]}), ["series", "seq"])
+    Traceback (most recent call last):
+    ...
+    ValueError: points frame lacks column(s) seq. Existing columns: series.
+    """
+    missing = [c for c in required if c not in frame.columns]
+    if missing:
+        raise ValueError(
+            f"points frame lacks column(s) {', '.join(missing)}. Existing columns: {', '.join(frame.columns)}."
+        )
+
+
+def layout_points(points: pl.DataFrame, *, need_limits: bool = True) -> Layout:
+    """Validate a points frame, sort it into series order if needed, and return its `Layout`.
+
+    >>> lay = layout_points(pl.DataFrame({"series": ["b", "a", "a"], "seq": [1, 2, 1],
+    ...     "value": [1.0, 2.0, 3.0], "center": 0.0, "sigma": 1.0}))
+    >>> lay.frame["value"].to_list(), lay.pos.tolist()
+    ([3.0, 2.0, 1.0], [0, 1, 0])
+    """
+    required = POINT_COLUMNS if need_limits else (SERIES, SEQ, VALUE)
+    check_columns(points, required)
+    frame = points
+    if frame.height and not _is_laid_out(frame):
+        frame = frame.sort([SERIES, SEQ], maintain_order=True)
+        if not _is_laid_out(frame):
+            raise ValueError("points frame has repeated seq values within a series; seq must be unique.")
+    cols = [VALUE, CENTER, SIGMA] if need_limits else [VALUE]
+    for c in cols:
+        if frame[c].null_count():
+            raise ValueError(f"points frame column {c} has {frame[c].null_count()} null value(s).")
+    value = frame[VALUE].cast(pl.Float64).to_numpy()
+    if need_limits:
+        sigma = frame[SIGMA].cast(pl.Float64).to_numpy()
+        if frame.height and not np.all(sigma > 0):
+            raise ValueError("points frame column sigma must be > 0 on every row.")
+        z = (value - frame[CENTER].cast(pl.Float64).to_numpy()) / sigma
+    else:
+        z = value
+    block = frame[SERIES].rle_id().cast(pl.Int64).to_numpy() if frame.height else np.zeros(0, np.int64)
+    start = np.ones(frame.height, dtype=bool)
+    start[1:] = block[1:] != block[:-1]
+    idx = np.arange(frame.height, dtype=np.int64)
+    first = np.maximum.accumulate(np.where(start, idx, 0)) if frame.height else idx
+    n_series = int(block[-1]) + 1 if frame.height else 0
+    return Layout(frame, value, z, start, idx - first, block, n_series)
+
+
+def _is_laid_out(frame: pl.DataFrame) -> bool:
+    block = frame[SERIES].rle_id()
+    firsts = frame[SERIES].filter(block != block.shift(1, fill_value=-1))
+    if firsts.n_unique() != firsts.len():
+        return False
+    seq = frame[SEQ].to_numpy()
+    b = block.to_numpy()
+    same = b[1:] == b[:-1]
+    return bool(np.all(seq[1:][same] > seq[:-1][same]))
+
+
+def run_length(cond: np.ndarray, start: np.ndarray) -> np.ndarray:
+    """Length of the run of True values ending at each row, restarting at every series start.
+
+    >>> run_length(np.array([True, True, False, True, True]), np.array([1, 0, 0, 1, 0], bool)).tolist()
+    [1, 2, 0, 1, 2]
+    """
+    idx = np.arange(cond.size, dtype=np.int64)
+    last_break = np.where(cond, -1, idx)
+    last_break = np.where(start & cond, idx - 1, last_break)
+    return idx - np.maximum.accumulate(last_break) if cond.size else idx
+
+
+def window_count(cond: np.ndarray, pos: np.ndarray, width: int) -> np.ndarray:
+    """Number of True values among the last `width` rows of the same series (fewer at a series start).
+
+    >>> window_count(np.array([1, 1, 0, 1], bool), np.array([0, 1, 2, 3]), 3).tolist()
+    [1, 2, 2, 2]
+    """
+    idx = np.arange(cond.size, dtype=np.int64)
+    cs = np.concatenate([[0], np.cumsum(cond, dtype=np.int64)])
+    lo = np.maximum(idx + 1 - width, idx - pos)
+    return cs[idx + 1] - cs[lo]
+
+
+def gather_signals(
+    lay: Layout, hits: Sequence[tuple[str, np.ndarray]], passthrough: Sequence[str], values: dict | None = None
+) -> pl.DataFrame:
+    """Build a signals frame from (rule id, boolean mask) pairs; `values` may override the value column."""
+    check_columns(lay.frame, passthrough)
+    rows, order, names = [], [], []
+    for k, (rule, mask) in enumerate(hits):
+        ix = np.flatnonzero(mask)
+        rows.append(ix)
+        order.append(np.full(ix.size, k, dtype=np.int64))
+        names.append(rule)
+    cols = [SERIES, SEQ, *[c for c in passthrough if c not in (SERIES, SEQ, VALUE, RULE)]]
+    if not rows:
+        return _empty_signals(lay.frame, cols)
+    ix = np.concatenate(rows)
+    kk = np.concatenate(order)
+    srt = np.lexsort((kk, ix))
+    ix, kk = ix[srt], kk[srt]
+    out = lay.frame.select(cols)[ix]
+    val = np.concatenate([(values or {}).get(n, lay.value)[r] for n, r in zip(names, rows, strict=True)])[srt]
+    rule = pl.Series(RULE, np.array(names, dtype=object)[kk].astype(str) if kk.size else [], dtype=pl.String)
+    out = out.with_columns(rule, pl.Series(VALUE, val, dtype=pl.Float64))
+    return out.select([SERIES, SEQ, RULE, VALUE, *cols[2:]])
+
+
+def _empty_signals(frame: pl.DataFrame, cols: list[str]) -> pl.DataFrame:
+    out = frame.select(cols).clear()
+    return out.with_columns(pl.lit(None, pl.String).alias(RULE), pl.lit(None, pl.Float64).alias(VALUE)).select(
+        [SERIES, SEQ, RULE, VALUE, *cols[2:]]
+    )
