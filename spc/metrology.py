@@ -5,8 +5,8 @@ targets (monitor features), each measured with a few static repeats. Per tool, t
 module charts, following the check-standard approach of the NIST/SEMATECH e-Handbook chapter 2:
 
 - the daily mean: its bias to the monitor's reference value (or the tool's baseline mean) and its
-  drift, by an EWMA started at the baseline mean (z0 = mu0) with time-varying limits
-  (Montgomery, Introduction to Statistical Quality Control, EWMA chart);
+  drift, by the shared EWMA of ``spc.ewma`` started at the baseline mean (z0 = mu0) with exact
+  time-varying limits (NIST/SEMATECH e-Handbook §6.3.2.4);
 - the SD of the repeats (short-term precision) on an S chart, c4/B5/B6 computed from gamma functions;
 - the offset of the tool's daily mean to the fleet mean of that target and day, with a Welch
   interval from the repeats.
@@ -28,9 +28,10 @@ from dataclasses import dataclass
 
 import numpy as np
 import polars as pl
-from scipy import signal, stats
+from scipy import stats
 
-from .precision import s_chart_factors
+from spc.ewma import EwmaParams, evaluate_ewma
+from spc.precision import s_chart_factors
 
 __all__ = [
     "MonitorSettings",
@@ -82,21 +83,6 @@ def summarise_monitor_days(frame: pl.DataFrame) -> pl.DataFrame:
         )
         .sort([*SERIES, "day"])
     )
-
-
-def _ewma_deviation(dev: np.ndarray, group: np.ndarray, pos: np.ndarray, lam: float) -> np.ndarray:
-    """EWMA of deviations from z0 (so z0 = 0), many series at once.
-
-    Series are laid out as rows of a zero-padded matrix and filtered along time in one
-    ``scipy.signal.lfilter`` call: z_t = lam*x_t + (1-lam)*z_{t-1}. Padding sits after each series'
-    end, so it cannot reach earlier values.
-    """
-    if dev.size == 0:
-        return dev
-    mat = np.zeros((int(group.max()) + 1, int(pos.max()) + 1))
-    mat[group, pos] = dev
-    out = signal.lfilter([lam], [1.0, -(1.0 - lam)], mat, axis=1)
-    return out[group, pos]
 
 
 def estimate_fleet_offsets(daily: pl.DataFrame, *, confidence: float = 0.95) -> pl.DataFrame:
@@ -179,7 +165,6 @@ def evaluate_monitor_health(
         >>> evaluate_monitor_health(f, settings=MonitorSettings(baseline_days=2))["ewma_signal"].to_list()
         [False, False, False]
     """
-    lam, width = settings.ewma_lambda, settings.ewma_width
     daily = summarise_monitor_days(frame)
     daily = daily.with_columns(
         (pl.int_range(pl.len()).over(SERIES) + 1).cast(pl.Int64).alias("day_index"),
@@ -207,21 +192,32 @@ def evaluate_monitor_health(
         pl.coalesce("reference_nm", "baseline_mean_nm").alias("reference_nm"),
     ).with_columns((pl.col("mean_nm") - pl.col("reference_nm")).alias("bias_nm"))
 
-    dev = (daily["mean_nm"] - daily["baseline_mean_nm"]).to_numpy()
-    z = _ewma_deviation(dev, daily["_g"].to_numpy(), daily["day_index"].to_numpy() - 1, lam)
-    i = pl.col("day_index").cast(pl.Float64)
-    half = width * pl.col("sigma_day_nm") * (lam / (2.0 - lam) * (1.0 - (1.0 - lam) ** (2.0 * i))).sqrt()
-    daily = daily.with_columns(
-        (pl.Series("_z", z) + pl.col("baseline_mean_nm")).alias("ewma_nm")
-    ).with_columns(
-        (pl.col("baseline_mean_nm") - half).alias("ewma_lcl"),
-        (pl.col("baseline_mean_nm") + half).alias("ewma_ucl"),
+    # The shared EWMA kernel (spc.ewma, z0 at the centre, exact time-varying limits) on each series'
+    # daily means, centred at the baseline mean with the baseline day-to-day sigma. Series without
+    # a usable sigma (fewer than 2 baseline days, or all equal) get no EWMA.
+    usable = pl.col("sigma_day_nm").is_not_null() & (pl.col("sigma_day_nm") > 0)
+    points = daily.filter(usable).select(
+        pl.col("_g").alias("series"),
+        pl.col("day_index").alias("seq"),
+        pl.col("mean_nm").alias("value"),
+        pl.col("baseline_mean_nm").alias("center"),
+        pl.col("sigma_day_nm").alias("sigma"),
     )
+    ewma = evaluate_ewma(points, EwmaParams(lam=settings.ewma_lambda, L=settings.ewma_width)).points
+    daily = daily.join(
+        ewma.select(
+            pl.col("series").alias("_g"),
+            pl.col("seq").alias("day_index"),
+            pl.col("ewma").alias("ewma_nm"),
+            "ewma_lcl",
+            "ewma_ucl",
+            "ewma_signal",
+        ),
+        on=["_g", "day_index"],
+        how="left",
+    ).with_columns(pl.col("ewma_signal").fill_null(False))
     sig = pl.col("sigma_repeat_nm")
     daily = daily.with_columns(
-        ((pl.col("ewma_nm") > pl.col("ewma_ucl")) | (pl.col("ewma_nm") < pl.col("ewma_lcl")))
-        .fill_null(False)
-        .alias("ewma_signal"),
         (pl.col("_c4") * sig).alias("s_center"),
         (pl.col("_b5") * sig).alias("s_lcl"),
         (pl.col("_b6") * sig).alias("s_ucl"),

@@ -10,7 +10,6 @@ from scipy import stats
 
 from spc.metrology import (
     MonitorSettings,
-    _ewma_deviation,
     estimate_fleet_matching,
     estimate_fleet_offsets,
     evaluate_monitor_health,
@@ -18,12 +17,6 @@ from spc.metrology import (
 )
 
 DATA = Path(__file__).parents[1] / "data" / "tool_health"
-
-# NIST/SEMATECH e-Handbook §6.3.2.4 EWMA worked example: lambda 0.3, target 50, published EWMA (2 dp)
-NIST_EWMA_DATA = [52.0, 47.0, 53.0, 49.3, 50.1, 47.0, 51.0, 50.1, 51.2, 50.5]
-NIST_EWMA_DATA += [49.6, 47.6, 49.9, 51.3, 47.8, 51.2, 52.6, 52.4, 53.6, 52.1]
-NIST_EWMA_2DP = [50.6, 49.52, 50.56, 50.18, 50.16, 49.21, 49.75, 49.85, 50.26, 50.33]
-NIST_EWMA_2DP += [50.11, 49.36, 49.52, 50.05, 49.38, 49.92, 50.73, 51.23, 51.94, 51.99]
 
 
 def _fleet(
@@ -60,13 +53,6 @@ def _fleet(
     return pl.DataFrame(rows)
 
 
-def test_ewma_matches_nist_worked_example():
-    # NIST/SEMATECH e-Handbook §6.3.2.4: z0 = target 50, lambda = 0.3
-    x = np.asarray(NIST_EWMA_DATA) - 50.0
-    z = _ewma_deviation(x, np.zeros(x.size, dtype=int), np.arange(x.size), 0.3) + 50.0
-    assert np.round(z, 2).tolist() == NIST_EWMA_2DP
-
-
 def test_monitor_ewma_and_limits_match_textbook_loop():
     frame = _fleet(1, days=30, drift_per_day={"SEM2": 0.03})
     settings = MonitorSettings(baseline_days=15, ewma_lambda=0.2, ewma_width=2.7)
@@ -77,7 +63,7 @@ def test_monitor_ewma_and_limits_match_textbook_loop():
         means = part["mean_nm"].to_numpy()
         mu0, sigma = means[:15].mean(), means[:15].std(ddof=1)
         z, prev, lcl, ucl = [], mu0, [], []
-        for i, m in enumerate(means, start=1):  # Montgomery ISQC EWMA recursion and exact limits
+        for i, m in enumerate(means, start=1):  # EWMA recursion, exact limits (NIST e-Handbook §6.3.2.4)
             prev = 0.2 * m + 0.8 * prev
             z.append(prev)
             half = 2.7 * sigma * np.sqrt(0.2 / 1.8 * (1 - 0.8 ** (2 * i)))
@@ -133,6 +119,14 @@ def test_monitor_bias_uses_reference_when_given_else_baseline():
     np.testing.assert_allclose(
         t90["bias_nm"].to_numpy(), (t90["mean_nm"] - t90["baseline_mean_nm"]).to_numpy()
     )
+
+
+def test_monitor_single_baseline_day_leaves_ewma_empty():
+    frame = _fleet(12, days=3, tools=("SEM1",), targets={"T45": 45.0})
+    got = evaluate_monitor_health(frame, settings=MonitorSettings(baseline_days=1))
+    assert got["ewma_nm"].null_count() == 3
+    assert not got["ewma_signal"].any()
+    assert got["s_ucl"].null_count() == 0  # the S chart needs only the repeats of one day
 
 
 def test_monitor_accepts_measured_at_timestamps():
