@@ -68,6 +68,254 @@ def schema_cmd(markdown: bool):
 # --- spc commands ---
 
 
+def _spc_floats(text: str, what: str, count: int | None = None) -> list[float]:
+    """Parse "a,b,..." into floats, or raise a usage error naming the option."""
+    try:
+        vals = [float(t) for t in text.split(",") if t.strip()]
+    except ValueError:
+        raise click.BadParameter(f"{what} expects numbers separated by commas, found {text!r}.") from None
+    if count is not None and len(vals) != count:
+        raise click.BadParameter(f"{what} expects {count} comma-separated numbers, found {text!r}.")
+    return vals
+
+
+def _spc_shifts(shift: tuple[str, ...]) -> list[float]:
+    return [v for s in shift for v in _spc_floats(s, "--shift")] or [0.0, 0.5, 1.0, 2.0, 3.0]
+
+
+def _spc_print_arl(results, as_json: bool, width: tuple[str, float] | None, target: float | None) -> None:
+    if as_json:
+        rows = []
+        for r in results:
+            row = {"shift": r.shift, "arl": r.arl}
+            if r.method == "simulation":
+                row["se"] = r.se
+            if width:
+                row[width[0]] = width[1]
+            rows.append(row)
+        click.echo(json.dumps(rows))
+        return
+    if width:
+        click.echo(f"{width[0]} = {width[1]:.4f} for in-control ARL {target:g}")
+    sim = any(r.method == "simulation" for r in results)
+    click.echo(f"{'shift':>6}  {'ARL':>10}" + (f"  {'SE':>8}" if sim else ""))
+    for r in results:
+        click.echo(f"{r.shift:>6.2f}  {r.arl:>10.2f}" + (f"  {r.se:>8.2f}" if sim else ""))
+
+
+@cli.group("arl")
+def arl_group():
+    """Average run length of a chart design: false-alarm cost and speed at detecting a mean shift.
+
+    Shifts are in sigma units of the plotted statistic; all ARLs are two-sided.
+
+    Example: lotline arl shewhart --rules we1,we2,we3,we4 --shift 0,1
+    """
+
+
+@arl_group.command("shewhart")
+@click.option("--rules", default="we1", show_default=True, help="Comma-separated rule ids (we1-we4, nelson1-nelson8).")
+@click.option("--shift", multiple=True, help="Mean shift(s) in sigma; repeat or separate by commas.")
+@click.option("--target-arl", type=float, default=None, help="Solve the beyond-limits width for this in-control ARL.")
+@click.option("--seed", type=int, default=0, show_default=True, help="Seed for rule sets that must be simulated.")
+@click.option("--json", "as_json", is_flag=True, help='Print [{"shift": S, "arl": A}, ...].')
+def arl_shewhart_cmd(rules: str, shift, target_arl, seed: int, as_json: bool):
+    """ARL of a Shewhart chart with run rules (exact Markov chain; nelson3/nelson4 are simulated).
+
+    Example: lotline arl shewhart --rules we1 --shift 0 --shift 1.5
+    """
+    from dataclasses import replace
+
+    from spc import arl
+    from spc.rules import BeyondLimits, rule_params
+
+    try:
+        params = [rule_params(r.strip()) for r in rules.split(",") if r.strip()]
+    except ValueError as exc:
+        raise click.BadParameter(str(exc), param_hint="--rules") from None
+    width = None
+    if target_arl is not None:
+        try:
+            k = arl.solve_shewhart_width(params, target_arl)
+        except ValueError as exc:
+            raise click.BadParameter(str(exc), param_hint="--target-arl") from None
+        params = [replace(p, k=k) if isinstance(p, BeyondLimits) else p for p in params]
+        width = ("k", k)
+    _spc_print_arl(arl.shewhart_arl(params, _spc_shifts(shift), seed=seed), as_json, width, target_arl)
+
+
+@arl_group.command("ewma")
+@click.option("--lambda", "lam", type=float, required=True, help="EWMA weight, 0 < lambda <= 1.")
+@click.option("--width", "L", type=float, default=None, help="Limit width L in sigma (asymptotic limits).")
+@click.option("--shift", multiple=True, help="Mean shift(s) in sigma; repeat or separate by commas.")
+@click.option("--target-arl", type=float, default=None, help="Solve L for this in-control ARL.")
+@click.option("--json", "as_json", is_flag=True, help='Print [{"shift": S, "arl": A}, ...].')
+def arl_ewma_cmd(lam: float, L, shift, target_arl, as_json: bool):
+    """ARL of a two-sided EWMA chart (Markov chain after Lucas & Saccucci 1990).
+
+    Example: lotline arl ewma --lambda 0.1 --target-arl 500 --shift 0,0.5,1
+    """
+    from spc import arl
+
+    if (L is None) == (target_arl is None):
+        raise click.UsageError("give exactly one of --width and --target-arl.")
+    if not 0 < lam <= 1:
+        raise click.BadParameter(f"must be in (0, 1], found {lam}.", param_hint="--lambda")
+    width = None
+    if target_arl is not None:
+        try:
+            L = arl.solve_ewma_width(lam, target_arl)
+        except ValueError as exc:
+            raise click.BadParameter(str(exc), param_hint="--target-arl") from None
+        width = ("L", L)
+    _spc_print_arl(arl.ewma_arl(lam, L, _spc_shifts(shift)), as_json, width, target_arl)
+
+
+@arl_group.command("cusum")
+@click.option("--k", "k", type=float, required=True, help="Reference value k in sigma.")
+@click.option("--h", "h", type=float, default=None, help="Decision interval h in sigma.")
+@click.option("--shift", multiple=True, help="Mean shift(s) in sigma; repeat or separate by commas.")
+@click.option("--target-arl", type=float, default=None, help="Solve h for this in-control ARL.")
+@click.option("--json", "as_json", is_flag=True, help='Print [{"shift": S, "arl": A}, ...].')
+def arl_cusum_cmd(k: float, h, shift, target_arl, as_json: bool):
+    """ARL of a two-sided tabular CUSUM (Markov chain after Brook & Evans 1972).
+
+    Example: lotline arl cusum --k 0.5 --h 5 --shift 0,0.5,1
+    """
+    from spc import arl
+
+    if (h is None) == (target_arl is None):
+        raise click.UsageError("give exactly one of --h and --target-arl.")
+    width = None
+    if target_arl is not None:
+        try:
+            h = arl.solve_cusum_h(k, target_arl)
+        except ValueError as exc:
+            raise click.BadParameter(str(exc), param_hint="--target-arl") from None
+        width = ("h", h)
+    _spc_print_arl(arl.cusum_arl(k, h, _spc_shifts(shift)), as_json, width, target_arl)
+
+
+@cli.command("flag")
+@click.argument("file", type=click.Path(exists=True, dir_okay=False))
+@click.option("--value", "value_col", required=True, help="Column holding the plotted values.")
+@click.option("--series", "series_col", default=None, help="Column that splits the file into series.")
+@click.option("--order", "order_col", default=None, help="Column giving the order within a series (default: file order).")
+@click.option("--center", type=float, required=True, help="Centre line, in data units.")
+@click.option("--sigma", type=float, required=True, help="Sigma of the plotted value, in data units.")
+@click.option("--rules", default=None, help="Comma-separated rule ids (default we1 unless --ewma/--cusum given).")
+@click.option("--ewma", "ewma_opt", default=None, metavar="LAMBDA,L", help="Add an EWMA chart.")
+@click.option("--cusum", "cusum_opt", default=None, metavar="K,H", help="Add a tabular CUSUM (k, h in sigma).")
+@click.option("--ewma-limits", type=click.Choice(["exact", "asymptotic"]), default="exact", show_default=True,
+              help="EWMA limits: exact time-varying, or steady state.")
+@click.option("--json", "as_json", is_flag=True, help="Print signals as a JSON list.")
+@click.option("--csv", "as_csv", is_flag=True, help="Print signals as CSV.")
+def flag_cmd(file, value_col, series_col, order_col, center, sigma, rules, ewma_opt, cusum_opt, ewma_limits,
+             as_json, as_csv):
+    """Check a CSV of points against run rules, EWMA and CUSUM; print one row per signal.
+
+    Prints series, index (1-based within the series), order, rule and statistic (the value for run
+    rules, the EWMA in data units, the CUSUM sum in sigma units). EWMA starts at the centre; CUSUM starts
+    at 0 and restarts after a signal. Exit code 0 when the check ran (signals or not), 1 for a bad file,
+    2 for bad options. Signals advise; the fab's OCAP and qualified engineers decide.
+
+    Example: lotline flag cd.csv --value cd_nm --series tool --center 45 --sigma 0.8 --rules we1,we2 --ewma 0.2,2.86
+    """
+    import polars as pl
+
+    from spc.cusum import CusumParams
+    from spc.ewma import EwmaParams
+    from spc.rules import rule_params
+    from spc.signals import evaluate_signals
+    from warehouse.errors import IngestError
+
+    if as_json and as_csv:
+        raise click.UsageError("give at most one of --json and --csv.")
+    if not sigma > 0:
+        raise click.BadParameter(f"must be > 0, found {sigma}.", param_hint="--sigma")
+    ewma = cusum = None
+    if ewma_opt:
+        lam, L = _spc_floats(ewma_opt, "--ewma", 2)
+        try:
+            ewma = EwmaParams(lam=lam, L=L, limits=ewma_limits)
+        except ValueError as exc:
+            raise click.BadParameter(str(exc), param_hint="--ewma") from None
+    if cusum_opt:
+        k, h = _spc_floats(cusum_opt, "--cusum", 2)
+        cusum = CusumParams(k=k, h=h)
+    if rules is None:
+        rules = "" if (ewma or cusum) else "we1"
+    try:
+        rule_list = [rule_params(r.strip()) for r in rules.split(",") if r.strip()]
+    except ValueError as exc:
+        raise click.BadParameter(str(exc), param_hint="--rules") from None
+    try:
+        points = _spc_read_points(file, value_col, series_col, order_col, center, sigma)
+    except IngestError as exc:
+        fail(exc)
+    out = evaluate_signals(points, rule_list, ewma=ewma, cusum=cusum, passthrough=["_index", "_order"])
+    out = out.select(pl.col("series"), pl.col("_index").alias("index"), pl.col("_order").alias("order"),
+                     pl.col("rule"), pl.col("value").alias("statistic"))
+    if as_json:
+        click.echo(json.dumps(out.to_dicts()))
+    elif as_csv:
+        click.echo(out.write_csv(), nl=False)
+    else:
+        click.echo(f"{'series':<12} {'index':>7} {'order':<20} {'rule':<9} statistic")
+        for s, i, o, r, v in out.iter_rows():
+            click.echo(f"{s:<12} {i:>7} {o:<20} {r:<9} {v:.6g}")
+
+
+def _spc_read_points(path, value_col, series_col, order_col, center, sigma):
+    """Read the flag command's CSV into the spc points frame; IngestError names file, line and column."""
+    import polars as pl
+
+    from warehouse.errors import IngestError
+
+    try:
+        header = pl.read_csv(path, n_rows=0, infer_schema=False).columns
+    except (pl.exceptions.PolarsError, OSError) as exc:
+        raise IngestError("cannot read the file as CSV", path=path, details=str(exc).splitlines()[0],
+                          fix="check that it is a comma-separated text file with a header row") from None
+    wanted = [c for c in (value_col, series_col, order_col) if c is not None]
+    for c in wanted:
+        if c not in header:
+            raise IngestError(f'header lacks column "{c}"', path=path, line=1,
+                              details=f"Found: {', '.join(header)}", fix="name an existing column")
+    try:
+        raw = pl.read_csv(path, columns=list(dict.fromkeys(wanted)), infer_schema=False)
+    except pl.exceptions.PolarsError as exc:
+        raise IngestError("cannot read the file as CSV", path=path, details=str(exc).splitlines()[0],
+                          fix="check the quoting and the number of fields per line") from None
+    raw = raw.with_row_index("_line", offset=2)  # line 1 is the header
+    value = raw[value_col].str.strip_chars().cast(pl.Float64, strict=False)
+    bad = raw.filter(value.is_null() | ~value.is_finite())
+    if bad.height:
+        line, text = bad["_line"][0], bad[value_col][0]
+        raise IngestError(f'column "{value_col}" is not a number', path=path, line=int(line),
+                          column=header.index(value_col) + 1, found=text if text is not None else "",
+                          expected="a finite number", fix=f"correct the value, or remove the line ({bad.height} bad in all)")
+    frame = raw.select(
+        pl.col(series_col).fill_null("") if series_col else pl.lit("all").alias("series"),
+        value.alias("value"), pl.col("_line"),
+        (pl.col(order_col) if order_col else pl.col("_line") - 1).cast(pl.String).alias("_order"),
+    ).rename({series_col: "series"} if series_col and series_col != "series" else {})
+    if order_col:
+        num = raw[order_col].cast(pl.Float64, strict=False)
+        key = num if num.null_count() == raw[order_col].null_count() else raw[order_col]
+        frame = frame.with_columns(key.alias("_key")).sort(["series", "_key"], maintain_order=True)
+        dup = frame.filter(pl.struct("series", "_key").is_duplicated())
+        if dup.height:
+            raise IngestError(f'column "{order_col}" repeats an order value within series "{dup["series"][0]}"',
+                              path=path, line=int(dup["_line"].min()), column=header.index(order_col) + 1,
+                              found=dup["_order"][0], expected="unique values per series",
+                              fix="drop the duplicate line or split the series with --series")
+    frame = frame.with_columns(
+        (pl.int_range(pl.len()).over("series") + 1).alias("_index"), pl.lit(center).alias("center"),
+        pl.lit(sigma).alias("sigma"))
+    return frame.with_columns(pl.col("_index").alias("seq"))
+
+
 # --- monitoring commands ---
 
 
