@@ -439,3 +439,135 @@ WHERE (?::VARCHAR IS NULL OR x.lot_id = ?)
 ORDER BY x.superseded_at DESC, x.file_id DESC LIMIT ?
 """
     return _frame(con, sql, [lot_id, lot_id, limit])
+
+
+# ================================================================================ dashboard additions
+# Read functions the dashboard pages need beyond the ones above (same rules: bound parameters only,
+# documented columns, empty frame when nothing matches).
+
+
+def data_time_range(con: Con) -> pl.DataFrame:
+    """The time span of the current facts, so views can anchor their windows on the newest data.
+
+    Columns: first_at, last_at (NULL when the warehouse holds no facts).
+    """
+    sql = """
+SELECT min(t0) AS first_at, max(t1) AS last_at FROM (
+    SELECT min(measured_at) AS t0, max(measured_at) AS t1 FROM measurements WHERE _superseded_by IS NULL
+    UNION ALL
+    SELECT min(inspected_at), max(inspected_at) FROM inspections WHERE _superseded_by IS NULL
+)
+"""
+    return _frame(con, sql)
+
+
+def ooc_by_tool_layer(
+    con: Con,
+    *,
+    start: date | datetime | None = None,
+    end: date | datetime | None = None,
+    tool_key: str = "process_tool",
+) -> pl.DataFrame:
+    """Out-of-control counts on the overview grid: standing signals per tool and layer in a window.
+
+    Counts signals whose point time is in [start, end); ``tool_key`` as in
+    :func:`excursions_by_tool_layer_day` (series not split by it count under '(all)').
+
+    Columns: tool, layer, signals, points (distinct signalled points), lots, excursions.
+    """
+    if tool_key not in ("process_tool", "chamber", "metrology_tool", "product"):
+        raise ValueError(f"tool_key {tool_key!r} is not a split column; use process_tool, chamber or metrology_tool")
+    sql = f"""
+SELECT coalesce(s.{tool_key}, '(all)') AS tool, s.layer,
+       count(*) AS signals, count(DISTINCT g.series_id || '|' || g.point_key) AS points,
+       count(DISTINCT g.lot_id) AS lots, count(DISTINCT g.excursion_id) AS excursions
+FROM signals g JOIN chart_series s USING (series_id)
+WHERE g.withdrawn_at IS NULL
+  AND (?::TIMESTAMP IS NULL OR g.point_at >= ?::TIMESTAMP)
+  AND (?::TIMESTAMP IS NULL OR g.point_at < ?::TIMESTAMP)
+GROUP BY ALL
+ORDER BY tool, s.layer
+"""
+    a, b = _ts(start), _ts(end)
+    return _frame(con, sql, [a, a, b, b])
+
+
+def series_plan(con: Con, *, series_id: int) -> pl.DataFrame:
+    """The plan entry (in the plan in force) a series belongs to: what is charted and which rules apply.
+
+    Columns: series_id, chart, plan_version, statistic, chart_type, params_json, rules_json, baseline_json,
+    severity, spec_check, step, stage, sample_kind.
+    """
+    sql = """
+SELECT s.series_id, p.chart, p.plan_version, p.statistic, p.chart_type, p.params_json, p.rules_json,
+       p.baseline_json, p.severity, p.spec_check, p.step, p.stage, p.sample_kind
+FROM chart_series s
+JOIN chart_plan p ON p.chart = s.chart AND p.plan_version = (SELECT max(plan_version) FROM plans)
+WHERE s.series_id = ?
+"""
+    return _frame(con, sql, [series_id])
+
+
+def series_spec(con: Con, *, series_id: int, at: date | datetime | None = None) -> pl.DataFrame:
+    """Spec limits in force at ``at`` (default: now) for a series' layer, parameter and product.
+
+    A row for the series' own product wins over a '*' row. Columns: lsl, target, usl, unit, product,
+    effective_from, effective_to (zero rows when no spec is stored).
+    """
+    t = _ts(at) or datetime.now(UTC).replace(tzinfo=None)
+    sql = """
+SELECT l.lsl, l.target, l.usl, l.unit, l.product, l.effective_from, l.effective_to
+FROM spec_limits l JOIN chart_series s ON l.layer = s.layer AND l.parameter = s.parameter
+WHERE s.series_id = ? AND l._superseded_by IS NULL
+  AND (l.product = '*' OR l.product = s.product OR s.product IS NULL)
+  AND l.effective_from <= ? AND (l.effective_to IS NULL OR l.effective_to > ?)
+ORDER BY (l.product = '*'), l.effective_from DESC
+LIMIT 1
+"""
+    return _frame(con, sql, [series_id, t, t])
+
+
+def lot_excursions(con: Con, *, lot_id: str) -> pl.DataFrame:
+    """Excursions with a standing or withdrawn signal on a point of this lot, newest first.
+
+    Columns: as :func:`list_excursions`.
+    """
+    sql = (
+        _EXCURSION_SELECT
+        + """
+WHERE e.excursion_id IN (SELECT excursion_id FROM signals WHERE lot_id = ? AND excursion_id IS NOT NULL)
+ORDER BY e.last_at DESC, e.excursion_id DESC
+"""
+    )
+    return _frame(con, sql, [lot_id])
+
+
+def excursion_population_history(con: Con, *, excursion_id: int, days_before: int = 14) -> pl.DataFrame:
+    """Process history of the lots around one excursion: the input of a commonality analysis.
+
+    The population is every lot measured on the excursion's layer and parameter from ``days_before`` days
+    before its first signalled point to one day after its last; ``affected`` marks the lots with a standing
+    signal in the excursion.
+
+    Columns: lot_id, affected (bool), step, step_seq, process_tool, chamber, recipe, started_at.
+    """
+    sql = """
+WITH x AS (
+    SELECT e.first_at, e.last_at, s.layer, s.parameter
+    FROM excursions e JOIN chart_series s USING (series_id) WHERE e.excursion_id = ?
+), hit AS (
+    SELECT DISTINCT lot_id FROM signals WHERE excursion_id = ? AND withdrawn_at IS NULL
+), pop AS (
+    SELECT DISTINCT m.lot_id FROM measurements m, x
+    WHERE m.layer = x.layer AND m.parameter = x.parameter AND m._superseded_by IS NULL
+      AND m.measured_at >= x.first_at - to_days(CAST(? AS INTEGER))
+      AND m.measured_at <= x.last_at + INTERVAL 1 DAY
+    UNION SELECT lot_id FROM hit
+)
+SELECT h.lot_id, h.lot_id IN (SELECT lot_id FROM hit) AS affected, h.step, h.step_seq, h.process_tool,
+       h.chamber, h.recipe, h.started_at
+FROM process_history h JOIN pop USING (lot_id)
+WHERE h._superseded_by IS NULL
+ORDER BY h.lot_id, h.started_at, h.step
+"""
+    return _frame(con, sql, [excursion_id, excursion_id, days_before])

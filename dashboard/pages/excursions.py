@@ -1,0 +1,141 @@
+"""Excursions: the list with filters, one excursion's signals and audit history, and the disposition form
+(state, classification, cause, action, comment) that writes through the warehouse."""
+
+from __future__ import annotations
+
+import json
+
+import polars as pl
+import streamlit as st
+
+from dashboard import data, widgets
+
+STATES = ("open", "acknowledged", "closed", "all")
+SEVERITIES = ("all", "critical", "high", "medium", "low")
+CLASSIFICATIONS = ("real", "measurement", "false_alarm")
+CAUSES = (
+    "",
+    "process_tool",
+    "chamber",
+    "recipe",
+    "metrology",
+    "material",
+    "mask",
+    "handling",
+    "unknown",
+    "other",
+)
+
+
+def _filters(frame: pl.DataFrame) -> pl.DataFrame:
+    c1, c2, c3, c4 = st.columns(4)
+    state = widgets.choice("State", STATES, key="state", default="open", container=c1)
+    severity = widgets.choice("Severity", SEVERITIES, key="severity", default="all", container=c2)
+    layers = ["all", *sorted({v for v in frame["layer"].to_list() if v is not None})]
+    layer = widgets.choice("Layer", layers, key="layer", default="all", container=c3)
+    charts_ = ["all", *sorted(set(frame["chart"].to_list()))]
+    chart = widgets.choice("Plan entry", charts_, key="chart", default="all", container=c4)
+    if state != "all":
+        frame = frame.filter(pl.col("state") == state)
+    if severity != "all":
+        frame = frame.filter(pl.col("severity") == severity)
+    if layer != "all":
+        frame = frame.filter(pl.col("layer") == layer)
+    if chart != "all":
+        frame = frame.filter(pl.col("chart") == chart)
+    return frame
+
+
+def _form(detail: dict, author) -> None:
+    st.subheader("Record a disposition")
+    widgets.caution("disposition")
+    lots = json.loads(detail["lots_json"] or "[]")
+    with st.form("disposition", clear_on_submit=True):
+        st.text(f"Author: {author.label}")
+        c1, c2, c3 = st.columns(3)
+        states = list(STATES[:3])
+        to_state = c1.selectbox(
+            "New state", states, index=states.index(detail["state"]) if detail["state"] in states else 0
+        )
+        classification = c2.selectbox("Classification", CLASSIFICATIONS, index=None, placeholder="choose")
+        cause = c3.selectbox("Cause category", CAUSES, format_func=lambda v: v or "(not known yet)")
+        action = st.text_input("Action (as decided under the OCAP)", max_chars=500)
+        affected = st.multiselect("Lots covered", lots, default=lots)
+        comment = st.text_area("Comment", max_chars=4000)
+        submitted = st.form_submit_button("Record disposition", type="primary")
+    if submitted:
+        try:
+            data.record_disposition(
+                excursion_id=int(detail["excursion_id"]), to_state=to_state, classification=classification,
+                cause_category=cause or None, action=action.strip() or None, comment=comment.strip() or None,
+                lots_affected=affected, author=author,
+            )  # fmt: skip
+        except (ValueError, data.WarehouseError) as exc:
+            st.error(f"Not recorded: {exc}")
+        else:
+            st.success(f"Recorded for excursion {detail['excursion_id']} by {author.name}.")
+
+
+def main() -> None:
+    st.title("Excursions")
+    listing = data.load_one("list_excursions")
+    if listing.height == 0:
+        widgets.nothing("No excursions recorded yet.")
+    shown = _filters(listing)
+    st.caption(f"{shown.height} of {listing.height} excursions match the filters.")
+    shown = shown.with_columns(
+        pl.col("excursion_id").map_elements(lambda v: widgets.page_url("excursions", excursion=v), return_dtype=pl.String)
+        .alias("open")
+    )  # fmt: skip
+    widgets.table(shown, columns=["excursion_id", "state", "severity", "chart", "layer", "parameter", "process_tool",
+                                  "chamber", "metrology_tool", "first_at", "last_at", "n_signals", "updated_at", "open"],
+                  key="excursion_list", open=st.column_config.LinkColumn("open", display_text="open"))  # fmt: skip
+
+    raw = widgets.param("excursion")
+    excursion_id = widgets.int_param("excursion")
+    if raw is None:
+        st.info("Open an excursion from the list to see its signals, history and disposition form.")
+        return
+    frames = data.load(
+        {
+            "detail": (
+                "excursion_detail",
+                {"excursion_id": excursion_id if excursion_id is not None else -1},
+            ),
+            "signals": (
+                "excursion_signals",
+                {"excursion_id": excursion_id if excursion_id is not None else -1},
+            ),
+            "history": (
+                "excursion_history",
+                {"excursion_id": excursion_id if excursion_id is not None else -1},
+            ),
+        }
+    )
+    if excursion_id is None or frames["detail"].height == 0:
+        widgets.not_found("Excursion", raw)
+    detail = frames["detail"].row(0, named=True)
+    st.header(
+        f"Excursion {detail['excursion_id']}: {detail['chart']} ({detail['severity']}, {detail['state']})"
+    )
+    st.caption(
+        f"{detail['layer']} · {detail['parameter']} · split {detail['split_json']} · rules {detail['rules_json']} · "
+        f"first {detail['first_at']} · last {detail['last_at']} · {detail['n_signals']} standing signals"
+    )
+    st.page_link(widgets.PAGES["chart"], label="Open its chart", icon=":material/show_chart:",
+                 query_params={"series": str(detail["series_id"])})  # fmt: skip
+    lots = json.loads(detail["lots_json"] or "[]")
+    if lots:
+        st.page_link(widgets.PAGES["lot"], label=f"Open lot {lots[0]}", icon=":material/grain:",
+                     query_params={"lot": lots[0], "excursion": str(detail["excursion_id"])})  # fmt: skip
+    st.subheader("Signals")
+    widgets.table(frames["signals"], columns=["point_at", "lot_id", "wafer_id", "rule", "value", "statistic",
+                                              "limit_version", "severity", "withdrawn_at", "withdrawn_reason"],
+                  key="excursion_signals")  # fmt: skip
+    st.subheader("Audit history")
+    widgets.table(frames["history"], key="audit_history")
+    _form(detail, data.current_author())
+    widgets.caution("signals")
+
+
+main()

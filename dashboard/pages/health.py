@@ -1,0 +1,53 @@
+"""Data health: the ingest log, rejected rows with their reasons (downloadable), superseded data and when
+each tool last reported."""
+
+from __future__ import annotations
+
+import streamlit as st
+
+from dashboard import data, widgets
+
+STATUSES = ("all", "loaded", "failed", "duplicate")
+
+
+def main() -> None:
+    st.title("Data health")
+    status = widgets.choice("Ingest status", STATUSES, key="status", default="all")
+    file_id = widgets.int_param("file")
+    extent = data.load_one("data_time_range")
+    last_at = extent["last_at"][0] if extent.height else None
+    frames = data.load(
+        {
+            "log": ("ingest_log", {"status": None if status == "all" else status}),
+            "rejects": ("rejects", {"file_id": file_id, "limit": 100_000}),
+            "superseded": ("superseded_rows", {}),
+            "fresh": ("tool_freshness", {"now": last_at}),
+        }
+    )
+
+    st.subheader("Ingest log")
+    widgets.table(frames["log"], key="ingest_log")
+
+    st.subheader("Rejected rows" + (f" of file {file_id}" if file_id is not None else ""))
+    rej = frames["rejects"]
+    if rej.height == 0:
+        st.info("No rejected rows.")
+    else:
+        st.download_button("Download rejects (CSV)", rej.write_csv(), file_name="lotline_rejects.csv",
+                           mime="text/csv", key="download_rejects")  # fmt: skip
+        widgets.table(rej, key="rejects")
+
+    st.subheader("Superseded data (corrected re-exports)")
+    sup = frames["superseded"]
+    if sup.height == 0:
+        st.info("No corrected re-export has replaced stored rows.")
+    else:
+        widgets.table(sup, key="superseded")
+
+    st.subheader("Tools: last seen")
+    if last_at is not None:
+        st.caption(f"Relative to the newest data in the warehouse, {last_at:%Y-%m-%d %H:%M} UTC.")
+    widgets.table(frames["fresh"], key="tool_last_seen")
+
+
+main()
