@@ -470,6 +470,7 @@ SIGNALS = Table(
 EXCURSIONS = Table(
     "excursions",
     "Signals grouped per series into excursions (consecutive or overlapping points).",
+        Column("point_seq", INT64, nullable=False, doc="1-based position of the point in its series at evaluation"),
     (
         Column("excursion_id", INT64, nullable=False, doc="Warehouse-assigned id"),
         Column("series_id", INT64, nullable=False, doc="Series (chart_series.series_id)"),

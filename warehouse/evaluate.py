@@ -1,0 +1,492 @@
+"""Evaluation: every series of the monitoring plan out of the store, through ``spc``, signals back in.
+
+One run is one unit of work (one transaction). Per plan entry:
+
+1. **Which series changed.** A full run (``full=True``, the first run, or a new plan version) reads every
+   point of the entry. An incremental run finds the lots whose rows for the entry changed since the last
+   run's watermark (the newest ``source_files.file_id`` it covered): new rows, rows superseded by a
+   corrected re-export, new process history at the entry's step. Their points are computed twice, from the
+   rows current now and from the rows current at the watermark; the difference names the changed points.
+2. **Append or recompute.** A series whose changed points are all new and all later than its last
+   evaluated point is *appended*: only the new points are evaluated, starting from the stored EWMA / CUSUM
+   state and prepended with the last ``spc.rules.context_points`` points for the run rules. Any other
+   change (a late point, a changed or vanished point, a new limit version) *recomputes* the series from
+   its first point. Either way the signals equal those of a full run.
+3. **Limits.** Frozen versions are only read. A series without one is frozen automatically from the plan
+   entry's baseline once complete (user ``lotline-auto``); until then only its out-of-spec check runs.
+4. **Signals** are written idempotently: a signal is identified by series, point key, rule, value and
+   limit version; one no longer found is *withdrawn* (with the reason), never deleted.
+5. **Excursions**: new signals join the newest unclosed excursion of their series when at most
+   ``EXCURSION_GAP`` unsignalled points lie between them, else open a new one (see warehouse.excursions).
+
+Signals advise; the fab's out-of-control action plan (OCAP) and qualified engineers decide.
+"""
+
+from __future__ import annotations
+
+import getpass
+import json
+import time
+from dataclasses import dataclass, field
+from datetime import UTC, datetime
+
+import numpy as np
+import polars as pl
+
+from spc.cusum import CusumParams, evaluate_cusum
+from spc.ewma import EwmaParams, evaluate_ewma
+from spc.rules import BeyondLimits, context_points, evaluate_rules, rule_params
+from warehouse import limits as lim_mod
+from warehouse import points as pts_mod
+from warehouse import store
+from warehouse.errors import ConfigError
+from warehouse.plan import PlanEntry, current_plan, current_plan_version
+
+EXCURSION_GAP = 2
+"""Unsignalled points allowed between two signals of one excursion."""
+WITHDRAWN_SUPERSEDED = "point's data superseded or moved (corrected re-export or new process history)"
+WITHDRAWN_CHANGED = "point's value changed (corrected re-export)"
+WITHDRAWN_NOT_FOUND = "not found on re-evaluation (limits re-frozen or earlier points changed)"
+
+
+@dataclass
+class RunSummary:
+    """What one evaluation did (JSON-friendly via ``as_dict``)."""
+
+    mode: str
+    plan_version: int
+    watermark_file_id: int
+    series: int = 0
+    series_appended: int = 0
+    series_recomputed: int = 0
+    points: int = 0
+    signals_new: int = 0
+    signals_withdrawn: int = 0
+    limits_frozen: int = 0
+    waiting_for_baseline: int = 0
+    excursions_opened: int = 0
+    seconds: float = 0.0
+    notices: list[str] = field(default_factory=list)
+
+    def as_dict(self) -> dict:
+        """The summary as a plain dict."""
+        return dict(self.__dict__)
+
+
+def _now() -> datetime:
+    return datetime.now(UTC).replace(tzinfo=None)
+
+
+def _user() -> str:
+    try:
+        return getpass.getuser()
+    except Exception:  # noqa: BLE001 - no login name in some containers
+        return "unknown"
+
+
+def evaluate_warehouse(path=None, *, full: bool = False, user: str | None = None, wait_s: float = store.DEFAULT_WAIT_S) -> RunSummary:
+    """Evaluate every series of the plan in force; return what was done.
+
+    Example:
+        >>> evaluate_warehouse("lotline.duckdb").signals_new  # doctest: +SKIP
+        3
+    """
+    with store.open_warehouse(path, wait_s=wait_s) as con:
+        with store.transaction(con):
+            summary = evaluate_connection(con, full=full, user=user or _user())
+            store.bump_data_version(con)
+    return summary
+
+
+def evaluate_connection(con, *, full: bool = False, user: str = "unknown") -> RunSummary:
+    """Evaluate inside an open connection (the caller owns the transaction)."""
+    t0 = time.perf_counter()
+    plan = current_plan(con)
+    if plan is None:
+        raise ConfigError("no monitoring plan is loaded", fix="run `lotline plan load PLAN.toml` first")
+    version = current_plan_version(con)
+    last = con.execute(
+        "SELECT watermark_file_id, plan_version FROM evaluation_runs ORDER BY run_id DESC LIMIT 1"
+    ).fetchall()
+    wm_new = int(con.execute("SELECT coalesce(max(file_id), 0) FROM source_files").fetchall()[0][0])
+    full = full or not last or int(last[0][1]) != version
+    wm_old = 0 if not last else int(last[0][0])
+    started = _now()
+    s = RunSummary("full" if full else "incremental", version, wm_new)
+    ctx = _Context(con, started, user, s)
+    for e in plan.entries:
+        _evaluate_entry(ctx, e, full=full, watermark=wm_old)
+    from warehouse import excursions
+
+    s.excursions_opened = excursions.group_signals(con, series_ids=sorted(ctx.touched), now=started)
+    s.series = len(ctx.touched)
+    run_id = con.execute("SELECT nextval('run_id_seq')").fetchall()[0][0]
+    con.execute(
+        "INSERT INTO evaluation_runs VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+        [run_id, started, _now(), s.mode, version, wm_new, s.series, s.points, s.signals_new, s.signals_withdrawn,
+         user],
+    )
+    s.seconds = round(time.perf_counter() - t0, 3)
+    return s
+
+
+class _Context:
+    def __init__(self, con, now: datetime, user: str, summary: RunSummary) -> None:
+        self.con, self.now, self.user, self.s = con, now, user, summary
+        self.touched: set[int] = set()
+        self.limits = lim_mod.current_limits(con)
+        rows = con.execute("SELECT series_id, chart, layer, parameter, split_json FROM chart_series").fetchall()
+        self.series = {(r[1], r[2], r[3], r[4]): r[0] for r in rows}
+        st = con.sql("SELECT * FROM series_state").pl()
+        self.state = {r["series_id"]: r for r in st.to_dicts()}
+
+
+# ------------------------------------------------------------------------------------------ per entry
+
+
+def _attach_series(ctx: _Context, e: PlanEntry, pts: pl.DataFrame, *, create: bool) -> pl.DataFrame:
+    """Add a ``series_id`` column (creating chart_series rows for new series when ``create``)."""
+    scols = pts_mod.series_columns(e)
+    if pts.height == 0:
+        return pts.with_columns(pl.lit(None, pl.Int64).alias("series_id"))
+    keys = pts.select(scols).unique(maintain_order=True)
+    ids = []
+    for row in keys.to_dicts():
+        sj = pts_mod.split_json(e, row)
+        k = (e.name, row["layer"], row["parameter"], sj)
+        sid = ctx.series.get(k)
+        if sid is None and create:
+            sid = int(ctx.con.execute("SELECT nextval('series_id_seq')").fetchall()[0][0])
+            ctx.con.execute(
+                "INSERT INTO chart_series VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                [sid, e.name, row["layer"], row["parameter"], sj, row.get("process_tool"), row.get("chamber"),
+                 row.get("metrology_tool") if "metrology_tool" in e.split else None,
+                 row.get("product") if "product" in e.split else None, ctx.now],
+            )
+            ctx.series[k] = sid
+        ids.append(sid)
+    keys = keys.with_columns(pl.Series("series_id", ids, dtype=pl.Int64))
+    return pts.join(keys, on=scols, how="left", nulls_equal=True, maintain_order="left")
+
+
+def _evaluate_entry(ctx: _Context, e: PlanEntry, *, full: bool, watermark: int) -> None:
+    con = ctx.con
+    if not full:
+        lots, spec_changed = pts_mod.dirty_lots(con, e, watermark=watermark)
+        if spec_changed:
+            full = True
+        elif lots.height == 0:
+            return
+    if full:
+        pts = _attach_series(ctx, e, pts_mod.read_points(con, e), create=True)
+        known = {sid for (chart, *_), sid in ctx.series.items() if chart == e.name}
+        recompute = sorted(set(pts["series_id"].unique().to_list()) | known)
+        _recompute(ctx, e, pts, recompute)
+        return
+    new = _attach_series(ctx, e, pts_mod.read_points(con, e, dirty_lots=lots), create=True)
+    old = _attach_series(ctx, e, pts_mod.read_points(con, e, scope="as_of", watermark=watermark, dirty_lots=lots),
+                         create=False).filter(pl.col("series_id").is_not_null())
+    key = ["series_id", "point_key"]
+    cmp = ["series_id", "point_key", "value", "lsl", "usl", "vmin", "vmax"]
+    added = new.join(old.select(cmp), on=cmp, how="anti", nulls_equal=True)
+    removed = old.join(new.select(cmp), on=cmp, how="anti", nulls_equal=True)
+    must = set(removed["series_id"].to_list()) | set(
+        added.join(old.select(key), on=key, how="semi")["series_id"].to_list()
+    )
+    append, recompute = [], set(must)
+    firsts = added.group_by("series_id").agg(pl.col("point_at").min().alias("t"),
+                                             pl.col("point_key").sort_by("point_at", "point_key").first().alias("k"))
+    for sid, t, k in firsts.iter_rows():
+        if sid in must:
+            continue
+        st, lim = ctx.state.get(sid), ctx.limits.get(sid)
+        if (st is None or lim is None or st["limit_version"] != lim["version"] or st["last_point_at"] is None
+                or (t, k) <= (st["last_point_at"], st["last_point_key"])):
+            recompute.add(sid)
+        else:
+            append.append(sid)
+    if recompute:
+        scols = pts_mod.series_columns(e)
+        wanted = new.select([*scols, "series_id"]).unique().vstack(old.select([*scols, "series_id"]).unique())
+        wanted = wanted.filter(pl.col("series_id").is_in(sorted(recompute))).unique().drop("series_id")
+        pts = _attach_series(ctx, e, pts_mod.read_points(con, e, wanted=wanted), create=True)
+        _recompute(ctx, e, pts, sorted(recompute))
+    if append:
+        _append(ctx, e, added.filter(pl.col("series_id").is_in(append)), append)
+
+
+def _with_limits(ctx: _Context, e: PlanEntry, pts: pl.DataFrame) -> pl.DataFrame:
+    """Add center, sigma and limit_version from the version in force (nulls where none is frozen)."""
+    sids = pts["series_id"].to_numpy()
+    center = np.full(pts.height, np.nan)
+    version = np.zeros(pts.height, dtype=np.int64)
+    sigma = np.full(pts.height, np.nan)
+    for sid in np.unique(sids):
+        lim = ctx.limits.get(int(sid))
+        if lim is None:
+            continue
+        m = sids == sid
+        center[m] = lim["center"]
+        version[m] = lim["version"]
+        sigma[m] = lim_mod.point_sigma(e, lim, pts.filter(pl.Series(m)))
+    return pts.with_columns(
+        pl.Series("center", center), pl.Series("sigma", sigma),
+        pl.Series("limit_version", version).replace(0, None),
+    )
+
+
+def _freeze_missing(ctx: _Context, e: PlanEntry, pts: pl.DataFrame, series: list[int]) -> None:
+    for sid in series:
+        if sid in ctx.limits:
+            continue
+        sp = pts.filter(pl.col("series_id") == sid)
+        base = lim_mod.baseline_points(e, sp)
+        if base is None:
+            ctx.s.waiting_for_baseline += 1
+            continue
+        try:
+            est = lim_mod.estimate_limits(e, base)
+        except lim_mod.LimitsError as exc:
+            ctx.s.notices.append(f"chart {e.name} series {sid}: limits not frozen: {exc.what}")
+            continue
+        v = lim_mod.insert_version(ctx.con, sid, est, user=lim_mod.AUTO_USER,
+                                   reason=f"automatic Phase I freeze from the plan baseline {json.dumps(e.baseline)}")
+        ctx.limits[sid] = {**est, "version": v}
+        ctx.s.limits_frozen += 1
+
+
+def _rules(e: PlanEntry) -> list:
+    k = float(e.params.get("k", 3.0))
+    return [rule_params(r, k=k) if isinstance(rule_params(r), BeyondLimits) else rule_params(r) for r in e.rules]
+
+
+def _signals(e: PlanEntry, pts: pl.DataFrame, *, state: pl.DataFrame | None, context: pl.DataFrame | None):
+    """Signals (control rules on limited points + oos on all) and the final EWMA/CUSUM state per series."""
+    pass_cols = ["point_key", "lot_id", "wafer_id", "point_at", "point_value", "limit_version"]
+    out = []
+    limited = pts.filter(pl.col("limit_version").is_not_null()).with_columns(pl.col("value").alias("point_value"))
+    ew = cu = None
+    if limited.height:
+        frame = limited.rename({"series_id": "series"})
+        rules = _rules(e)
+        rin = frame if context is None or context.height == 0 else pl.concat([context, frame], how="diagonal_relaxed")
+        rs = evaluate_rules(rin.select(["series", "seq", "value", "center", "sigma", *pass_cols]), rules,
+                            passthrough=pass_cols)
+        if context is not None and context.height:
+            rs = rs.join(frame.select("series", "seq"), on=["series", "seq"], how="semi")
+        out.append(rs.with_columns(pl.lit(None, pl.Float64).alias("statistic")))
+        base = frame.select(["series", "seq", "value", "center", "sigma", *pass_cols])
+        if e.chart == "ewma":
+            p = EwmaParams(lam=float(e.params["lambda"]), L=float(e.params["L"]), limits=str(e.params["limits"]))
+            r = evaluate_ewma(base, p, state=state, passthrough=pass_cols)
+            out.append(r.signals.rename({"value": "statistic"}).rename({"point_value": "value"}).with_columns(
+                pl.col("value").alias("point_value")))
+            ew = r.state
+        if e.chart == "cusum":
+            p = CusumParams(k=float(e.params["cusum_k"]), h=float(e.params["h"]),
+                            headstart=float(e.params["headstart"]))
+            r = evaluate_cusum(base, p, state=state, passthrough=pass_cols)
+            out.append(r.signals.rename({"value": "statistic"}).rename({"point_value": "value"}).with_columns(
+                pl.col("value").alias("point_value")))
+            cu = r.state
+    oos = pts.filter(
+        (pl.col("lsl").is_not_null() & (pl.col("vmin") < pl.col("lsl")))
+        | (pl.col("usl").is_not_null() & (pl.col("vmax") > pl.col("usl")))
+    )
+    if oos.height:
+        out.append(oos.select(
+            pl.col("series_id").alias("series"), "seq", pl.lit("oos").alias("rule"), "value", "point_key", "lot_id",
+            "wafer_id", "point_at", pl.col("value").alias("point_value"), pl.lit(None, pl.Int64).alias("limit_version"),
+            pl.when(pl.col("lsl").is_not_null() & (pl.col("vmin") < pl.col("lsl"))).then(pl.col("vmin"))
+            .otherwise(pl.col("vmax")).alias("statistic"),
+        ))
+    cols = ["series", "seq", "rule", "value", "statistic", "point_key", "lot_id", "wafer_id", "point_at", "limit_version"]
+    sig = (
+        pl.concat([o.select(cols) for o in out], how="vertical_relaxed")
+        if out else pl.DataFrame(schema={c: pl.Int64 for c in cols})
+    )
+    return sig, ew, cu
+
+
+def _recompute(ctx: _Context, e: PlanEntry, pts: pl.DataFrame, series: list[int]) -> None:
+    pts = pts.filter(pl.col("series_id").is_in(series))
+    pts = pts.with_columns((pl.int_range(pl.len()).over("series_id") + 1).cast(pl.Int64).alias("seq"))
+    _freeze_missing(ctx, e, pts, series)
+    pts = _with_limits(ctx, e, pts)
+    sig, ew, cu = _signals(e, pts, state=None, context=None)
+    _write_state(ctx, e, pts, series, ew, cu, base_state=None)
+    _reconcile(ctx, e, sig, pts, series, recompute=True)
+    ctx.s.series_recomputed += len(series)
+    ctx.s.points += pts.height
+    ctx.touched.update(series)
+
+
+def _append(ctx: _Context, e: PlanEntry, pts: pl.DataFrame, series: list[int]) -> None:
+    start = pl.DataFrame({"series_id": series, "n0": [ctx.state[s]["n_points"] for s in series]},
+                         schema={"series_id": pl.Int64, "n0": pl.Int64})
+    pts = pts.sort(["series_id", "point_at", "point_key"]).join(start, on="series_id", how="left")
+    pts = pts.with_columns((pl.int_range(pl.len()).over("series_id") + 1 + pl.col("n0")).alias("seq")).drop("n0")
+    pts = _with_limits(ctx, e, pts)
+    state = pl.DataFrame(
+        {"series": series,
+         "ewma_z": [ctx.state[s]["ewma"] for s in series],
+         "ewma_count": [ctx.state[s]["n_points"] for s in series],
+         "s_hi": [ctx.state[s]["cusum_hi"] for s in series],
+         "s_lo": [ctx.state[s]["cusum_lo"] for s in series]},
+        schema={"series": pl.Int64, "ewma_z": pl.Float64, "ewma_count": pl.Int64, "s_hi": pl.Float64,
+                "s_lo": pl.Float64},
+    )
+    ctx_rows = []
+    for s in series:
+        for c in json.loads(ctx.state[s]["context_json"] or "[]"):
+            ctx_rows.append({"series": s, **c})
+    context = pl.DataFrame(ctx_rows, schema={"series": pl.Int64, "seq": pl.Int64, "value": pl.Float64,
+                                             "center": pl.Float64, "sigma": pl.Float64}) if ctx_rows else None
+    sig, ew, cu = _signals(e, pts, state=state, context=context)
+    _write_state(ctx, e, pts, series, ew, cu, base_state=ctx.state, context=context)
+    _reconcile(ctx, e, sig, pts, series, recompute=False)
+    ctx.s.series_appended += len(series)
+    ctx.s.points += pts.height
+    ctx.touched.update(series)
+
+
+def _write_state(ctx, e, pts, series, ew, cu, *, base_state, context=None) -> None:
+    need = context_points(_rules(e))
+    limited = pts.filter(pl.col("limit_version").is_not_null())
+    frames = [limited.select(pl.col("series_id").alias("series"), "seq", "value", "center", "sigma")]
+    if context is not None and context.height:
+        frames.insert(0, context.select("series", "seq", "value", "center", "sigma"))
+    allp = pl.concat(frames, how="vertical_relaxed")
+    tail = allp.sort("series", "seq").group_by("series", maintain_order=True).tail(need) if need else allp.clear()
+    ctx_json = {}
+    for sid, grp in tail.group_by("series", maintain_order=True):
+        ctx_json[sid[0]] = json.dumps(grp.select("seq", "value", "center", "sigma").to_dicts())
+    last = pts.sort("series_id", "point_at", "point_key").group_by("series_id", maintain_order=True).agg(
+        pl.col("point_at").last(), pl.col("point_key").last(), pl.col("seq").max(),
+        pl.col("limit_version").last(),
+    )
+    lastd = {r["series_id"]: r for r in last.to_dicts()}
+    ewd = {r["series"]: r for r in ew.to_dicts()} if ew is not None else {}
+    cud = {r["series"]: r for r in cu.to_dicts()} if cu is not None else {}
+    rows = []
+    for sid in series:
+        prev = (base_state or {}).get(sid) or {}
+        lr = lastd.get(sid)
+        lim = ctx.limits.get(sid)
+        rows.append({
+            "series_id": sid,
+            "limit_version": lim["version"] if lim else None,
+            "last_point_at": lr["point_at"] if lr else prev.get("last_point_at"),
+            "last_point_key": lr["point_key"] if lr else prev.get("last_point_key"),
+            "n_points": int(lr["seq"]) if lr else int(prev.get("n_points") or 0),
+            "ewma": ewd[sid]["ewma_z"] if sid in ewd else prev.get("ewma"),
+            "cusum_hi": cud[sid]["s_hi"] if sid in cud else prev.get("cusum_hi"),
+            "cusum_lo": cud[sid]["s_lo"] if sid in cud else prev.get("cusum_lo"),
+            "context_json": ctx_json.get(sid, prev.get("context_json") if base_state else None),
+            "evaluated_at": ctx.now,
+        })
+    frame = pl.DataFrame(rows, schema={"series_id": pl.Int64, "limit_version": pl.Int64,
+                                       "last_point_at": pl.Datetime("us"), "last_point_key": pl.String,
+                                       "n_points": pl.Int64, "ewma": pl.Float64, "cusum_hi": pl.Float64,
+                                       "cusum_lo": pl.Float64, "context_json": pl.String,
+                                       "evaluated_at": pl.Datetime("us")})
+    con = ctx.con
+    con.register("new_state", frame)
+    try:
+        con.execute("DELETE FROM series_state WHERE series_id IN (SELECT series_id FROM new_state)")
+        con.execute("INSERT INTO series_state BY NAME SELECT * FROM new_state")
+    finally:
+        con.unregister("new_state")
+    for r in frame.to_dicts():
+        ctx.state[r["series_id"]] = r
+
+
+def _reconcile(ctx: _Context, e: PlanEntry, sig: pl.DataFrame, pts: pl.DataFrame, series: list[int], *,
+               recompute: bool) -> None:
+    """Write new signals, withdraw standing ones no longer found (recompute only)."""
+    con = ctx.con
+    cand = sig.select(
+        pl.col("series").cast(pl.Int64).alias("series_id"), pl.col("point_key").cast(pl.String),
+        pl.col("lot_id").cast(pl.String), pl.col("wafer_id").cast(pl.String),
+        pl.col("point_at").cast(pl.Datetime("us")), pl.col("seq").cast(pl.Int64).alias("point_seq"),
+        pl.col("rule").cast(pl.String), pl.col("value").cast(pl.Float64), pl.col("statistic").cast(pl.Float64),
+        pl.col("limit_version").cast(pl.Int64),
+    )
+    rs = pl.DataFrame({"series_id": series}, schema={"series_id": pl.Int64})
+    pk = pts.select(pl.col("series_id").cast(pl.Int64), "point_key", pl.col("value").alias("pv"))
+    match = (
+        "s.series_id = c.series_id AND s.point_key = c.point_key AND s.rule = c.rule "
+        "AND s.limit_version IS NOT DISTINCT FROM c.limit_version "
+        "AND abs(s.value - c.value) <= 1e-9 * greatest(1.0, abs(c.value))"
+    )
+    con.register("cand", cand)
+    con.register("rs", rs)
+    con.register("pk", pk)
+    try:
+        if recompute:
+            n = con.execute(
+                f"""
+UPDATE signals s SET withdrawn_at = ?, withdrawn_reason = CASE
+        WHEN NOT EXISTS (SELECT 1 FROM pk WHERE pk.series_id = s.series_id AND pk.point_key = s.point_key) THEN ?
+        WHEN NOT EXISTS (SELECT 1 FROM pk WHERE pk.series_id = s.series_id AND pk.point_key = s.point_key
+                         AND abs(pk.pv - s.value) <= 1e-9 * greatest(1.0, abs(s.value))) THEN ?
+        ELSE ? END
+WHERE s.withdrawn_at IS NULL AND s.series_id IN (SELECT series_id FROM rs)
+  AND NOT EXISTS (SELECT 1 FROM cand c WHERE {match})""",
+                [ctx.now, WITHDRAWN_SUPERSEDED, WITHDRAWN_CHANGED, WITHDRAWN_NOT_FOUND],
+            ).fetchall()
+            ctx.s.signals_withdrawn += int(n[0][0]) if n else 0
+            con.execute(
+                f"""UPDATE signals s SET point_seq = c.point_seq FROM cand c
+WHERE s.withdrawn_at IS NULL AND {match} AND s.point_seq <> c.point_seq"""
+            )
+        n = con.execute(
+            f"""
+INSERT INTO signals
+SELECT nextval('signal_id_seq'), c.series_id, c.point_key, c.lot_id, c.wafer_id, c.point_at, c.point_seq, c.rule,
+       c.value, c.statistic, c.limit_version, ?, ?, NULL, NULL, NULL
+FROM cand c
+WHERE NOT EXISTS (SELECT 1 FROM signals s WHERE s.withdrawn_at IS NULL AND {match})
+ORDER BY c.series_id, c.point_seq, c.rule""",
+            [e.severity, ctx.now],
+        ).fetchall()
+        ctx.s.signals_new += int(n[0][0]) if n else 0
+    finally:
+        for name in ("cand", "rs", "pk"):
+            con.unregister(name)
+
+
+# ------------------------------------------------------------------------------------------ reading
+
+
+def series_points(con, *, series_id: int) -> pl.DataFrame:
+    """Points of one series with the limits in force (for queries.series_points)."""
+    row = con.execute(
+        "SELECT chart, layer, parameter, split_json FROM chart_series WHERE series_id = ?", [series_id]
+    ).fetchall()
+    cols = ["seq", "point_key", "lot_id", "wafer_id", "point_at", "value", "n", "center", "sigma", "lcl", "ucl",
+            "limit_version"]
+    plan = current_plan(con)
+    if not row or plan is None:
+        return pl.DataFrame(schema={c: pl.Float64 for c in cols})
+    chart, layer, parameter, sj = row[0]
+    e = plan.entry(chart)
+    wanted = pl.DataFrame([{"layer": layer, "parameter": parameter, **json.loads(sj)}])
+    wanted = wanted.select(pts_mod.series_columns(e)).cast(pl.String)
+    pts = pts_mod.read_points(con, e, wanted=wanted).with_columns(pl.lit(series_id, pl.Int64).alias("series_id"))
+    pts = pts.with_columns((pl.int_range(pl.len()) + 1).cast(pl.Int64).alias("seq"))
+    ctx_limits = lim_mod.current_limits(con)
+    lim = ctx_limits.get(series_id)
+    if lim is None:
+        pts = pts.with_columns(pl.lit(None, pl.Float64).alias(c) for c in ("center", "sigma", "lcl", "ucl"))
+        pts = pts.with_columns(pl.lit(None, pl.Int64).alias("limit_version"))
+    else:
+        sigma = lim_mod.point_sigma(e, lim, pts)
+        k = lim["k_sigma"]
+        pts = pts.with_columns(
+            pl.lit(lim["center"]).alias("center"), pl.Series("sigma", sigma),
+            pl.lit(lim["version"], pl.Int64).alias("limit_version"),
+        ).with_columns(
+            (pl.col("center") - k * pl.col("sigma")).alias("lcl"), (pl.col("center") + k * pl.col("sigma")).alias("ucl"),
+        )
+    return pts.select(cols)

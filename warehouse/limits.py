@@ -1,0 +1,123 @@
+"""Control-limit versions: Phase I estimation from a baseline, freezing, and reading the version in force.
+
+Limits are frozen as numbered versions per series (``control_limits``) with who, when and why; evaluation
+only ever reads them. A series without frozen limits is frozen automatically from its plan entry's baseline
+once the baseline is complete (first N points exist, or a point after the window's end exists and the
+window holds at least ``MIN_BASELINE`` points), recorded as user ``lotline-auto``; until then the series'
+control rules are skipped (its out-of-spec check still runs) and `lotline evaluate` reports it as waiting.
+
+Sigma of the charted statistic (the level that is plotted):
+    * site values, wafer means, lot means: the sample SD of the baseline *points* themselves. A wafer
+      mean's variance is σ²_lot + σ²_wafer + σ²_site/n (nested variance components), which is what the
+      spread of wafer means around the grand mean estimates; the within-wafer sigma alone would make
+      limits far too tight (the classic nested-variance trap, NIST line-width data; see notes/domain.md).
+    * wafer SD / range: individuals chart of the statistic, sigma = mean moving range / d2 with
+      d2(2) = 1.128 (NIST/SEMATECH e-Handbook §6.3.2.2, individuals control charts).
+    * u charts: ū = Σ defects / Σ area; sigma of one point = sqrt(ū / a_i) (Poisson; e-Handbook §6.3.3.2).
+      Laney u′: the same times σ_z = mean moving range of z_i = (u_i − ū)/sqrt(ū/a_i), / 1.128
+      (Laney 2002, Quality Engineering 14(4)).
+"""
+
+from __future__ import annotations
+
+from datetime import datetime
+
+import numpy as np
+import polars as pl
+
+from warehouse.errors import LotlineError
+from warehouse.plan import DEFECT_STATISTICS, MIN_BASELINE, PlanEntry
+
+AUTO_USER = "lotline-auto"
+D2_N2 = 1.128  # d2 for moving ranges of 2 (e-Handbook §6.3.2.2, table of control chart constants)
+
+
+class LimitsError(LotlineError, ValueError):
+    """Limits cannot be estimated (too few baseline points, zero spread, unknown chart)."""
+
+
+def baseline_points(e: PlanEntry, pts: pl.DataFrame, *, window: tuple[datetime, datetime] | None = None,
+                    first: int | None = None) -> pl.DataFrame | None:
+    """The baseline subset of one series' points (in order), or None while the baseline is incomplete."""
+    if first is None and window is None:
+        if "first" in e.baseline:
+            first = int(e.baseline["first"])
+        else:
+            window = (datetime.fromisoformat(e.baseline["from"]), datetime.fromisoformat(e.baseline["to"]))
+    if first is not None:
+        return pts.head(first) if pts.height >= first else None
+    lo, hi = window
+    sub = pts.filter((pl.col("point_at") >= lo) & (pl.col("point_at") <= hi))
+    complete = pts.filter(pl.col("point_at") > hi).height > 0
+    return sub if complete and sub.height >= MIN_BASELINE else None
+
+
+def estimate_limits(e: PlanEntry, base: pl.DataFrame) -> dict:
+    """Phase I centre, sigma and limits of one series from its baseline points (see module doc)."""
+    k = float(e.params.get("k", 3.0))
+    v = base["value"].cast(pl.Float64).to_numpy()
+    if v.size < 2:
+        raise LimitsError("baseline has fewer than 2 points", found=int(v.size), expected=f">= {MIN_BASELINE}")
+    out = {"k_sigma": k, "n_ref": None, "overdispersion": None, "baseline_n": int(v.size),
+           "baseline_from": base["point_at"].min(), "baseline_to": base["point_at"].max()}
+    if e.chart in ("u", "laney_u") and e.statistic in DEFECT_STATISTICS:
+        area = base["area_cm2"].cast(pl.Float64).to_numpy()
+        counts = base["n"].cast(pl.Float64).to_numpy()
+        ubar = float(counts.sum() / area.sum())
+        n_ref = float(area.mean())
+        sz = 1.0
+        if e.chart == "laney_u" and ubar > 0:
+            z = (v - ubar) / np.sqrt(ubar / area)
+            sz = float(np.mean(np.abs(np.diff(z))) / D2_N2)
+        sigma_ref = float(np.sqrt(ubar / n_ref) * sz) if ubar > 0 else 0.0
+        out.update(center=ubar, sigma=sigma_ref, sigma_level="count", n_ref=n_ref,
+                   sigma_source="laney_u_prime" if e.chart == "laney_u" else "poisson",
+                   overdispersion=sz if e.chart == "laney_u" else None)
+    elif e.statistic in ("wafer_sd", "wafer_range"):
+        out.update(center=float(v.mean()), sigma=float(np.mean(np.abs(np.diff(v))) / D2_N2),
+                   sigma_level="wafer", sigma_source="moving_range")
+    else:
+        level = {"site_value": "site", "wafer_mean": "wafer", "lot_mean": "lot"}.get(e.statistic, "wafer")
+        out.update(center=float(v.mean()), sigma=float(v.std(ddof=1)), sigma_level=level,
+                   sigma_source="variance_components_total")
+    if not out["sigma"] > 0:
+        raise LimitsError("baseline points have no spread (sigma 0)", found=out["sigma"], expected="> 0",
+                          fix="choose a baseline with real process variation")
+    lcl = out["center"] - k * out["sigma"]
+    if e.statistic in DEFECT_STATISTICS:
+        lcl = max(lcl, 0.0)
+    out.update(lcl=lcl, ucl=out["center"] + k * out["sigma"])
+    return out
+
+
+def point_sigma(e: PlanEntry, lim: dict, pts: pl.DataFrame) -> np.ndarray:
+    """Sigma of each point under a limit version (varies with inspected area on u charts)."""
+    if lim["n_ref"] is not None and e.chart in ("u", "laney_u"):
+        sz = lim["overdispersion"] or 1.0
+        area = pts["area_cm2"].cast(pl.Float64).to_numpy()
+        return np.sqrt(lim["center"] / area) * sz
+    return np.full(pts.height, lim["sigma"])
+
+
+def insert_version(con, series_id: int, lim: dict, *, user: str, reason: str) -> int:
+    """Append the next limit version of a series; return its number."""
+    version = int(con.execute(
+        "SELECT coalesce(max(version), 0) + 1 FROM control_limits WHERE series_id = ?", [series_id]
+    ).fetchall()[0][0])
+    con.execute(
+        "INSERT INTO control_limits VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, now()::TIMESTAMP, ?, ?)",
+        [series_id, version, lim["center"], lim["sigma"], lim["sigma_level"], lim["sigma_source"], lim["k_sigma"],
+         lim["lcl"], lim["ucl"], lim["n_ref"], lim["overdispersion"], lim["baseline_from"], lim["baseline_to"],
+         lim["baseline_n"], user, reason],
+    )
+    return version
+
+
+def current_limits(con) -> dict[int, dict]:
+    """The limit version in force per series id."""
+    rows = con.execute(
+        "SELECT series_id, version, center, sigma, k_sigma, lcl, ucl, n_ref, overdispersion FROM control_limits "
+        "QUALIFY row_number() OVER (PARTITION BY series_id ORDER BY version DESC) = 1"
+    ).fetchall()
+    keys = ("version", "center", "sigma", "k_sigma", "lcl", "ucl", "n_ref", "overdispersion")
+    return {r[0]: dict(zip(keys, r[1:], strict=True)) for r in rows}

@@ -1,0 +1,251 @@
+"""Charted points of a plan entry, aggregated inside DuckDB (one query per entry and purpose).
+
+A *point* is one plotted value of one series: a site value, a wafer's mean / SD / range, a lot's mean, or
+one inspection's defect or adder density. Every point carries its series columns (layer, parameter and
+the entry's split columns), a ``point_key`` that identifies it within the series, ``point_at`` (time of its
+first measurement or its inspection, UTC) and, when specs apply, the spec limits in force at that time.
+
+Which rows count:
+    * ``current``: rows not superseded (``_superseded_by IS NULL``), the state of the warehouse now;
+    * ``as_of``: rows that were current when file ``watermark`` was the newest one loaded (used to find
+      which series a changed lot belonged to before the change).
+
+Only fixed SQL fragments are assembled here (column names from our own constants); every value is a
+bound parameter.
+"""
+
+from __future__ import annotations
+
+import json
+
+import polars as pl
+
+from warehouse.plan import DEFECT_STATISTICS, PlanEntry
+
+POINT_COLUMNS = ("lot_id", "wafer_id", "point_key", "point_at", "value", "n", "vmin", "vmax", "area_cm2",
+                 "product_any", "lsl", "usl")
+"""Columns of a points frame besides the series columns (layer, parameter and the split columns)."""
+
+
+def series_columns(e: PlanEntry) -> list[str]:
+    """Columns whose values identify a series of the entry."""
+    return ["layer", "parameter", *e.split]
+
+
+def split_json(e: PlanEntry, row: dict) -> str:
+    """Canonical JSON object of a series' split values (keys sorted)."""
+    return json.dumps({k: row[k] for k in sorted(e.split)}, sort_keys=True)
+
+
+def _rows_pred(alias: str, scope: str) -> str:
+    if scope == "current":
+        return f"{alias}._superseded_by IS NULL"
+    return f"{alias}._source_file_id <= $wm AND ({alias}._superseded_by IS NULL OR {alias}._superseded_by > $wm)"
+
+
+def _history_cte(e: PlanEntry, scope: str) -> str:
+    return f"""
+h AS (
+    SELECT lot_id, wafer_id, process_tool, chamber FROM process_history ph
+    WHERE ph.step = $step AND {_rows_pred("ph", scope)}
+    QUALIFY row_number() OVER (PARTITION BY lot_id, wafer_id ORDER BY started_at DESC, _source_file_id DESC) = 1
+)"""
+
+
+def _uses_history(e: PlanEntry) -> bool:
+    return any(s in ("process_tool", "chamber") for s in e.split)
+
+
+def points_sql(e: PlanEntry, *, scope: str = "current", lots: bool = False, series: bool = False) -> tuple[str, dict]:
+    """SQL text and named parameters for the entry's points.
+
+    ``lots=True`` keeps only lots listed in a registered relation ``dirty_lots(lot_id)``; ``series=True``
+    keeps only series listed in a registered relation ``wanted_series`` (the series columns).
+    """
+    params: dict = {"layer": e.layer, "parameter": e.parameter, "product": e.product, "kind": e.sample_kind}
+    if scope == "as_of":
+        params["wm"] = None  # filled by the caller
+    hist = _uses_history(e)
+    if hist:
+        params["step"] = e.step
+    lot_filter = "AND f.lot_id IN (SELECT lot_id FROM dirty_lots)" if lots else ""
+    if e.is_defect:
+        inner = _defect_inner(e, scope, lot_filter, params)
+    else:
+        params["stage"] = e.stage
+        inner = _measurement_inner(e, scope, lot_filter)
+    split_sel = []
+    for s in e.split:
+        if s in ("process_tool", "chamber"):
+            split_sel.append(
+                f"CASE WHEN hw.lot_id IS NOT NULL THEN hw.{s} ELSE hl.{s} END AS {s}"
+            )
+        elif s == "metrology_tool":
+            split_sel.append("w.metrology_tool")
+        elif s == "product":
+            split_sel.append("w.product_any AS product")
+    joins = ""
+    where = ""
+    ctes = [f"w AS ({inner})"]
+    if hist:
+        ctes.insert(0, _history_cte(e, scope).strip())
+        joins = (
+            "LEFT JOIN h hw ON hw.lot_id = w.lot_id AND hw.wafer_id = w.wafer_id "
+            "LEFT JOIN h hl ON hl.lot_id = w.lot_id AND hl.wafer_id IS NULL"
+        )
+        where = "WHERE coalesce(hw.lot_id, hl.lot_id) IS NOT NULL"
+    sel_split = (", " + ", ".join(split_sel)) if split_sel else ""
+    joined = f"SELECT w.*{sel_split} FROM w {joins} {where}"
+    if e.statistic == "lot_mean":
+        keys = ", ".join(["layer", "parameter", "metrology_tool", *[s for s in e.split if s != "metrology_tool"]])
+        joined = f"""
+SELECT {keys}, lot_id, NULL::VARCHAR AS wafer_id, lot_id || '|' || metrology_tool AS point_key,
+       min(point_at) AS point_at, sum(value * n) / sum(n) AS value, sum(n) AS n, min(vmin) AS vmin,
+       max(vmax) AS vmax, NULL::DOUBLE AS area_cm2, any_value(product_any) AS product_any
+FROM ({joined}) j GROUP BY {keys}, lot_id"""
+    ctes.append(f"p AS ({joined})")
+    scols = series_columns(e)
+    spec = _spec_join(e)
+    order = ", ".join([*scols, "point_at", "point_key"])
+    series_filter = ""
+    if series:
+        cond = " AND ".join(f"ws.{c} IS NOT DISTINCT FROM p.{c}" for c in scols)
+        series_filter = f"WHERE EXISTS (SELECT 1 FROM wanted_series ws WHERE {cond})"
+    sql = f"WITH {', '.join(ctes)}\n{spec['select'].format(cols=', '.join(f'p.{c}' for c in scols))} FROM p {spec['join']} {series_filter}"
+    sql = f"SELECT * FROM ({sql}) {spec['qualify']} ORDER BY {order}"
+    return sql, params
+
+
+def _measurement_inner(e: PlanEntry, scope: str, lot_filter: str) -> str:
+    pred = _rows_pred("f", scope)
+    sel = f"""f.layer GLOB $layer AND f.parameter GLOB $parameter AND f.product GLOB $product
+        AND ($stage = '*' OR f.stage = $stage) AND f.sample_kind = $kind AND {pred} {lot_filter}"""
+    if e.statistic == "site_value":
+        return f"""
+SELECT f.layer, f.parameter, f.metrology_tool, f.lot_id, f.wafer_id,
+       f.lot_id || '|' || f.wafer_id || '|' || f.site_id || '|' || coalesce(f.feature, '') || '|' ||
+           f.repeat || '|' || f.metrology_tool || '|' || strftime(f.measured_at, '%Y-%m-%dT%H:%M:%S.%f') AS point_key,
+       f.measured_at AS point_at, f.value, 1::BIGINT AS n, f.value AS vmin, f.value AS vmax,
+       NULL::DOUBLE AS area_cm2, f.product AS product_any
+FROM measurements f WHERE {sel}"""
+    value = {
+        "wafer_mean": "avg(f.value)",
+        "lot_mean": "avg(f.value)",
+        "wafer_sd": "stddev_samp(f.value)",
+        "wafer_range": "max(f.value) - min(f.value)",
+    }[e.statistic]
+    having = "HAVING count(*) >= 2" if e.statistic in ("wafer_sd", "wafer_range") else ""
+    return f"""
+SELECT f.layer, f.parameter, f.metrology_tool, f.lot_id, f.wafer_id,
+       f.lot_id || '|' || f.wafer_id || '|' || f.metrology_tool AS point_key,
+       min(f.measured_at) AS point_at, {value} AS value, count(*) AS n, min(f.value) AS vmin,
+       max(f.value) AS vmax, NULL::DOUBLE AS area_cm2, any_value(f.product) AS product_any
+FROM measurements f WHERE {sel}
+GROUP BY f.layer, f.parameter, f.metrology_tool, f.lot_id, f.wafer_id {having}"""
+
+
+def _defect_inner(e: PlanEntry, scope: str, lot_filter: str, params: dict) -> str:
+    pred = _rows_pred("f", scope)
+    sel = f"f.layer GLOB $layer AND f.product GLOB $product AND f.sample_kind = $kind AND {pred} {lot_filter}"
+    key = ("f.lot_id || '|' || f.wafer_id || '|' || f.inspection_tool || '|' || "
+           "strftime(f.inspected_at, '%Y-%m-%dT%H:%M:%S.%f')")
+    if e.statistic == "adder_density":
+        params.pop("parameter")
+        return f"""
+SELECT f.layer, 'adders' AS parameter, f.inspection_tool AS metrology_tool, f.lot_id, f.wafer_id, {key} AS point_key,
+       f.inspected_at AS point_at, f.adder_count / f.inspected_area_cm2 AS value, f.adder_count AS n,
+       NULL::DOUBLE AS vmin, NULL::DOUBLE AS vmax, f.inspected_area_cm2 AS area_cm2, f.product AS product_any
+FROM inspections f WHERE {sel} AND f.adder_count IS NOT NULL AND f.inspected_area_cm2 > 0"""
+    if e.parameter == "total":
+        params.pop("parameter")
+        return f"""
+SELECT f.layer, 'total' AS parameter, f.inspection_tool AS metrology_tool, f.lot_id, f.wafer_id, {key} AS point_key,
+       f.inspected_at AS point_at, f.defect_count / f.inspected_area_cm2 AS value, f.defect_count AS n,
+       NULL::DOUBLE AS vmin, NULL::DOUBLE AS vmax, f.inspected_area_cm2 AS area_cm2, f.product AS product_any
+FROM inspections f WHERE {sel} AND f.inspected_area_cm2 > 0"""
+    cpred = _rows_pred("c", scope)
+    return f"""
+SELECT f.layer, c.defect_class AS parameter, f.inspection_tool AS metrology_tool, f.lot_id, f.wafer_id,
+       {key} AS point_key, f.inspected_at AS point_at, sum(c.count) / any_value(f.inspected_area_cm2) AS value,
+       sum(c.count) AS n, NULL::DOUBLE AS vmin, NULL::DOUBLE AS vmax, any_value(f.inspected_area_cm2) AS area_cm2,
+       any_value(f.product) AS product_any
+FROM inspections f JOIN defect_counts c ON c.lot_id = f.lot_id AND c.wafer_id = f.wafer_id AND c.layer = f.layer
+     AND c.inspection_tool = f.inspection_tool AND c.inspected_at = f.inspected_at
+WHERE {sel} AND {cpred} AND c.defect_class GLOB $parameter AND f.inspected_area_cm2 > 0
+GROUP BY f.layer, c.defect_class, f.inspection_tool, f.lot_id, f.wafer_id, f.inspected_at"""
+
+
+def _spec_join(e: PlanEntry) -> dict[str, str]:
+    base = "SELECT {cols}, p.lot_id, p.wafer_id, p.point_key, p.point_at, p.value, p.n, p.vmin, p.vmax, p.area_cm2, p.product_any"
+    if e.is_defect or e.statistic not in ("site_value", "wafer_mean", "lot_mean") or not e.spec_check:
+        return {"select": base + ", NULL::DOUBLE AS lsl, NULL::DOUBLE AS usl", "join": "", "qualify": ""}
+    return {
+        "select": base + ", s.lsl, s.usl, (s.product = '*') AS _generic",
+        "join": (
+            "LEFT JOIN spec_limits s ON s._superseded_by IS NULL AND s.layer = p.layer AND s.parameter = p.parameter "
+            "AND (s.product = p.product_any OR s.product = '*') AND p.point_at >= s.effective_from "
+            "AND (s.effective_to IS NULL OR p.point_at < s.effective_to)"
+        ),
+        "qualify": "QUALIFY row_number() OVER (PARTITION BY layer, parameter, point_key ORDER BY _generic NULLS LAST) = 1",
+    }
+
+
+def read_points(con, e: PlanEntry, *, scope: str = "current", watermark: int | None = None,
+                dirty_lots: pl.DataFrame | None = None, wanted: pl.DataFrame | None = None) -> pl.DataFrame:
+    """Run the entry's points query; returns the series columns plus POINT_COLUMNS, in series order."""
+    sql, params = points_sql(e, scope=scope, lots=dirty_lots is not None, series=wanted is not None)
+    if scope == "as_of":
+        params["wm"] = watermark
+    cur = con.cursor()
+    try:
+        if dirty_lots is not None:
+            cur.register("dirty_lots", dirty_lots)
+        if wanted is not None:
+            cur.register("wanted_series", wanted)
+        out = cur.sql(sql, params=params).pl()
+    finally:
+        cur.close()
+    if "_generic" in out.columns:
+        out = out.drop("_generic")
+    return out
+
+
+def dirty_lots(con, e: PlanEntry, *, watermark: int) -> tuple[pl.DataFrame, bool]:
+    """Lots whose rows for this entry changed after ``watermark``; and whether spec limits changed."""
+    changed = "(f._source_file_id > $wm OR f._superseded_by > $wm)"
+    params: dict = {"wm": watermark, "layer": e.layer, "product": e.product}
+    if e.is_defect:
+        parts = [f"SELECT lot_id FROM inspections f WHERE f.layer GLOB $layer AND f.product GLOB $product AND {changed}"]
+        if e.statistic == "defect_density" and e.parameter != "total":
+            parts.append(f"SELECT lot_id FROM defect_counts f WHERE f.layer GLOB $layer AND {changed}")
+    else:
+        params["parameter"] = e.parameter
+        parts = [
+            "SELECT lot_id FROM measurements f WHERE f.layer GLOB $layer AND f.parameter GLOB $parameter "
+            f"AND f.product GLOB $product AND {changed}"
+        ]
+    if _uses_history(e):
+        params["step"] = e.step
+        parts.append(f"SELECT lot_id FROM process_history f WHERE f.step = $step AND {changed}")
+    sql = "SELECT DISTINCT lot_id FROM (" + " UNION ALL ".join(parts) + ") ORDER BY lot_id"
+    cur = con.cursor()
+    try:
+        lots = cur.sql(sql, params=params).pl()
+        spec_changed = False
+        if not e.is_defect and e.spec_check:
+            n = cur.sql(
+                "SELECT count(*) FROM spec_limits f WHERE f.layer GLOB $layer AND f.parameter GLOB $parameter "
+                f"AND {changed}",
+                params={"wm": watermark, "layer": e.layer, "parameter": e.parameter},
+            ).fetchall()[0][0]
+            spec_changed = n > 0
+    finally:
+        cur.close()
+    return lots, spec_changed
+
+
+def read_series_points(con, *, series_id: int) -> pl.DataFrame:
+    """Points of one stored series with the limits in force (see queries.series_points)."""
+    from warehouse import evaluate
+
+    return evaluate.series_points(con, series_id=series_id)
