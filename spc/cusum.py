@@ -29,6 +29,7 @@ CUSUM_LO = "cusum_lo"
 STATE_HI = "s_hi"
 STATE_LO = "s_lo"
 _BLOCK = 4096  # points per series per pass
+_RESTART_BLOCK = 256  # points per series per pass after the first
 _CELLS = 2_000_000  # cells of one pass's 2-D work array
 
 
@@ -52,7 +53,7 @@ class CusumResult:
 
 
 def cusum_arrays(lay: Layout, p: CusumParams, state: pl.DataFrame | None = None):
-    """Return (s_hi, s_lo, state_hi, state_lo) arrays; state_* are the sums carried to the next point."""
+    """Return (s_hi, s_lo, state_hi, state_lo); state_* (sums carried on, after any reset) hold at each series' last row."""
     n = lay.frame.height
     u = lay.z
     hi0, lo0 = _initial(lay, state, [STATE_HI, STATE_LO], p.headstart)
@@ -62,50 +63,66 @@ def cusum_arrays(lay: Layout, p: CusumParams, state: pl.DataFrame | None = None)
     s_hi, s_lo = np.empty(n), np.empty(n)
     c_hi, c_lo = np.empty(n), np.empty(n)
     active = np.flatnonzero(cur < ends)
+    block = _BLOCK
     while active.size:
         # Each pass runs every active series up to its next signal (or one block); chunks bound memory.
-        width = int(min(_BLOCK, (ends[active] - cur[active]).max()))
+        # After the first pass only series that signalled remain, so shorter blocks waste less padding.
+        width = int(min(block, (ends[active] - cur[active]).max()))
         step = max(1, _CELLS // width)
         for a in np.array_split(active, -(-active.size // step)):
-            _advance(u, p, a, cur, ends, hi, lo, s_hi, s_lo, c_hi, c_lo)
+            _advance(u, p, a, cur, ends, hi, lo, s_hi, s_lo, c_hi, c_lo, width)
         active = active[cur[active] < ends[active]]
+        block = _RESTART_BLOCK
     return s_hi, s_lo, c_hi, c_lo
 
 
-def _advance(u, p, active, cur, ends, hi, lo, s_hi, s_lo, c_hi, c_lo) -> None:
-    """Advance the series in `active` to their first signal or the end of one block, in place."""
+def _advance(u, p, active, cur, ends, hi, lo, s_hi, s_lo, c_hi, c_lo, block) -> None:
+    """Advance the series in `active` to their first signal or the end of one block, in place.
+
+    Rows after a signal are written too; a later pass (restarting after the signal) overwrites them.
+    """
     n = u.size
     c = cur[active]
-    ln = np.minimum(ends[active] - c, _BLOCK)
-    off = np.arange(int(ln.max()))
-    valid = off[None, :] < ln[:, None]
-    idx = np.minimum(c[:, None] + off[None, :], n - 1)
-    y = np.where(valid, u[idx], 0.0)
+    ln = np.minimum(ends[active] - c, block)
+    width = int(ln.max())
+    rows = active.size
+    if np.all(ln == width) and (rows == 1 or np.all(np.diff(c) == width)):
+        flat = slice(int(c[0]), int(c[0]) + rows * width)  # contiguous equal blocks: a view, no gather
+        y = u[flat].reshape(rows, width)
+        idx = None
+    else:
+        off = np.arange(width)
+        valid = off[None, :] < ln[:, None]
+        idx = np.minimum(c[:, None] + off[None, :], n - 1)
+        y = np.where(valid, u[idx], 0.0)
     sh = _lindley(hi[active], y - p.k)
     sl = _lindley(lo[active], -y - p.k)
     if p.reset:
-        sig = valid & ((sh > p.h) | (sl > p.h))
+        sig = (sh > p.h) | (sl > p.h)
+        if idx is not None:
+            sig &= valid
         any_sig = sig.any(axis=1)
+        first = np.where(any_sig, np.argmax(sig, axis=1), ln - 1)
     else:
-        any_sig = np.zeros(active.size, dtype=bool)
-        sig = None
-    first = np.where(any_sig, np.argmax(sig, axis=1), ln - 1) if sig is not None else ln - 1
-    keep = off[None, :] <= first[:, None]
-    rows = idx[keep]
-    s_hi[rows], s_lo[rows] = sh[keep], sl[keep]
-    c_hi[rows], c_lo[rows] = sh[keep], sl[keep]
-    r = np.arange(active.size)
-    nh = np.where(any_sig, p.headstart, sh[r, first])
-    nl = np.where(any_sig, p.headstart, sl[r, first])
+        any_sig = np.zeros(rows, dtype=bool)
+        first = ln - 1
+    if idx is None:
+        s_hi[flat], s_lo[flat] = sh.ravel(), sl.ravel()
+    else:
+        w = idx[valid]
+        s_hi[w], s_lo[w] = sh[valid], sl[valid]
+    r = np.arange(rows)
     last_rows = c + first
-    c_hi[last_rows], c_lo[last_rows] = nh, nl
-    hi[active], lo[active] = nh, nl
+    c_hi[last_rows] = np.where(any_sig, p.headstart, sh[r, first])
+    c_lo[last_rows] = np.where(any_sig, p.headstart, sl[r, first])
+    hi[active], lo[active] = c_hi[last_rows], c_lo[last_rows]
     cur[active] = c + first + 1
 
 
 def _lindley(s0: np.ndarray, y: np.ndarray) -> np.ndarray:
     """Row-wise s_t = max(0, s_{t-1} + y_t) from s0, via cumulative sums and cumulative minima."""
-    d = np.cumsum(np.concatenate([s0[:, None], y], axis=1), axis=1)[:, 1:]
+    y[:, 0] += s0  # y is a fresh array; summing s0 first keeps the loop's order of additions
+    d = np.cumsum(y, axis=1)
     return d - np.minimum(0.0, np.minimum.accumulate(d, axis=1))
 
 

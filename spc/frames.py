@@ -141,6 +141,46 @@ def window_count(cond: np.ndarray, pos: np.ndarray, width: int) -> np.ndarray:
     return cs[idx + 1] - cs[lo]
 
 
+def window_all(cond: np.ndarray, pos: np.ndarray, width: int) -> np.ndarray:
+    """True where the last `width` rows of the same series are all True (needs `width` rows to exist).
+
+    Computed by doubling (log2(width) shifted ANDs over boolean arrays), equal to ``run_length >= width``.
+
+    >>> window_all(np.array([1, 1, 1, 0, 1, 1], bool), np.arange(6), 2).tolist()
+    [False, True, True, False, False, True]
+    """
+    out = cond.copy()
+    span = 1  # `acc` holds "the last `span` rows are all True"
+    acc = cond.copy()
+    need = width - 1  # extra rows still to cover beyond the current one
+    done = 0
+    while need:
+        if need & 1:
+            # cover `span` more rows ending `done + 1` rows back
+            sh = done + 1
+            tmp = np.zeros_like(out)
+            if sh < out.size:
+                tmp[sh:] = acc[: out.size - sh]
+            out &= tmp
+            done += span
+        need >>= 1
+        if need:
+            tmp = np.zeros_like(acc)
+            if span < acc.size:
+                tmp[span:] = acc[: acc.size - span]
+            acc &= tmp
+            span *= 2
+    return out & (pos >= width - 1)
+
+
+def window_count_small(cond: np.ndarray, pos: np.ndarray, width: int) -> np.ndarray:
+    """`window_count` for short windows by shifted additions (cheaper than cumulative sums)."""
+    out = cond.astype(np.int16)
+    for j in range(1, width):
+        out[j:] += cond[:-j] & (pos[j:] >= j)
+    return out
+
+
 def gather_signals(
     lay: Layout, hits: Sequence[tuple[str, np.ndarray]], passthrough: Sequence[str], values: dict | None = None
 ) -> pl.DataFrame:

@@ -27,7 +27,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 import polars as pl
 
-from spc.frames import Layout, gather_signals, layout_points, run_length, window_count
+from spc.frames import Layout, gather_signals, layout_points, window_all, window_count, window_count_small
 
 
 @dataclass(frozen=True)
@@ -165,39 +165,66 @@ def context_points(rules: Sequence[str | RuleParams]) -> int:
 
 
 def rule_masks(lay: Layout, rules: Sequence[str | RuleParams]) -> list[tuple[str, np.ndarray]]:
-    """Boolean signal mask per rule over a laid-out points frame (the vectorised kernels)."""
+    """Boolean signal mask per rule over a laid-out points frame (the vectorised kernels).
+
+    Rules with equal parameters (we1 and nelson1, we2 and nelson5, we3 and nelson6) share one computation.
+    """
     z, start, pos = lay.z, lay.start, lay.pos
-    out = []
-    diff = None
-    for r in map(rule_params, rules):
+    memo: dict = {}
+
+    def cached(key, fn):
+        if key not in memo:
+            memo[key] = fn()
+        return memo[key]
+
+    def count(cond_key, cond, width):
+        fn = window_count_small if width <= 8 else window_count
+        return cached(("count", cond_key, width), lambda: fn(cond(), pos, width))
+
+    above = lambda k: cached(("gt", k), lambda: z > k)  # noqa: E731
+    below = lambda k: cached(("lt", k), lambda: z < -k)  # noqa: E731
+    absz = lambda: cached("abs", lambda: np.abs(z))  # noqa: E731
+
+    def diff():
+        def make():
+            d = np.zeros_like(lay.value)
+            d[1:] = lay.value[1:] - lay.value[:-1]
+            d[start] = 0.0
+            return d
+        return cached("diff", make)
+
+    def one(r: RuleParams) -> np.ndarray:
         if isinstance(r, BeyondLimits):
-            m = np.abs(z) > r.k
-        elif isinstance(r, ZoneCount):
-            up, dn = z > r.k, z < -r.k
-            m = (up & (window_count(up, pos, r.window) >= r.m)) | (dn & (window_count(dn, pos, r.window) >= r.m))
-        elif isinstance(r, SameSideRun):
-            m = (run_length(z > 0, start) >= r.length) | (run_length(z < 0, start) >= r.length)
-        elif isinstance(r, Trend | Alternation):
-            if diff is None:
-                diff = np.zeros_like(lay.value)
-                diff[1:] = lay.value[1:] - lay.value[:-1]
-                diff[start] = 0.0
-            if isinstance(r, Trend):
-                m = (run_length(diff > 0, start) >= r.length - 1) | (run_length(diff < 0, start) >= r.length - 1)
-            else:
-                alt = np.zeros(z.size, dtype=bool)
-                alt[1:] = (diff[1:] * diff[:-1]) < 0
-                alt &= pos >= 2
-                m = run_length(alt, start) >= r.length - 2
-        elif isinstance(r, InnerRun):
-            m = run_length(np.abs(z) < r.k, start) >= r.length
-        elif isinstance(r, OuterRun):
-            m = run_length(np.abs(z) > r.k, start) >= r.length
+            return absz() > r.k
+        if isinstance(r, ZoneCount):
+            up, dn = above(r.k), below(r.k)
+            return (up & (count(("gt", r.k), lambda: up, r.window) >= r.m)) | (
+                dn & (count(("lt", r.k), lambda: dn, r.window) >= r.m))
+        if isinstance(r, SameSideRun):
+            return window_all(above(0.0), pos, r.length) | window_all(below(0.0), pos, r.length)
+        if isinstance(r, Trend):
+            d = diff()
+            # L points in a row rising = L-1 rises; rows at a series start carry d = 0.
+            return window_all(d > 0, pos, r.length - 1) | window_all(d < 0, pos, r.length - 1)
+        if isinstance(r, Alternation):
+            d = diff()
+            alt = np.zeros(z.size, dtype=bool)
+            alt[1:] = (d[1:] * d[:-1]) < 0
+            alt &= pos >= 2
+            return window_all(alt, pos, r.length - 2)
+        if isinstance(r, InnerRun):
+            return window_all(absz() < r.k, pos, r.length)
+        if isinstance(r, OuterRun):
+            m = window_all(absz() > r.k, pos, r.length)
             if r.require_both_sides:
-                m &= (window_count(z > r.k, pos, r.length) > 0) & (window_count(z < -r.k, pos, r.length) > 0)
-        else:  # pragma: no cover - RuleParams is closed
-            raise TypeError(f"not a rule: {r!r}")
-        out.append((r.id, m))
+                m &= (window_count(above(r.k), pos, r.length) > 0) & (window_count(below(r.k), pos, r.length) > 0)
+            return m
+        raise TypeError(f"not a rule: {r!r}")  # pragma: no cover - RuleParams is closed
+
+    out = []
+    for r in map(rule_params, rules):
+        key = ("rule", replace(r, id=""))
+        out.append((r.id, cached(key, lambda r=r: one(r))))
     return out
 
 
