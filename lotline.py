@@ -318,6 +318,299 @@ def _spc_read_points(path, value_col, series_col, order_col, center, sigma):
 
 # --- monitoring commands ---
 
+MONITORING_CAUTION = ("Signals advise; they do not decide. The fab's out-of-control action plan (OCAP) and a "
+                      "qualified engineer decide holds, releases, rework and tool downs.")
+
+
+def _user_name() -> str:
+    import getpass
+
+    try:
+        return getpass.getuser()
+    except Exception:  # noqa: BLE001
+        return "unknown"
+
+
+@cli.group("plan")
+def plan_group():
+    """Monitoring plan: load and show the TOML plan of charts.
+
+    Example: lotline plan load demo_fab/plan.toml --db lotline.duckdb
+    """
+
+
+@plan_group.command("load")
+@click.argument("file", type=click.Path(dir_okay=False))
+@db_option
+@click.option("--check", is_flag=True, help="Only validate the file; store nothing.")
+def plan_load_cmd(file, db, check: bool):
+    """Validate a monitoring plan (file:line:col errors) and store it as the plan in force.
+
+    Example: lotline plan load demo_fab/plan.toml --db lotline.duckdb
+    """
+    from warehouse import store
+    from warehouse.errors import LotlineError
+    from warehouse.plan import read_plan, store_plan
+
+    try:
+        plan = read_plan(file)
+        if check:
+            click.echo(f"{file}: ok, {len(plan.entries)} chart(s)")
+            return
+        with store.open_warehouse(store.resolve_db_path(db), create=True) as con, store.transaction(con):
+            version = store_plan(con, plan, user=_user_name())
+            store.bump_data_version(con)
+    except LotlineError as exc:
+        fail(exc)
+    click.echo(f"loaded plan {plan.name!r} from {file} as plan version {version}: {len(plan.entries)} chart(s)")
+
+
+@plan_group.command("show")
+@db_option
+@click.option("--json", "as_json", is_flag=True, help="Print the entries as JSON.")
+def plan_show_cmd(db, as_json: bool):
+    """Show the plan in force with the expected in-control ARL of each chart's rule set.
+
+    Example: lotline plan show --db lotline.duckdb
+    """
+    from warehouse import store
+    from warehouse.errors import LotlineError
+    from warehouse.plan import current_plan, describe_plan
+
+    try:
+        with store.open_warehouse(store.resolve_db_path(db), read_only=True) as con:
+            plan = current_plan(con)
+    except LotlineError as exc:
+        fail(exc)
+    if plan is None:
+        fail(RuntimeError("no monitoring plan is loaded. Fix: run `lotline plan load PLAN.toml`."))
+    rows = describe_plan(plan)
+    if as_json:
+        echo_json(rows)
+        return
+    click.echo(f"plan {plan.name!r} ({plan.path}), {len(rows)} chart(s)")
+    for r in rows:
+        arl = r["in_control_arl"]
+        extra = f", {r['chart_type']} ARL0 {arl['chart']}" if arl["chart"] is not None else ""
+        sel = r["select"]
+        click.echo(
+            f"  {r['chart']}: {r['statistic']} of {sel['layer']}/{sel['parameter']} by "
+            f"{','.join(r['split']) or '(pooled)'}; {r['chart_type']}; rules {','.join(r['rules'])} "
+            f"(in-control ARL {arl['rules']}{extra}; combined ~{arl['combined']}); severity {r['severity']}"
+        )
+
+
+@cli.group("limits")
+def limits_group():
+    """Control limits: frozen versions per series, with who/when/why.
+
+    Example: lotline limits show --chart m1-cd-wafer --db lotline.duckdb
+    """
+
+
+@limits_group.command("show")
+@db_option
+@click.option("--chart", default=None, help="Only this plan entry.")
+@click.option("--json", "as_json", is_flag=True, help="Print JSON objects.")
+def limits_show_cmd(db, chart, as_json: bool):
+    """Show the limits in force per series (empty limits: not frozen yet).
+
+    Example: lotline limits show --chart m1-cd-wafer --json
+    """
+    from warehouse import queries, store
+    from warehouse.errors import LotlineError
+
+    try:
+        with store.open_warehouse(store.resolve_db_path(db), read_only=True) as con:
+            df = queries.series_info(con, chart=chart)
+    except LotlineError as exc:
+        fail(exc)
+    rows = df.to_dicts()
+    if as_json:
+        echo_json(rows)
+        return
+    for r in rows:
+        lim = ("not frozen" if r["limit_version"] is None else
+               f"v{r['limit_version']} center {r['center']:.4g} sigma {r['sigma']:.4g} LCL {r['lcl']:.4g} UCL {r['ucl']:.4g}")
+        click.echo(f"{r['series_id']:>6} {r['chart']} {r['layer']}/{r['parameter']} {r['split_json']}: {lim}")
+
+
+@limits_group.command("history")
+@db_option
+@click.option("--chart", default=None, help="Only this plan entry.")
+@click.option("--json", "as_json", is_flag=True, help="Print JSON objects.")
+def limits_history_cmd(db, chart, as_json: bool):
+    """List every frozen limit version with its baseline, who froze it, when and why.
+
+    Example: lotline limits history --chart m1-cd-wafer
+    """
+    from warehouse import queries, store
+    from warehouse.errors import LotlineError
+
+    try:
+        with store.open_warehouse(store.resolve_db_path(db), read_only=True) as con:
+            df = queries.series_limits(con, chart=chart)
+    except LotlineError as exc:
+        fail(exc)
+    rows = df.to_dicts()
+    if as_json:
+        echo_json(rows)
+        return
+    for r in rows:
+        click.echo(
+            f"{r['series_id']:>6} v{r['version']} {r['chart']} {r['split_json']}: center {r['center']:.4g} "
+            f"sigma {r['sigma']:.4g} ({r['sigma_source']}, n={r['baseline_n']}) frozen {r['frozen_at']:%Y-%m-%d %H:%M} "
+            f"by {r['frozen_by']}: {r['reason']}"
+        )
+
+
+@limits_group.command("freeze")
+@db_option
+@click.option("--chart", required=True, help="Plan entry whose series get a new limit version.")
+@click.option("--series", "series_id", type=int, default=None, help="Only this series id.")
+@click.option("--window", default=None, metavar="FROM..TO", help="Baseline window of point times (ISO dates).")
+@click.option("--first", type=int, default=None, help="Baseline = the first N points of each series.")
+@click.option("--reason", required=True, help="Why the limits are (re)frozen; kept in the history.")
+@click.option("--by", "user", default=None, help="Engineer freezing them (default: login name).")
+def limits_freeze_cmd(db, chart, series_id, window, first, reason, user):
+    """Freeze Phase I limits as a new numbered version (evaluation never re-estimates them).
+
+    Example: lotline limits freeze --chart m1-cd-wafer --window 2026-09-01..2026-09-14 --reason "new resist lot"
+    """
+    from datetime import datetime
+
+    from warehouse import evaluate, store
+    from warehouse.errors import LotlineError
+
+    win = None
+    if window:
+        a, sep, b = window.partition("..")
+        try:
+            win = (datetime.fromisoformat(a), datetime.fromisoformat(b))
+        except ValueError:
+            raise click.BadParameter("expected FROM..TO with ISO dates, e.g. 2026-09-01..2026-09-14", param_hint="--window")
+    try:
+        rows = evaluate.freeze_limits(store.resolve_db_path(db), chart=chart, reason=reason, user=user or _user_name(),
+                                      first=first, window=win, series_id=series_id)
+    except LotlineError as exc:
+        fail(exc)
+    for r in rows:
+        if "skipped" in r:
+            click.echo(f"series {r['series_id']}: skipped, {r['skipped']}")
+        else:
+            click.echo(f"series {r['series_id']}: v{r['version']} center {r['center']:.4g} sigma {r['sigma']:.4g} "
+                       f"(n={r['baseline_n']})")
+
+
+@cli.command("evaluate")
+@db_option
+@click.option("--full", is_flag=True, help="Recompute every series from its first point.")
+@click.option("--json", "as_json", is_flag=True, help="Print the run summary as JSON.")
+def evaluate_cmd(db, full: bool, as_json: bool):
+    """Evaluate every chart of the plan: new signals, withdrawn ones, excursions (incremental by default).
+
+    Example: lotline evaluate --db lotline.duckdb
+    """
+    from warehouse import evaluate, store
+    from warehouse.errors import LotlineError
+
+    try:
+        s = evaluate.evaluate_warehouse(store.resolve_db_path(db), full=full, user=_user_name())
+    except LotlineError as exc:
+        fail(exc)
+    if as_json:
+        echo_json(s.as_dict())
+        return
+    click.echo(
+        f"{s.mode} evaluation: {s.series} series ({s.series_appended} appended, {s.series_recomputed} recomputed), "
+        f"{s.points} points, {s.signals_new} new signals, {s.signals_withdrawn} withdrawn, "
+        f"{s.excursions_opened} excursions opened, {s.limits_frozen} limit versions auto-frozen, "
+        f"{s.waiting_for_baseline} series waiting for their baseline ({s.seconds} s)"
+    )
+    for n in s.notices:
+        click.echo(f"notice: {n}")
+    click.echo(MONITORING_CAUTION)
+
+
+@cli.group("excursions")
+def excursions_group():
+    """Excursions: grouped signals and their dispositions.
+
+    Example: lotline excursions list --open --json
+    """
+
+
+@excursions_group.command("list")
+@db_option
+@click.option("--open", "open_only", is_flag=True, help="Only open and acknowledged excursions.")
+@click.option("--since", default=None, help="Only excursions whose last point is at or after this ISO date.")
+@click.option("--json", "as_json", is_flag=True, help="Print JSON objects.")
+def excursions_list_cmd(db, open_only: bool, since, as_json: bool):
+    """List excursions, newest first.
+
+    Example: lotline excursions list --open --since 2026-09-01 --json
+    """
+    from datetime import datetime
+
+    from warehouse import queries, store
+    from warehouse.errors import LotlineError
+
+    try:
+        t = datetime.fromisoformat(since) if since else None
+    except ValueError:
+        raise click.BadParameter("expected an ISO date such as 2026-09-01", param_hint="--since")
+    try:
+        with store.open_warehouse(store.resolve_db_path(db), read_only=True) as con:
+            df = queries.list_excursions(con, open_only=open_only, since=t)
+    except LotlineError as exc:
+        fail(exc)
+    rows = [
+        {"id": r["excursion_id"], "state": r["state"], "severity": r["severity"], "chart": r["chart"],
+         "layer": r["layer"], "parameter": r["parameter"], "split": json.loads(r["split_json"]),
+         "rules": json.loads(r["rules_json"]), "first_at": r["first_at"], "last_at": r["last_at"],
+         "lots": json.loads(r["lots_json"]), "signals": r["n_signals"]}
+        for r in df.to_dicts()
+    ]
+    if as_json:
+        echo_json(rows)
+        return
+    for r in rows:
+        split = ",".join(f"{k}={v}" for k, v in r["split"].items()) or "(pooled)"
+        click.echo(f"#{r['id']} {r['state']} {r['severity']} {r['chart']} {r['layer']}/{r['parameter']} {split} "
+                   f"rules {','.join(r['rules'])} {r['first_at']:%Y-%m-%d %H:%M}..{r['last_at']:%Y-%m-%d %H:%M} "
+                   f"lots {','.join(r['lots'])}")
+    click.echo(MONITORING_CAUTION)
+
+
+@excursions_group.command("set")
+@click.argument("excursion_id", type=int)
+@db_option
+@click.option("--state", type=click.Choice(["open", "acknowledged", "closed"]), required=True, help="New state.")
+@click.option("--by", "user", required=True, help="Engineer who decided (kept in the audit trail).")
+@click.option("--classification", type=click.Choice(["real", "measurement", "false_alarm"]), default=None,
+              help="What the excursion was.")
+@click.option("--cause", default=None, help="Cause category, e.g. process_tool, metrology, material.")
+@click.option("--action", default=None, help="Action taken under the fab's OCAP.")
+@click.option("--lots", default=None, help="Comma-separated lots the disposition covers.")
+@click.option("--comment", default=None, help="Free text.")
+def excursions_set_cmd(excursion_id, db, state, user, classification, cause, action, lots, comment):
+    """Record a disposition: append it to the audit trail and move the excursion's state.
+
+    Example: lotline excursions set 12 --state closed --by a.engineer --classification measurement --cause metrology
+    """
+    from warehouse import excursions, store
+    from warehouse.errors import LotlineError
+
+    try:
+        row = excursions.record_disposition(
+            store.resolve_db_path(db), excursion_id, user=user, state=state, classification=classification,
+            cause=cause, action=action, lots=[x for x in (lots or "").split(",") if x] or None, comment=comment)
+    except LotlineError as exc:
+        fail(exc)
+    click.echo(f"excursion #{excursion_id}: {row['from_state']} -> {row['to_state']} by {row['changed_by']}")
+    click.echo(MONITORING_CAUTION)
+
+
 
 # --- drill-down commands ---
 

@@ -171,11 +171,14 @@ def _attach_series(ctx: _Context, e: PlanEntry, pts: pl.DataFrame, *, create: bo
 
 def _evaluate_entry(ctx: _Context, e: PlanEntry, *, full: bool, watermark: int) -> None:
     con = ctx.con
+    # series whose limits were re-frozen since their last evaluation are recomputed even without new data
+    refrozen = {sid for (chart, *_), sid in ctx.series.items() if chart == e.name and sid in ctx.limits
+                and (ctx.state.get(sid) or {}).get("limit_version") != ctx.limits[sid]["version"]}
     if not full:
         lots, spec_changed = pts_mod.dirty_lots(con, e, watermark=watermark)
         if spec_changed:
             full = True
-        elif lots.height == 0:
+        elif lots.height == 0 and not refrozen:
             return
     if full:
         pts = _attach_series(ctx, e, pts_mod.read_points(con, e), create=True)
@@ -193,7 +196,7 @@ def _evaluate_entry(ctx: _Context, e: PlanEntry, *, full: bool, watermark: int) 
     must = set(removed["series_id"].to_list()) | set(
         added.join(old.select(key), on=key, how="semi")["series_id"].to_list()
     )
-    append, recompute = [], set(must)
+    append, recompute = [], set(must) | refrozen
     firsts = added.group_by("series_id").agg(pl.col("point_at").min().alias("t"),
                                              pl.col("point_key").sort_by("point_at", "point_key").first().alias("k"))
     for sid, t, k in firsts.iter_rows():
@@ -207,8 +210,8 @@ def _evaluate_entry(ctx: _Context, e: PlanEntry, *, full: bool, watermark: int) 
             append.append(sid)
     if recompute:
         scols = pts_mod.series_columns(e)
-        wanted = new.select([*scols, "series_id"]).unique().vstack(old.select([*scols, "series_id"]).unique())
-        wanted = wanted.filter(pl.col("series_id").is_in(sorted(recompute))).unique().drop("series_id")
+        known = _series_keys(ctx, e, sorted(recompute))
+        wanted = known.unique().drop("series_id")
         pts = _attach_series(ctx, e, pts_mod.read_points(con, e, wanted=wanted), create=True)
         _recompute(ctx, e, pts, sorted(recompute))
     if append:
@@ -490,3 +493,51 @@ def series_points(con, *, series_id: int) -> pl.DataFrame:
             (pl.col("center") - k * pl.col("sigma")).alias("lcl"), (pl.col("center") + k * pl.col("sigma")).alias("ucl"),
         )
     return pts.select(cols)
+
+
+def _series_keys(ctx: _Context, e: PlanEntry, series: list[int]) -> pl.DataFrame:
+    """Series columns of stored series ids (for the ``wanted_series`` filter)."""
+    rows = []
+    for (chart, layer, parameter, sj), sid in ctx.series.items():
+        if chart == e.name and sid in series:
+            rows.append({"series_id": sid, "layer": layer, "parameter": parameter, **json.loads(sj)})
+    cols = pts_mod.series_columns(e)
+    return pl.DataFrame(rows, schema={"series_id": pl.Int64, **{c: pl.String for c in cols}})
+
+
+def freeze_limits(path=None, *, chart: str, reason: str, user: str, first: int | None = None,
+                  window: tuple[datetime, datetime] | None = None, series_id: int | None = None) -> list[dict]:
+    """Freeze a new limit version for every series of a chart (or one series) from a chosen baseline.
+
+    The baseline is the chart's plan baseline unless ``first`` (first N points) or ``window`` (from, to
+    inclusive) is given. Returns one dict per series frozen (series_id, version, center, sigma, lcl, ucl,
+    baseline_n) and, for series whose baseline is incomplete, ``skipped`` with the reason.
+    """
+    if not reason or not reason.strip():
+        raise ConfigError("freezing limits needs a reason", fix="pass --reason TEXT")
+    out = []
+    with store.open_warehouse(path) as con, store.transaction(con):
+        plan = current_plan(con)
+        if plan is None:
+            raise ConfigError("no monitoring plan is loaded", fix="run `lotline plan load PLAN.toml` first")
+        e = plan.entry(chart)
+        s = RunSummary("freeze", current_plan_version(con), 0)
+        ctx = _Context(con, _now(), user, s)
+        pts = _attach_series(ctx, e, pts_mod.read_points(con, e), create=True)
+        ids = sorted(pts["series_id"].unique().to_list()) if series_id is None else [series_id]
+        for sid in ids:
+            sp = pts.filter(pl.col("series_id") == sid)
+            base = lim_mod.baseline_points(e, sp, first=first, window=window)
+            if base is None or base.height < 2:
+                out.append({"series_id": sid, "skipped": "baseline incomplete (too few points)"})
+                continue
+            try:
+                est = lim_mod.estimate_limits(e, base)
+            except lim_mod.LimitsError as exc:
+                out.append({"series_id": sid, "skipped": exc.what})
+                continue
+            v = lim_mod.insert_version(con, sid, est, user=user, reason=reason)
+            out.append({"series_id": sid, "version": v, "center": est["center"], "sigma": est["sigma"],
+                        "lcl": est["lcl"], "ucl": est["ucl"], "baseline_n": est["baseline_n"]})
+        store.bump_data_version(con)
+    return out

@@ -39,6 +39,7 @@ class LimitsError(LotlineError, ValueError):
 def baseline_points(e: PlanEntry, pts: pl.DataFrame, *, window: tuple[datetime, datetime] | None = None,
                     first: int | None = None) -> pl.DataFrame | None:
     """The baseline subset of one series' points (in order), or None while the baseline is incomplete."""
+    explicit = window is not None
     if first is None and window is None:
         if "first" in e.baseline:
             first = int(e.baseline["first"])
@@ -48,7 +49,7 @@ def baseline_points(e: PlanEntry, pts: pl.DataFrame, *, window: tuple[datetime, 
         return pts.head(first) if pts.height >= first else None
     lo, hi = window
     sub = pts.filter((pl.col("point_at") >= lo) & (pl.col("point_at") <= hi))
-    complete = pts.filter(pl.col("point_at") > hi).height > 0
+    complete = explicit or pts.filter(pl.col("point_at") > hi).height > 0
     return sub if complete and sub.height >= MIN_BASELINE else None
 
 
