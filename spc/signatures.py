@@ -12,8 +12,8 @@ odd j ↔ sin(mθ), normalised so that (1/π)∫∫ Z_i Z_j ρ dρ dθ = δ_ij o
 normalisation the variance over the disk of a fitted surface is the sum of its squared coefficients
 (j ≥ 2), so each term's share of that sum is its share of the fitted variation.
 
-Fits are least squares, vectorised across wafers: per-wafer normal equations are summed with one sparse
-matrix product and solved as a batch with a pseudo-inverse, so wafers may have different site layouts.
+Fits are least squares, vectorised across wafers: per-wafer normal equations are summed with one sorted
+reduction and solved as a batch with a pseudo-inverse, so wafers may have different site layouts.
 When a layout cannot tell two terms apart (too few sites, sites on one line) the pseudo-inverse returns the
 minimum-norm split and ``rank`` says how many terms the layout supports.
 """
@@ -25,7 +25,6 @@ from math import factorial
 
 import numpy as np
 import polars as pl
-from scipy import sparse
 
 __all__ = [
     "classify_signatures",
@@ -125,23 +124,30 @@ def _prepare(
 
 
 def _batched_lstsq(design: np.ndarray, v: np.ndarray, w: np.ndarray, n_w: int, rcond: float = 1e-10):
-    """Least squares per group of rows: coefficients (n_w × J), rank, residual and total sums of squares."""
-    n, J = design.shape
-    g = sparse.csr_matrix((np.ones(n), (w, np.arange(n))), shape=(n_w, n))
+    """Least squares per group of rows: coefficients (n_w × J), rank, residual and total sums of squares.
+
+    Rows are sorted by group once; every per-group sum is then one ``np.add.reduceat`` over contiguous
+    column blocks (the normal equations' J(J+1)/2 products, the right-hand sides, the residuals).
+    """
+    order = np.argsort(w, kind="stable")
+    w, v = w[order], v[order]
+    dt = np.ascontiguousarray(design[order].T)  # J × n: row-wise products are contiguous
+    starts = np.r_[0, np.flatnonzero(np.diff(w)) + 1]
+    J = dt.shape[0]
     iu, ju = np.triu_indices(J)
-    ata_u = np.asarray(g @ (design[:, iu] * design[:, ju]))
+    ata_u = np.add.reduceat(dt[iu] * dt[ju], starts, axis=1).T
     ata = np.zeros((n_w, J, J))
     ata[:, iu, ju] = ata_u
     ata[:, ju, iu] = ata_u
-    atb = np.asarray(g @ (design * v[:, None]))
+    atb = np.add.reduceat(dt * v, starts, axis=1).T
     coef = np.einsum("wij,wj->wi", np.linalg.pinv(ata, rcond=rcond, hermitian=True), atb)
     eig = np.linalg.eigvalsh(ata)
     rank = (eig > rcond * eig.max(axis=1, keepdims=True)).sum(axis=1)
-    resid = v - np.einsum("nj,nj->n", design, coef[w])
-    count = np.asarray(g.sum(axis=1)).ravel()
-    mean = np.asarray(g @ v).ravel() / count
-    ss_res = np.asarray(g @ resid**2).ravel()
-    ss_tot = np.asarray(g @ (v - mean[w]) ** 2).ravel()
+    resid = v - np.einsum("jn,nj->n", dt, coef[w])
+    count = np.diff(np.r_[starts, w.size])
+    mean = np.add.reduceat(v, starts) / count
+    ss_res = np.add.reduceat(resid**2, starts)
+    ss_tot = np.add.reduceat((v - mean[w]) ** 2, starts)
     return coef, rank, ss_res, ss_tot, count
 
 
