@@ -333,18 +333,26 @@ def _value_tests(
         ok_a, stats.f.sf(np.where(ok_a, f, 0.0), np.maximum(k - 1, 1), np.maximum(N - k, 1)), np.nan
     )
 
-    # Kruskal–Wallis: mid-ranks within each step×kind, tie correction from the sizes of tied groups.
-    ranked = memb.with_columns(pl.col("value").rank("average").over("gid").alias("r"))
-    rs = ranked.group_by("cid").agg(pl.col("gid").first(), pl.len().alias("n"), pl.col("r").sum().alias("R"))
+    # Kruskal–Wallis: mid-ranks within each step×kind and the tie term Σ(t³ − t), from one sort.
+    srt = memb.select("gid", "cid", "value").sort(["gid", "value"])
+    g, x = srt["gid"].to_numpy(), srt["value"].to_numpy()
+    n = g.size
+    gnew = np.r_[True, g[1:] != g[:-1]]
+    new = gnew | np.r_[True, x[1:] != x[:-1]]
+    run_start = np.flatnonzero(new)
+    run_len = np.diff(np.r_[run_start, n])
+    gstart = np.flatnonzero(gnew)
+    gidx = np.cumsum(gnew) - 1
+    pos = np.arange(n) - gstart[gidx]
+    ranks = np.repeat(pos[run_start] + 1 + (run_len - 1) / 2, run_len)
+    tt = np.bincount(gidx[run_start], weights=run_len.astype(float) ** 3 - run_len, minlength=gstart.size)
+    rs = srt.with_columns(pl.Series("r", ranks)).group_by("cid").agg(
+        pl.col("gid").first(), pl.len().alias("n"), pl.col("r").sum().alias("R")
+    )
     h = rs.group_by("gid").agg(
         pl.len().alias("k"), pl.col("n").sum().alias("N"), (pl.col("R") ** 2 / pl.col("n")).sum().alias("RR")
     )
-    ties = (
-        memb.group_by(["gid", "value"])
-        .agg(pl.len().cast(pl.Float64).alias("t"))
-        .group_by("gid")
-        .agg((pl.col("t") ** 3 - pl.col("t")).sum().alias("tt"))
-    )
+    ties = pl.DataFrame({"gid": g[gstart], "tt": tt})
     h = h.join(ties, on="gid", how="left")
     kk = h["k"].to_numpy().astype(float)
     NN = h["N"].to_numpy().astype(float)
