@@ -346,8 +346,10 @@ def _value_tests(
     pos = np.arange(n) - gstart[gidx]
     ranks = np.repeat(pos[run_start] + 1 + (run_len - 1) / 2, run_len)
     tt = np.bincount(gidx[run_start], weights=run_len.astype(float) ** 3 - run_len, minlength=gstart.size)
-    rs = srt.with_columns(pl.Series("r", ranks)).group_by("cid").agg(
-        pl.col("gid").first(), pl.len().alias("n"), pl.col("r").sum().alias("R")
+    rs = (
+        srt.with_columns(pl.Series("r", ranks))
+        .group_by("cid")
+        .agg(pl.col("gid").first(), pl.len().alias("n"), pl.col("r").sum().alias("R"))
     )
     h = rs.group_by("gid").agg(
         pl.len().alias("k"), pl.col("n").sum().alias("N"), (pl.col("R") ** 2 / pl.col("n")).sum().alias("RR")
