@@ -31,6 +31,20 @@ import streamlit as st
 
 from dashboard.identity import Author, resolve_author
 from warehouse import queries, store
+from warehouse.errors import LotlineError
+
+__all__ = [
+    "LotlineError",
+    "current_author",
+    "db_path",
+    "load",
+    "load_one",
+    "record_disposition",
+    "series_drift",
+    "wafer_signature",
+    "excursion_commonality",
+    "excursion_attribution",
+]
 
 ENV_USER_HEADER = "LOTLINE__DASHBOARD__USER_HEADER"
 READ_WAIT_S = 15.0
@@ -172,7 +186,8 @@ def empty(frame: pl.DataFrame | None) -> bool:
 
 
 @st.cache_data(max_entries=128, show_spinner=False)
-def _drift(db: str, stamp: tuple[int, int], series_id: int, lam: float, L: float, k: float, h: float):
+def _drift(db: str, stamp: tuple[int, int], series_id: int, lam: float, L: float, limits: str, k: float, h: float,
+           headstart: float):  # fmt: skip
     from spc.cusum import CusumParams, evaluate_cusum
     from spc.ewma import EwmaParams, evaluate_ewma
 
@@ -182,17 +197,18 @@ def _drift(db: str, stamp: tuple[int, int], series_id: int, lam: float, L: float
         return pts, pts
     frame = pts.with_columns(pl.lit(str(series_id)).alias("series"))
     keep = ["point_at", "lot_id", "wafer_id", "point_key"]
-    ewma = evaluate_ewma(frame, EwmaParams(lam=lam, L=L), passthrough=keep).points
-    cusum = evaluate_cusum(frame, CusumParams(k=k, h=h), passthrough=keep).points
+    ewma = evaluate_ewma(frame, EwmaParams(lam=lam, L=L, limits=limits), passthrough=keep).points
+    cusum = evaluate_cusum(frame, CusumParams(k=k, h=h, headstart=headstart), passthrough=keep).points
     return ewma, cusum
 
 
 def series_drift(
-    series_id: int, *, lam: float, L: float, k: float, h: float
+    series_id: int, *, lam: float, L: float, limits: str = "exact", k: float, h: float, headstart: float = 0.0
 ) -> tuple[pl.DataFrame, pl.DataFrame]:
     """EWMA and CUSUM paths of one series from the engine (spc.ewma / spc.cusum) over its stored points."""
     db = db_path()
-    return _drift(str(db), store.file_stamp(db), int(series_id), float(lam), float(L), float(k), float(h))
+    return _drift(str(db), store.file_stamp(db), int(series_id), float(lam), float(L), str(limits), float(k),
+                  float(h), float(headstart))  # fmt: skip
 
 
 @st.cache_data(max_entries=64, show_spinner=False)
@@ -255,3 +271,32 @@ def excursion_attribution(excursion_id: int) -> pl.DataFrame | None:
     except ImportError:
         return None
     return None
+
+
+# ------------------------------------------------------------------------------------------ writing
+
+
+def record_disposition(
+    *,
+    excursion_id: int,
+    to_state: str,
+    classification: str | None,
+    cause_category: str | None,
+    action: str | None,
+    comment: str | None,
+    lots_affected: list[str] | None,
+    author: Author,
+) -> dict[str, Any]:
+    """Write one disposition through :func:`warehouse.excursions.record_disposition` (its locking rules).
+
+    The write opens the warehouse read-write for its own unit of work (retrying while another process holds
+    the file); inside this process it waits until no page is reading. The caches see the change because the
+    file's stamp changes.
+    """
+    from warehouse import excursions
+
+    with _LOCK.writing():
+        return excursions.record_disposition(
+            str(db_path()), int(excursion_id), user=author.name, state=to_state, classification=classification,
+            cause=cause_category, action=action, lots=lots_affected, comment=comment,
+        )  # fmt: skip

@@ -11,10 +11,9 @@ import polars as pl
 import streamlit as st
 
 from dashboard import charts, data, widgets
+from warehouse.plan import CHART_PARAMS
 
 WINDOWS = (0, 7, 30, 90, 180, 365)
-DEFAULT_EWMA = {"lambda": 0.2, "L": 3.0}
-DEFAULT_CUSUM = {"k": 0.5, "h": 5.0}
 
 
 def _series_label(row: dict) -> str:
@@ -102,11 +101,14 @@ def main() -> None:
                        {"lot": ref.lot_id, "wafer": ref.wafer_id, "series": series_id, "layer": info["layer"],
                         "parameter": info["parameter"]}.items() if v is not None})  # fmt: skip
 
-    ewma_p = {**DEFAULT_EWMA, **{k: v for k, v in params.items() if k in ("lambda", "L")}}
-    cusum_p = {**DEFAULT_CUSUM, **{k: v for k, v in params.items() if k in ("k", "h")}}
+    # EWMA and CUSUM panels use the entry's own design when it is an EWMA or CUSUM chart, else the defaults.
+    chart_type = plan_row.get("chart_type")
+    ewma_p = {**CHART_PARAMS["ewma"], **(params if chart_type == "ewma" else {})}
+    cusum_p = {**CHART_PARAMS["cusum"], **(params if chart_type == "cusum" else {})}
     ewma, cusum = data.series_drift(
-        series_id, lam=ewma_p["lambda"], L=ewma_p["L"], k=cusum_p["k"], h=cusum_p["h"]
-    )
+        series_id, lam=ewma_p["lambda"], L=ewma_p["L"], limits=ewma_p["limits"], k=cusum_p["cusum_k"],
+        h=cusum_p["h"], headstart=cusum_p["headstart"],
+    )  # fmt: skip
     if days and ewma.height:
         ewma = ewma.filter(pl.col("point_at") >= since)
         cusum = cusum.filter(pl.col("point_at") >= since)
@@ -114,7 +116,7 @@ def main() -> None:
     e_col.plotly_chart(charts.ewma_chart(ewma, title=f"EWMA (λ = {ewma_p['lambda']:g}, L = {ewma_p['L']:g})"),
                        key="ewma_chart", width="stretch")  # fmt: skip
     c_col.plotly_chart(charts.cusum_chart(cusum, h=float(cusum_p["h"]),
-                                          title=f"CUSUM (k = {cusum_p['k']:g}, h = {cusum_p['h']:g})"),
+                                          title=f"CUSUM (k = {cusum_p['cusum_k']:g}, h = {cusum_p['h']:g})"),
                        key="cusum_chart", width="stretch")  # fmt: skip
 
     st.subheader("Control limits")

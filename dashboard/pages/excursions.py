@@ -55,14 +55,21 @@ def _form(detail: dict, author) -> None:
         c1, c2, c3 = st.columns(3)
         states = list(STATES[:3])
         to_state = c1.selectbox(
-            "New state", states, index=states.index(detail["state"]) if detail["state"] in states else 0
+            "New state",
+            states,
+            index=states.index(detail["state"]) if detail["state"] in states else 0,
+            key="f_state",
         )
-        classification = c2.selectbox("Classification", CLASSIFICATIONS, index=None, placeholder="choose")
-        cause = c3.selectbox("Cause category", CAUSES, format_func=lambda v: v or "(not known yet)")
-        action = st.text_input("Action (as decided under the OCAP)", max_chars=500)
-        affected = st.multiselect("Lots covered", lots, default=lots)
-        comment = st.text_area("Comment", max_chars=4000)
-        submitted = st.form_submit_button("Record disposition", type="primary")
+        classification = c2.selectbox(
+            "Classification", CLASSIFICATIONS, index=None, placeholder="choose", key="f_classification"
+        )
+        cause = c3.selectbox(
+            "Cause category", CAUSES, format_func=lambda v: v or "(not known yet)", key="f_cause"
+        )
+        action = st.text_input("Action (as decided under the OCAP)", max_chars=500, key="f_action")
+        affected = st.multiselect("Lots covered", lots, default=lots, key="f_lots")
+        comment = st.text_area("Comment", max_chars=4000, key="f_comment")
+        submitted = st.form_submit_button("Record disposition", type="primary", key="f_submit")
     if submitted:
         try:
             data.record_disposition(
@@ -70,7 +77,7 @@ def _form(detail: dict, author) -> None:
                 cause_category=cause or None, action=action.strip() or None, comment=comment.strip() or None,
                 lots_affected=affected, author=author,
             )  # fmt: skip
-        except (ValueError, data.WarehouseError) as exc:
+        except (ValueError, data.LotlineError) as exc:
             st.error(f"Not recorded: {exc}")
         else:
             st.success(f"Recorded for excursion {detail['excursion_id']} by {author.name}.")

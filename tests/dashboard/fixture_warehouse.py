@@ -1,14 +1,14 @@
 """A small, fully known warehouse for the dashboard tests, written with canonical rows.
 
-Two layers of one product, 20 lots, 3 wafers a lot, 9 sites a wafer; one plan entry charting the wafer
-mean of cd_mid at M1_LITHO split by the exposure tool, two series with frozen limits, four signals in two
-excursions, an audit trail, rejects, a supersession and one wafer with defect coordinates. Every count the
-tests compare against is fixed here by construction (see the constants below).
+Two layers of one product, 20 lots, 3 wafers a lot, 9 sites a wafer; rejects, a
+supersession and one wafer with defect coordinates. A monitoring plan charts the wafer mean of cd_mid at
+M1_LITHO split by the exposure tool, and the engine evaluates it (limits, signals, excursions), as
+`lotline plan load` and `lotline evaluate` would. The three lots in SHIFTED_LOTS came out 3 nm high on
+SCAN02, far outside their limits, so they must be flagged; other counts are fixed by construction.
 """
 
 from __future__ import annotations
 
-import json
 import math
 from datetime import datetime, timedelta
 from pathlib import Path
@@ -16,7 +16,7 @@ from pathlib import Path
 import numpy as np
 import polars as pl
 
-from warehouse import schema, store
+from warehouse import evaluate, plan, schema, store
 
 T0 = datetime(2026, 9, 1, 6, 0, 0)
 LOTS = [f"L26090{i:02d}" for i in range(1, 21)]
@@ -28,8 +28,21 @@ SITES = (
 )
 DEFECT_LOT, DEFECT_WAFER, N_DEFECTS = LOTS[15], f"{LOTS[15]}.W01", 30
 N_REJECTS = 3
-OPEN_HIGH_EXCURSION = 1  # excursion 1: open, severity high, 3 signals on SCAN02
-ACK_MEDIUM_EXCURSION = 2  # excursion 2: acknowledged, severity medium, 1 signal on SCAN01
+PLAN_TEXT = """
+[plan]
+name = "dashboard test plan"
+
+[[chart]]
+name = "m1_litho_cd"
+select = { layer = "M1_LITHO", parameter = "cd_mid", product = "*", stage = "develop" }
+statistic = "wafer_mean"
+split = ["process_tool"]
+step = "M1_EXPOSE"
+chart = "individuals"
+rules = ["we1", "we2"]
+baseline = { first = 10 }
+severity = "high"
+"""
 STALE_TOOL = "CDSEM03"  # reported only on the first day
 
 
@@ -42,7 +55,7 @@ def _frames() -> dict[str, pl.DataFrame]:
     meas, hist = [], []
     for i, lot in enumerate(LOTS):
         t = T0 + timedelta(hours=6 * i)
-        shift = 3.0 if lot in SHIFTED_LOTS else 0.0
+        shift = (3.0 if lot in SHIFTED_LOTS else 0.0) + rng.normal(0, 0.25)  # lot effect
         hist += [
             dict(lot_id=lot, wafer_id=None, product="PRD_A", step="M1_EXPOSE", step_seq=1, process_tool=_scanner(i),
                  chamber=None, recipe="EXP_M1", started_at=t - timedelta(hours=2), ended_at=t - timedelta(hours=1)),
@@ -108,67 +121,6 @@ def _frames() -> dict[str, pl.DataFrame]:
                              superseded_at=t_load + timedelta(hours=1), superseded_by_user="ingest")],
                        schema=schema.polars_schema(schema.SUPERSESSIONS))  # fmt: skip
 
-    plan_params = {"lambda": 0.2, "L": 3.0, "k": 0.5, "h": 5.0}
-    plans = pl.DataFrame([dict(plan_version=1, path="plan.toml", sha256="d" * 64, text="[[chart]]", loaded_at=T0,
-                               loaded_by="engineer")], schema=schema.polars_schema(schema.PLANS))  # fmt: skip
-    chart_plan = pl.DataFrame([dict(
-        plan_version=1, chart="m1_litho_cd", layer="M1_LITHO", parameter="cd_mid", product="*", stage="develop",
-        sample_kind="production", statistic="wafer_mean", split_json='["process_tool"]', step="M1_EXPOSE",
-        chart_type="individuals", params_json=json.dumps(plan_params), rules_json='["we1", "we2"]',
-        baseline_json='{"first": 10}', severity="high", spec_check=True, line=1,
-    )], schema=schema.polars_schema(schema.CHART_PLAN))  # fmt: skip
-    series = pl.DataFrame([
-        dict(series_id=sid, chart="m1_litho_cd", layer="M1_LITHO", parameter="cd_mid",
-             split_json=json.dumps({"process_tool": tool}), process_tool=tool, chamber=None, metrology_tool=None,
-             product=None, created_at=T0)
-        for sid, tool in ((1, "SCAN01"), (2, "SCAN02"))
-    ], schema=schema.polars_schema(schema.CHART_SERIES))  # fmt: skip
-    limits = pl.DataFrame([
-        dict(series_id=sid, version=1, center=45.1, sigma=0.5, sigma_level="wafer", sigma_source="variance_components",
-             k_sigma=3.0, lcl=43.6, ucl=46.6, n_ref=None, overdispersion=None, baseline_from=T0,
-             baseline_to=T0 + timedelta(days=2), baseline_n=10, frozen_at=T0 + timedelta(days=2), frozen_by="engineer",
-             reason="initial baseline")
-        for sid in (1, 2)
-    ], schema=schema.polars_schema(schema.CONTROL_LIMITS))  # fmt: skip
-    lot_mean = {}
-    for r in meas:
-        if r["layer"] == "M1_LITHO":
-            lot_mean.setdefault(r["wafer_id"], []).append(r["value"])
-    t_eval = T0 + timedelta(days=6)
-    sig_rows = []
-    for n, lot in enumerate(SHIFTED_LOTS):
-        wid = f"{lot}.W01"
-        sig_rows.append(dict(
-            signal_id=n + 1, series_id=2, point_key=f"{lot}|{wid}", lot_id=lot, wafer_id=wid,
-            point_at=T0 + timedelta(hours=6 * LOTS.index(lot), minutes=4), rule="we1",
-            value=round(float(np.mean(lot_mean[wid])), 4), statistic=None, limit_version=1, severity="high",
-            first_detected_at=t_eval, withdrawn_at=None, withdrawn_reason=None, excursion_id=OPEN_HIGH_EXCURSION))  # fmt: skip
-    lot3, wid3 = LOTS[2], f"{LOTS[2]}.W02"
-    sig_rows.append(dict(
-        signal_id=4, series_id=1, point_key=f"{lot3}|{wid3}", lot_id=lot3, wafer_id=wid3,
-        point_at=T0 + timedelta(hours=12, minutes=7), rule="we2", value=round(float(np.mean(lot_mean[wid3])), 4),
-        statistic=None, limit_version=1, severity="medium", first_detected_at=t_eval - timedelta(days=3),
-        withdrawn_at=None, withdrawn_reason=None, excursion_id=ACK_MEDIUM_EXCURSION))  # fmt: skip
-    signals = pl.DataFrame(sig_rows, schema=schema.polars_schema(schema.SIGNALS))
-    exc = pl.DataFrame([
-        dict(excursion_id=OPEN_HIGH_EXCURSION, series_id=2, chart="m1_litho_cd", state="open", severity="high",
-             first_at=sig_rows[0]["point_at"], last_at=sig_rows[2]["point_at"], rules_json='["we1"]',
-             lots_json=json.dumps(sorted(SHIFTED_LOTS)), n_signals=3, opened_at=t_eval),
-        dict(excursion_id=ACK_MEDIUM_EXCURSION, series_id=1, chart="m1_litho_cd", state="acknowledged",
-             severity="medium", first_at=sig_rows[3]["point_at"], last_at=sig_rows[3]["point_at"],
-             rules_json='["we2"]', lots_json=json.dumps([lot3]), n_signals=1, opened_at=t_eval - timedelta(days=3)),
-    ], schema=schema.polars_schema(schema.EXCURSIONS))  # fmt: skip
-    audit = pl.DataFrame([
-        dict(audit_id=1, excursion_id=2, changed_at=t_eval - timedelta(days=3), changed_by="lotline-auto",
-             from_state=None, to_state="open", classification=None, cause_category=None, action=None,
-             lots_affected_json=None, comment="opened by evaluation"),
-        dict(audit_id=2, excursion_id=2, changed_at=t_eval - timedelta(days=2), changed_by="engineer",
-             from_state="open", to_state="acknowledged", classification=None, cause_category=None, action=None,
-             lots_affected_json=None, comment="looking"),
-        dict(audit_id=3, excursion_id=1, changed_at=t_eval, changed_by="lotline-auto", from_state=None,
-             to_state="open", classification=None, cause_category=None, action=None, lots_affected_json=None,
-             comment="opened by evaluation"),
-    ], schema=schema.polars_schema(schema.EXCURSION_AUDIT))  # fmt: skip
     return {
         "measurements": facts(meas, schema.MEASUREMENTS),
         "process_history": facts(hist, schema.PROCESS_HISTORY, 4),
@@ -178,13 +130,6 @@ def _frames() -> dict[str, pl.DataFrame]:
         "source_files": files,
         "rejects": rejects,
         "supersessions": sup,
-        "plans": plans,
-        "chart_plan": chart_plan,
-        "chart_series": series,
-        "control_limits": limits,
-        "signals": signals,
-        "excursions": exc,
-        "excursion_audit": audit,
     }
 
 
@@ -195,14 +140,9 @@ def build_fixture_warehouse(path: Path) -> Path:
         with store.transaction(con):
             for name, frame in frames.items():
                 _insert(con, name, frame)
-            for seq, start in (
-                ("series_id_seq", 3),
-                ("signal_id_seq", 5),
-                ("excursion_id_seq", 3),
-                ("audit_id_seq", 4),
-            ):
-                _advance_sequence(con, seq, start)
+            plan.store_plan(con, plan.parse_plan(PLAN_TEXT, path="fixture_plan.toml"), user="engineer")
             store.bump_data_version(con)
+    evaluate.evaluate_warehouse(path, full=True, user="lotline-auto")
     return path
 
 
@@ -214,9 +154,3 @@ def _insert(con, name: str, frame: pl.DataFrame) -> None:
         con.execute(f'INSERT INTO "{name}" ({cols}) SELECT {cols} FROM _fixture_rows')
     finally:
         con.unregister("_fixture_rows")
-
-
-def _advance_sequence(con, seq: str, start: int) -> None:
-    # Ids above were assigned by hand; move the warehouse sequences past them.
-    for _ in range(start - 1):
-        con.execute(f"SELECT nextval('{seq}')").fetchall()
