@@ -454,7 +454,8 @@ def rank_commonality(
         ``aliases`` (list of candidate labels), ``alias_jaccard``, ``reason``.
 
     Raises:
-        ValueError: on missing columns, an empty affected set, or lots both affected and reference.
+        ValueError: on missing columns, an empty affected set, affected lots without history, or lots both
+            affected and reference.
 
     Example:
         >>> h = pl.DataFrame({
@@ -492,6 +493,11 @@ def rank_commonality(
         ]
     ).with_row_index("li")
     memb, labels, one_row_per_step = _memberships(history, population)
+    if not memb.get_column("affected").any():
+        raise ValueError(
+            f"rank_commonality: none of the {affected.len()} affected lots has process history (found e.g. "
+            f"{affected[0]!r}, expected lot ids present in history.lot_id). Fix: load the lots' history first."
+        )
 
     cand = memb.group_by("cid").agg(pl.len().alias("n_lots"), pl.col("affected").sum().alias("n_affected"))
     tool_rows = memb.filter(pl.col("gid") % len(KINDS) == 0)  # every history row names a tool

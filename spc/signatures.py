@@ -375,7 +375,8 @@ def classify_signatures(
 
     Returns:
         ``current``'s key columns plus ``rz1`` … ``rzJ`` (robust z), ``max_abs_rz``, ``labels``
-        (list of strings, strongest first) and ``label`` (joined with ", ", or "typical").
+        (list of strings, strongest first) and ``label`` (joined with ", "; "typical" when nothing stands out;
+        "no history to compare" when the series has no history or no spread).
 
     Example:
         >>> hist = pl.DataFrame({"layer": ["M1"] * 5, "z1": [50.0, 50.1, 49.9, 50.0, 50.2],
@@ -437,6 +438,8 @@ def classify_signatures(
     ).with_columns(
         pl.when(pl.col("labels").list.len() > 0)
         .then(pl.col("labels").list.join(", "))
+        .when(pl.col("max_abs_rz").is_null())
+        .then(pl.lit("no history to compare"))
         .otherwise(pl.lit("typical"))
         .alias("label")
     )

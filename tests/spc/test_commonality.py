@@ -260,3 +260,13 @@ def test_rank_commonality_wafer_level_rows_count_each_lot_once():
     assert a["n_lots"].to_list() == b["n_lots"].to_list()
     np.testing.assert_allclose(a["p_assoc"].to_numpy(), b["p_assoc"].to_numpy(), rtol=1e-12)
     np.testing.assert_allclose(a["p_welch"].to_numpy(), b["p_welch"].to_numpy(), rtol=1e-9)
+
+
+def test_rank_commonality_affected_lots_without_history_are_reported():
+    hist = pl.DataFrame({"lot_id": ["A", "B"], "step": ["s", "s"], "process_tool": ["T1", "T2"]})
+    with pytest.raises(ValueError) as err:
+        rank_commonality(hist, ["Z9"])
+    assert str(err.value) == (
+        "rank_commonality: none of the 1 affected lots has process history (found e.g. 'Z9', expected lot ids "
+        "present in history.lot_id). Fix: load the lots' history first."
+    )

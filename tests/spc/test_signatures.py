@@ -198,3 +198,12 @@ def test_classify_signatures_labels_edge_high_centre_high_and_tilt():
     med = np.median(h)
     want = (2.0 - med) / (1.4826 * np.median(np.abs(h - med)))
     assert out["rz4"][0] == pytest.approx(want, rel=1e-12)
+
+
+def test_classify_signatures_series_without_history_says_so():
+    hist = _series_history(6)
+    cur = pl.DataFrame(
+        {"layer": ["M2"], "lot_id": ["C"], "wafer_id": ["A"], **{f"z{j}": [0.0] for j in range(1, 12)}}
+    )
+    out = classify_signatures(cur, hist, series_key=["layer"])
+    assert out["label"].to_list() == ["no history to compare"] and out["labels"].to_list() == [[]]
