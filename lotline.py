@@ -65,6 +65,145 @@ def schema_cmd(markdown: bool):
 # --- ingest commands ---
 
 
+@cli.command("init")
+@db_option
+def init_cmd(db):
+    """Create the warehouse file, or migrate an existing one to this lotline's schema.
+
+    Example: lotline init --db lotline.duckdb
+    """
+    from warehouse import store
+    from warehouse.errors import LotlineError
+
+    try:
+        info = store.init_warehouse(store.resolve_db_path(db))
+    except LotlineError as exc:
+        fail(exc)
+    verb = "created" if info["created"] else "opened"
+    click.echo(f"{verb} {info['path']} (schema version {info['version']})")
+
+
+def _ingest_table(results) -> list[str]:
+    """The per-file summary table of ``lotline ingest`` and ``lotline watch``."""
+    head = ("file", "profile", "loaded", "rejected", "superseded", "skipped", "status")
+    rows = [(r.path, r.profile or "-", str(r.rows_loaded), str(r.rows_rejected), str(r.rows_superseded),
+             str(r.rows_skipped), r.status) for r in results]
+    widths = [max(len(h), *(len(row[i]) for row in rows)) if rows else len(h) for i, h in enumerate(head)]
+    right = {2, 3, 4, 5}
+
+    def fmt(cells) -> str:
+        return "  ".join(c.rjust(w) if i in right else c.ljust(w) for i, (c, w) in enumerate(zip(cells, widths)))
+
+    return [fmt(head).rstrip(), *(fmt(r).rstrip() for r in rows)]
+
+
+@cli.command("ingest")
+@click.argument("paths", nargs=-1, required=True, type=click.Path())
+@db_option
+@click.option("--profiles", "profile_dirs", multiple=True, type=click.Path(file_okay=False),
+              help="Extra folder of export profiles (*.toml); repeatable.")
+@click.option("--profile", "profile", default=None, help="Use this profile instead of detecting it from the header.")
+@click.option("--json", "as_json", is_flag=True, help="Print the per-file results as JSON.")
+@click.option("--wait", "wait_s", type=float, default=60.0, show_default=True,
+              help="Seconds to wait while another process holds the warehouse.")
+def ingest_cmd(paths, db, profile_dirs, profile, as_json: bool, wait_s: float):
+    """Load exports (files or folders, recursive; CSV, Parquet, JSON lines, optionally .gz) into the warehouse.
+
+    Each file loads in one transaction; bad rows go to the rejects table with file, line, column, value
+    and reason. Exit code 0: all loaded; 1: some rows or files rejected; 2: usage error.
+
+    Example: lotline ingest demo_run/exports --db lotline.duckdb
+    """
+    from pathlib import Path
+
+    from ingest.jobs import ingest_paths
+    from warehouse.errors import LotlineError
+
+    for p in paths:
+        if not Path(p).exists():
+            raise click.BadParameter(f"{p}: no such file or folder.", param_hint="PATH")
+    try:
+        report = ingest_paths(paths, db=db, profile_dirs=profile_dirs, profile=profile, wait_s=wait_s,
+                              progress=not as_json)
+    except LotlineError as exc:
+        fail(exc, 2 if "profile" in type(exc).__name__.lower() else 1)
+    if as_json:
+        echo_json(report.to_dict())
+    else:
+        for line in _ingest_table(report.files):
+            click.echo(line)
+        for r in report.files:
+            if r.status == "failed":
+                click.echo(f"Error: {r.message}", err=True)
+        if any(r.rows_rejected for r in report.files):
+            click.echo("Rejected rows: lotline rejects --db " + (db or "<warehouse>"), err=True)
+    sys.exit(report.exit_code)
+
+
+@cli.command("watch")
+@click.argument("folder", type=click.Path(exists=True, file_okay=False))
+@db_option
+@click.option("--profiles", "profile_dirs", multiple=True, type=click.Path(file_okay=False),
+              help="Extra folder of export profiles (*.toml); repeatable.")
+@click.option("--interval", type=float, default=5.0, show_default=True, help="Seconds between polls.")
+@click.option("--once", is_flag=True, help="Ingest what is ready now and stop (for scripts and tests).")
+@click.option("--json", "as_json", is_flag=True, help="Print one JSON object per ingested file.")
+def watch_cmd(folder, db, profile_dirs, interval: float, once: bool, as_json: bool):
+    """Poll a drop folder and ingest each new or changed file once, after its size stops changing.
+
+    Never moves or deletes files. Ctrl-C stops.
+
+    Example: lotline watch /data/drop --db lotline.duckdb --interval 10
+    """
+    from ingest.watch import watch_folder
+    from warehouse.errors import LotlineError
+
+    def show(result) -> None:
+        if as_json:
+            click.echo(json.dumps(result.to_dict(), default=str))
+        else:
+            click.echo(_ingest_table([result])[1])
+            if result.status == "failed":
+                click.echo(f"Error: {result.message}", err=True)
+
+    try:
+        results = watch_folder(folder, db=db, profile_dirs=profile_dirs, interval_s=interval, once=once,
+                               on_file=show)
+    except KeyboardInterrupt:
+        sys.exit(0)
+    except LotlineError as exc:
+        fail(exc)
+    bad = any(r.status == "failed" or r.rows_rejected for r in results)
+    sys.exit(1 if bad else 0)
+
+
+@cli.command("rejects")
+@db_option
+@click.option("--file", "path", default=None, help="Only rejects of this file (path as ingested).")
+@click.option("--limit", type=int, default=100, show_default=True, help="At most this many rows.")
+@click.option("--json", "as_json", is_flag=True, help="Print JSON objects.")
+def rejects_cmd(db, path, limit: int, as_json: bool):
+    """List rejected rows: file:line, column, raw value and reason, newest file first.
+
+    Example: lotline rejects --file exports/lot_A17.csv
+    """
+    from warehouse import load, store
+    from warehouse.errors import LotlineError
+
+    try:
+        with store.open_warehouse(store.resolve_db_path(db), read_only=True) as con:
+            rows = load.list_rejects(con, path=path, limit=limit).to_dicts()
+    except LotlineError as exc:
+        fail(exc)
+    if as_json:
+        echo_json(rows)
+        return
+    for r in rows:
+        where = f" {r['column']}" if r["column"] else ""
+        val = f' "{r["value"]}"' if r["value"] is not None else ""
+        click.echo(f"{r['path']}:{r['line']}:{where}{val}: {r['reason']}")
+
+
 # --- spc commands ---
 
 

@@ -33,6 +33,21 @@ LINEAGE_COLUMNS = (C_SOURCE_FILE_ID, C_SOURCE_LINE, C_SUPERSEDED_BY)
 WAFER_RADIUS_MM = 150.0
 """300 mm wafers: site coordinates are in mm from the wafer centre, |x|, |y| <= 150."""
 
+PARAMETER_UNITS: dict[str, str] = {
+    "cd_top": "nm",
+    "cd_mid": "nm",
+    "cd_bot": "nm",
+    "lwr": "nm",
+    "ler": "nm",
+    "pitch": "nm",
+    "height": "nm",
+    "swa": "deg",
+}
+"""Canonical unit of each known measurement parameter; a parameter not listed is a length in nm."""
+
+SLOT_RANGE = (1, 25)
+"""Valid carrier slots (a 25-wafer FOUP)."""
+
 SAMPLE_KINDS = ("production", "monitor", "repeat_study", "reference_feature", "standard_defect")
 """What a measured or inspected wafer is: a product lot, a metrology monitor ("golden") wafer, a
 precision study, a feature with a reference measurement, or an inspection standard-defect wafer."""

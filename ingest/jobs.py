@@ -1,0 +1,446 @@
+"""Ingest jobs: find export files, read them, pick a profile, run the adapters, hand frames to the warehouse.
+
+Each file is one unit of work: the warehouse is opened for it (with lock retry) and closed afterwards, and
+the file's rows go in one transaction. A file that cannot be read at all leaves only a ``source_files`` row
+with status ``failed`` and the message (written in its own small transaction after the rollback). The same
+bytes twice are recorded as ``duplicate`` and load nothing.
+
+Example:
+    >>> report = ingest_paths(["demo_run/exports"], db="lotline.duckdb")  # doctest: +SKIP
+    >>> report.exit_code
+    0
+"""
+
+from __future__ import annotations
+
+import getpass
+import gzip
+import hashlib
+import os
+import queue
+import sys
+import threading
+import zlib
+from collections.abc import Callable, Iterable, Iterator
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import BinaryIO, TypeVar
+
+import polars as pl
+
+from ingest.adapters.mapping import map_records
+from ingest.adapters.records import jsonl_keys, parquet_columns, parse_jsonl_chunk, parse_parquet
+from ingest.adapters.text import (
+    LineChunker,
+    bom_encoding,
+    decode_head,
+    header_fields,
+    parse_csv_chunk,
+    sniff,
+)
+from ingest.profile import Profile, detect_profile, load_profiles
+from warehouse import load, schema, store
+from warehouse.errors import IngestError
+
+T = TypeVar("T")
+
+SUFFIXES = {".csv": "csv", ".txt": "csv", ".parquet": "parquet", ".jsonl": "jsonl", ".json": "jsonl"}
+"""File name endings ingest reads (each optionally followed by ``.gz``)."""
+BLOCK_BYTES = 8 * 1024 * 1024
+CHUNK_BYTES = 48 * 1024 * 1024
+"""Text is parsed and loaded in chunks of about this many bytes, so memory stays flat for big files."""
+
+
+@dataclass
+class FileResult:
+    """Outcome of one file."""
+
+    path: str
+    status: str  # loaded | failed | duplicate
+    profile: str | None = None
+    kind: str | None = None
+    file_id: int | None = None
+    rows_loaded: int = 0
+    rows_rejected: int = 0
+    rows_superseded: int = 0
+    rows_skipped: int = 0
+    message: str | None = None
+    affected: list[dict[str, str]] = field(default_factory=list)
+    """Distinct (table, lot_id, layer, parameter) the file wrote: the hook for re-evaluating series."""
+
+    def to_dict(self) -> dict[str, object]:
+        d = asdict(self)
+        d.pop("affected")
+        return d
+
+
+@dataclass
+class IngestReport:
+    """Outcome of one ``ingest_paths`` call."""
+
+    files: list[FileResult] = field(default_factory=list)
+
+    @property
+    def exit_code(self) -> int:
+        """0 when every file loaded without rejects (duplicates are fine), else 1."""
+        bad = any(f.status == "failed" or f.rows_rejected for f in self.files)
+        return 1 if bad else 0
+
+    def affected_lots(self) -> set[str]:
+        return {a["lot_id"] for f in self.files for a in f.affected if a.get("lot_id")}
+
+    def affected_series(self) -> set[tuple[str, str, str]]:
+        """(table, layer, parameter) touched by this run, for incremental evaluation."""
+        return {(a["table"], a.get("layer") or "", a.get("parameter") or "") for f in self.files for a in f.affected}
+
+    def to_dict(self) -> dict[str, object]:
+        return {"files": [f.to_dict() for f in self.files], "exit_code": self.exit_code}
+
+
+def iter_export_files(paths: Iterable[str | os.PathLike[str]]) -> Iterator[Path]:
+    """Files to ingest: each given file, and every readable export under each given folder (sorted)."""
+    for raw in paths:
+        p = Path(raw)
+        if p.is_dir():
+            for f in sorted(p.rglob("*")):
+                if f.is_file() and export_format(f) is not None and not f.name.startswith("."):
+                    yield f
+        else:
+            yield p
+
+
+def export_format(path: Path) -> str | None:
+    """csv, parquet or jsonl from the file name (``.gz`` stripped), or None."""
+    name = path.name.lower()
+    if name.endswith(".gz"):
+        name = name[:-3]
+    return SUFFIXES.get(Path(name).suffix)
+
+
+def sha256_of(path: Path) -> tuple[str, int]:
+    h = hashlib.sha256()
+    size = 0
+    with open(path, "rb") as f:
+        while block := f.read(BLOCK_BYTES):
+            h.update(block)
+            size += len(block)
+    return h.hexdigest(), size
+
+
+def ingest_paths(
+    paths: Iterable[str | os.PathLike[str]],
+    *,
+    db: str | os.PathLike[str] | None = None,
+    profile_dirs: Iterable[str | os.PathLike[str]] = (),
+    profile: str | None = None,
+    wait_s: float = store.DEFAULT_WAIT_S,
+    progress: bool = False,
+    user: str | None = None,
+    chunk_bytes: int = CHUNK_BYTES,
+    on_file: Callable[[FileResult], None] | None = None,
+) -> IngestReport:
+    """Ingest files and folders into the warehouse ``db``; return one :class:`FileResult` per file.
+
+    ``profile`` forces a profile by name instead of detecting it from the header. Raises
+    :class:`IngestError` only for problems with the arguments (a path that does not exist, a bad profile);
+    problems with a file's content are reported in its result.
+    """
+    profiles = load_profiles([Path(d) for d in profile_dirs])
+    files = list(iter_export_files(paths))
+    for f in files:
+        if not f.exists():
+            raise IngestError("no such file or folder", path=str(f), fix="check the path")
+    who = user or _user()
+    report = IngestReport()
+    total = sum(f.stat().st_size for f in files)
+    bar = _progress(total, progress)
+    try:
+        for f in files:
+            res = ingest_file(f, db=db, profiles=profiles, forced=profile, wait_s=wait_s, user=who,
+                              chunk_bytes=chunk_bytes, on_bytes=bar.update if bar else None)
+            report.files.append(res)
+            if on_file:
+                on_file(res)
+    finally:
+        if bar:
+            bar.close()
+    return report
+
+
+def _progress(total: int, enabled: bool):  # tqdm on stderr, shown only for runs longer than a second
+    if not enabled:
+        return None
+    from tqdm import tqdm
+
+    return tqdm(total=total, unit="B", unit_scale=True, file=sys.stderr, delay=1.0, desc="ingest", leave=False)
+
+
+def _user() -> str:
+    try:
+        return getpass.getuser()
+    except Exception:  # no user name in the environment (some containers)
+        return f"uid {os.getuid()}"
+
+
+def ingest_file(
+    path: Path,
+    *,
+    db: str | os.PathLike[str] | None,
+    profiles: list[Profile],
+    forced: str | None = None,
+    wait_s: float = store.DEFAULT_WAIT_S,
+    user: str,
+    chunk_bytes: int = CHUNK_BYTES,
+    on_bytes: Callable[[int], object] | None = None,
+) -> FileResult:
+    """Ingest one file in one transaction (see the module doc)."""
+    shown = str(path)
+    sha, size = sha256_of(path)
+    fmt = export_format(path) or "csv"
+    with store.open_warehouse(db, create=True, wait_s=wait_s) as con:
+        load.configure_for_ingest(con)
+        first = load.find_loaded_file(con, sha)
+        if first is not None:
+            with store.transaction(con):
+                fid = load.record_file(con, status="duplicate", path=shown, sha256=sha, size=size, kind=None,
+                                       profile=None, user=user, message=f"same bytes as file {first}; nothing loaded")
+            if on_bytes:
+                on_bytes(size)
+            return FileResult(path=shown, status="duplicate", file_id=fid,
+                              message=f"same bytes as file {first}; nothing loaded")
+        state: dict[str, object] = {}
+        try:
+            with store.transaction(con):
+                fid = load.new_file_id(con)
+                counts = load.FileCounts()
+                result = _load_content(con, path, fmt, profiles=profiles, forced=forced, file_id=fid,
+                                       counts=counts, chunk_bytes=chunk_bytes, on_bytes=on_bytes, state=state)
+                rejects = pl.concat(counts.reject_frames) if counts.reject_frames else None
+                if rejects is None:
+                    from ingest.adapters.text import empty_rejects
+
+                    rejects = empty_rejects()
+                prof: Profile = state["profile"]  # type: ignore[assignment]
+                load.finish_file(con, file_id=fid, path=shown, sha256=sha, size=size, kind=prof.kind,
+                                 profile=prof.name, user=user, counts=counts, rejects=rejects)
+        except IngestError as exc:
+            if exc.path is None:
+                exc = _with_path(exc, shown)
+            prof = state.get("profile")  # type: ignore[assignment]
+            with store.transaction(con):
+                fid = load.record_file(con, status="failed", path=shown, sha256=sha, size=size,
+                                       kind=getattr(prof, "kind", None), profile=getattr(prof, "name", None),
+                                       user=user, message=str(exc))
+            return FileResult(path=shown, status="failed", file_id=fid, profile=getattr(prof, "name", None),
+                              kind=getattr(prof, "kind", None), message=str(exc))
+    rejected = rejects.select(pl.col("line").n_unique()).item() if rejects.height else 0
+    return FileResult(path=shown, status="loaded", profile=prof.name, kind=prof.kind, file_id=fid,
+                      rows_loaded=counts.loaded, rows_rejected=rejected, rows_superseded=counts.superseded,
+                      rows_skipped=counts.skipped, affected=result)
+
+
+def _with_path(exc: IngestError, path: str) -> IngestError:
+    fields = exc._fields()
+    fields["path"] = path
+    what = fields.pop("what")
+    return type(exc)(what, **fields)
+
+
+class _Reader:
+    """Blocks of a file's (decompressed) bytes; a truncated or corrupt gzip stream is an IngestError."""
+
+    def __init__(self, path: Path, on_bytes: Callable[[int], object] | None) -> None:
+        self.path = path
+        self.gz = path.name.lower().endswith(".gz")
+        self._raw: BinaryIO = open(path, "rb")  # noqa: SIM115 (closed in close())
+        self._f: BinaryIO = gzip.GzipFile(fileobj=self._raw) if self.gz else self._raw  # type: ignore[assignment]
+        self.on_bytes = on_bytes
+        self._pos = 0
+        self.lines_seen = 0
+
+    def read(self, n: int = BLOCK_BYTES) -> bytes:
+        try:
+            block = self._f.read(n)
+        except (EOFError, gzip.BadGzipFile, zlib.error) as exc:
+            raise IngestError(
+                "gzip stream is truncated or corrupt", path=str(self.path), line=self.lines_seen + 1,
+                found=f"{type(exc).__name__} after {self._pos} decompressed bytes", expected="a complete gzip file",
+                fix="copy or re-export the file again (it was cut off); nothing was loaded",
+            ) from None
+        if self.on_bytes:
+            pos = self._raw.tell()
+            self.on_bytes(pos - getattr(self, "_rawpos", 0))
+            self._rawpos = pos
+        self._pos += len(block)
+        self.lines_seen += block.count(b"\n")
+        return block
+
+    def read_all(self) -> bytes:
+        parts = []
+        while block := self.read():
+            parts.append(block)
+        return b"".join(parts)
+
+    def close(self) -> None:
+        self._f.close()
+        self._raw.close()
+
+
+def _load_content(con, path: Path, fmt: str, *, profiles: list[Profile], forced: str | None, file_id: int,
+                  counts: load.FileCounts, chunk_bytes: int, on_bytes, state: dict[str, object]) -> list[dict]:
+    shown = str(path)
+    reader = _Reader(path, on_bytes)
+    affected: set[tuple[str, str | None, str | None, str | None]] = set()
+    hashes: dict[str, list[pl.DataFrame]] = {}
+
+    def take(frames: dict[str, pl.DataFrame], rejects: pl.DataFrame) -> None:
+        if rejects.height:
+            counts.reject_frames.append(rejects)
+        for table, frame in frames.items():
+            if frame.height == 0:
+                continue
+            t = schema.table(table)
+            load.load_chunk(con, table, frame, file_id=file_id, counts=counts)
+            if t.natural_key:
+                hashes.setdefault(table, []).append(frame.select(
+                    pl.struct(list(t.natural_key)).hash().alias("h"), pl.col(schema.C_SOURCE_LINE).alias("line")))
+            keys = [c for c in ("lot_id", "layer", "parameter") if c in frame.columns]
+            for row in frame.select(keys).unique().iter_rows():
+                d = dict(zip(keys, row, strict=True))
+                affected.add((table, d.get("lot_id"), d.get("layer"), d.get("parameter")))
+
+    try:
+        head = reader.read()
+        if fmt == "parquet":
+            data = head + reader.read_all()
+            if not data:
+                sniff(data, path=shown, expected="parquet")
+            if not data.startswith(b"PAR1"):
+                raise IngestError("file is not Parquet", path=shown, line=1, column=1, found=repr(data[:4]),
+                                  expected="bytes starting with PAR1", fix="rename the file to its real format")
+            cols = parquet_columns(data, path=shown)
+            prof = detect_profile(cols, profiles, fmt="parquet", path=shown, line=1, forced=forced)
+            state["profile"] = prof
+            frames, rejects = parse_parquet(data, prof, path=shown)
+            take(frames, rejects)
+        elif fmt == "jsonl":
+            sniff(head, path=shown, expected="jsonl")
+            if b"\n" not in head and len(head) >= BLOCK_BYTES:
+                LineChunker(path=shown, encoding="utf-8", skip_lines=0, chunk_bytes=chunk_bytes,
+                            max_line_bytes=BLOCK_BYTES - 1)._check_long(head)
+            keys, line = jsonl_keys(head, path=shown)
+            prof = detect_profile(keys, profiles, fmt="jsonl", path=shown, line=line, forced=forced)
+            state["profile"] = prof
+            chunker = LineChunker(path=shown, encoding="utf-8", skip_lines=0, chunk_bytes=chunk_bytes)
+            n = 0
+            for first, data in _pipelined(_chunks(reader, head, chunker)):
+                n += 1
+                take(*parse_jsonl_chunk(data, prof, first_line=first))
+            if n == 0:
+                raise IngestError("file has no records", path=shown, line=1, column=1, fix="re-export the file")
+        else:
+            sniff(head, path=shown, expected="csv")
+            pool = [p for p in profiles if p.format == "csv"]
+            bom = bom_encoding(head)
+
+            def view(p: Profile) -> list[str]:
+                return header_fields(decode_head(head[:1 << 20], p.encoding), delimiter=p.delimiter,
+                                     header_line=p.header_line)
+
+            first_line = decode_head(head[:1 << 16], bom or "utf-8").splitlines()[:1]
+            shown_header = first_line[0][:300] if first_line else ""
+            if not shown_header.strip():
+                raise IngestError("file has no header line", path=shown, line=1, column=1, found="a blank line",
+                                  expected="a header", fix="remove the blank lines before the header")
+            prof = detect_profile(view, pool, fmt="csv", path=shown, line=1, shown=shown_header, forced=forced)
+            state["profile"] = prof
+            header = view(prof)
+            enc = bom or prof.encoding
+            chunker = LineChunker(path=shown, encoding=enc, skip_lines=prof.header_line, chunk_bytes=chunk_bytes)
+
+            def parsed() -> Iterator[tuple[pl.DataFrame, pl.DataFrame]]:
+                for first, data in _chunks(reader, head, chunker):
+                    raw, ragged = parse_csv_chunk(data, header=header, delimiter=prof.delimiter, first_line=first,
+                                                  source=shown)
+                    frame, rejects = map_records(raw, prof)
+                    yield frame, (pl.concat([ragged, rejects]) if ragged.height else rejects)
+
+            n = 0
+            # parse the next chunk in a thread while the warehouse stores this one (both release the GIL)
+            for frame, rejects in _pipelined(parsed()):
+                n += 1
+                take({prof.kind: frame}, rejects)
+            if n == 0:
+                raise IngestError("file has a header but no data rows", path=shown, line=prof.header_line + 1,
+                                  column=1, found="end of file", expected="at least one data row",
+                                  fix="re-export the file; nothing was loaded")
+    finally:
+        reader.close()
+    # duplicate natural keys inside the file: exact check of the lines whose key hash repeats
+    for table, parts in hashes.items():
+        allh = pl.concat(parts)
+        cand = allh.filter(~pl.col("h").is_first_distinct())["line"].to_list()
+        if cand:
+            dup = load.reject_in_file_duplicates(con, table, cand, file_id=file_id, counts=counts)
+            if dup.height:
+                counts.reject_frames.append(dup)
+    return [
+        {k: v for k, v in zip(("table", "lot_id", "layer", "parameter"), a, strict=True) if v is not None}
+        for a in sorted(affected, key=lambda a: tuple(x or "" for x in a))
+    ]
+
+
+def _chunks(reader: _Reader, head: bytes, chunker: LineChunker) -> Iterator[tuple[int, bytes]]:
+    """The file's non-blank chunks of whole lines, as ``(first_line, utf8_bytes)``."""
+    block = head
+    while True:
+        nxt = reader.read() if block else b""
+        final = not nxt
+        for first, data in chunker.feed(block, final=final):
+            if data.strip():
+                yield first, data
+        if final:
+            return
+        block = nxt
+
+
+def _pipelined(items: Iterator[T], depth: int = 1) -> Iterator[T]:
+    """Run a generator one step ahead in a background thread; its exceptions re-raise here."""
+    q: queue.Queue[tuple[str, object]] = queue.Queue(maxsize=depth)
+    stop = threading.Event()
+
+    def work() -> None:
+        try:
+            for item in items:
+                while not stop.is_set():
+                    try:
+                        q.put(("item", item), timeout=0.1)
+                        break
+                    except queue.Full:
+                        continue
+                if stop.is_set():
+                    return
+            q.put(("done", None))
+        except BaseException as exc:  # handed to the consumer
+            q.put(("error", exc))
+
+    th = threading.Thread(target=work, name="lotline-parse", daemon=True)
+    th.start()
+    try:
+        while True:
+            kind, val = q.get()
+            if kind == "done":
+                return
+            if kind == "error":
+                raise val  # type: ignore[misc]
+            yield val  # type: ignore[misc]
+    finally:
+        stop.set()
+        while th.is_alive():
+            try:
+                q.get_nowait()
+            except queue.Empty:
+                th.join(0.05)
+
+
+__all__ = ["FileResult", "IngestReport", "export_format", "ingest_file", "ingest_paths", "iter_export_files"]
