@@ -69,11 +69,11 @@ def naive_loop(points) -> int:
                 count += bool(seg) and (all(v > 0 for v in seg) or all(v < 0 for v in seg))
             if i >= 5:  # nelson3
                 seg = x[i - 5: i + 1]
-                count += all(b > a for a, b in zip(seg, seg[1:])) or all(b < a for a, b in zip(seg, seg[1:]))
+                count += all(b > a for a, b in zip(seg, seg[1:], strict=False)) or all(b < a for a, b in zip(seg, seg[1:], strict=False))
             if i >= 13:  # nelson4
                 seg = x[i - 13: i + 1]
-                d = [b - a for a, b in zip(seg, seg[1:])]
-                count += all(p * q < 0 for p, q in zip(d, d[1:]))
+                d = [b - a for a, b in zip(seg, seg[1:], strict=False)]
+                count += all(p * q < 0 for p, q in zip(d, d[1:], strict=False))
             if i >= 14:  # nelson7
                 count += all(abs(v) < 1 for v in zs[i - 14: i + 1])
             if i >= 7:  # nelson8

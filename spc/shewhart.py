@@ -19,7 +19,7 @@ import numpy as np
 import polars as pl
 
 from spc.factors import c4, d2, factors
-from spc.frames import CENTER, N, SEQ, SERIES, SIGMA, VALUE, check_columns
+from spc.frames import CENTER, SEQ, SERIES, SIGMA, VALUE, N, check_columns
 
 
 def individuals_limits(

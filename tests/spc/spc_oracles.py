@@ -10,7 +10,16 @@ import math
 
 import polars as pl
 
-from spc.rules import Alternation, BeyondLimits, InnerRun, OuterRun, SameSideRun, Trend, ZoneCount, rule_params
+from spc.rules import (
+    Alternation,
+    BeyondLimits,
+    InnerRun,
+    OuterRun,
+    SameSideRun,
+    Trend,
+    ZoneCount,
+    rule_params,
+)
 
 
 def rule_hits_loop(zs: list[float], xs: list[float], rule) -> list[bool]:
