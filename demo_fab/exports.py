@@ -85,8 +85,13 @@ def write_cdsem(root: Path, data: DemoData, res: ExportResult) -> None:
     m = data.measurements
     wide_tools = [s.tool for s in cfg.fab.cdsems if s.dialect == "cdsem_wide_v1"]
     is_wide = pl.col("metrology_tool").is_in(wide_tools) & (pl.col("sample_kind") == "production")
-    long_m = m.filter(~is_wide).with_columns(_day=pl.col("measured_at").dt.strftime("%Y%m%d"))
-    wide_m = m.filter(is_wide)
+    # a production lot-layer measurement goes into the file of the day it started, whole: a lot split over two
+    # daily files would look like a corrected re-export of its first part
+    event = ["lot_id", "layer", "metrology_tool", "sample_kind"]
+    started = pl.when(pl.col("sample_kind") == "production").then(
+        pl.col("measured_at").min().over(event)).otherwise(pl.col("measured_at"))
+    long_m = m.filter(~is_wide).with_columns(_day=started.dt.strftime("%Y%m%d"))
+    wide_m = m.filter(is_wide).with_columns(_start=pl.col("measured_at").min().over(event))
 
     rx = data.reexport
     rx_mask = (
@@ -122,7 +127,7 @@ def write_cdsem(root: Path, data: DemoData, res: ExportResult) -> None:
         if key is not None:
             frame, rejects = _plant_bad_rows(frame, plan[key], rel)
             res.planned_rejects.extend(rejects)
-            corrupted += sum(1 for r in rejects if r["reason_contains"] != "duplicate")
+            corrupted += sum(1 for r in rejects if r["kind"] != "duplicate_row")
         _write(root, rel, _long_bytes(frame))
         res.add("cdsem_long_v2", rel)
     missing = [k for k in plan if not any(r["file"].endswith(f"{k[0]}_{day_names[k]}.csv") for r in res.planned_rejects)]
@@ -131,9 +136,10 @@ def write_cdsem(root: Path, data: DemoData, res: ExportResult) -> None:
 
     wide = (
         wide_m.pivot(on="parameter", index=["lot_id", "wafer_id", "slot", "site_id", "x_mm", "y_mm", "product",
-                                            "layer", "measured_at", "metrology_tool", "recipe"], values="value")
+                                            "layer", "measured_at", "metrology_tool", "recipe", "_start"],
+                     values="value")
         .sort("measured_at", "metrology_tool", "lot_id", "wafer_id", "site_id")
-        .with_columns(_day=_local("measured_at", "%Y%m%d"))
+        .with_columns(_day=_local("_start", "%Y%m%d"))
     )
     wide_all = wide.select(
         Lot=pl.col("lot_id"), Wafer=pl.col("wafer_id"), Slot=pl.col("slot"),
@@ -169,13 +175,13 @@ def _plant_bad_rows(frame: pl.DataFrame, plan: list[tuple[int, str]], rel: str) 
         i = prod[pos]
         if kind == "negative":
             rows[i]["Value_nm"] = "-" + rows[i]["Value_nm"]
-            rejects.append((i, "Value_nm", "negative"))
+            rejects.append((i, "Value_nm", "must be > 0", rows[i]["Value_nm"], "negative_value"))
         elif kind == "missing_lot":
             rows[i]["LotID"] = None
-            rejects.append((i, "LotID", "missing"))
+            rejects.append((i, "LotID", "missing", None, "missing_lot"))
         elif kind == "decimal_comma":
             rows[i]["Value_nm"] = rows[i]["Value_nm"].replace(".", ",")
-            rejects.append((i, "Value_nm", rows[i]["Value_nm"]))
+            rejects.append((i, "Value_nm", "decimal mark", rows[i]["Value_nm"], "decimal_comma"))
         elif kind == "duplicate":
             dup_after.append(i)
     out = []
@@ -185,11 +191,12 @@ def _plant_bad_rows(frame: pl.DataFrame, plan: list[tuple[int, str]], rel: str) 
         line_of[i] = len(out) + 1
         if i in dup_after:
             out.append(dict(r))
-            rejects.append((i, None, "duplicate"))
+            rejects.append((i, None, "duplicate", None, "duplicate_row"))
     planned = []
-    for i, col, reason in rejects:
-        line = line_of[i] + (1 if reason == "duplicate" else 0)
-        planned.append({"file": rel, "line": line, "column": col, "reason_contains": reason})
+    for i, col, reason, value, kind in rejects:
+        line = line_of[i] + (1 if kind == "duplicate_row" else 0)
+        planned.append({"file": rel, "line": line, "column": col, "value": value, "reason_contains": reason,
+                        "kind": kind})
     planned.sort(key=lambda r: r["line"])
     return pl.DataFrame(out, schema=frame.schema, orient="row"), planned
 
