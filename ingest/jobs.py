@@ -263,8 +263,9 @@ class _Reader:
             block = self._f.read(n)
         except (EOFError, gzip.BadGzipFile, zlib.error) as exc:
             raise IngestError(
-                "gzip stream is truncated or corrupt", path=str(self.path), line=self.lines_seen + 1,
-                found=f"{type(exc).__name__} after {self._pos} decompressed bytes", expected="a complete gzip file",
+                "gzip stream is truncated or corrupt", path=str(self.path),
+                found=f"{type(exc).__name__} after {self.lines_seen} complete lines",
+                expected="a complete gzip file",
                 fix="copy or re-export the file again (it was cut off); nothing was loaded",
             ) from None
         if self.on_bytes:

@@ -377,8 +377,8 @@ def detect_profile(header: list[str] | Callable[[Profile], list[str]], profiles:
         return fits[0]
     if len(fits) > 1:
         raise ProfileError(
-            f"header matches {len(fits)} export profiles", path=path, line=line, found=shown,
-            details="Candidates: " + ", ".join(f"{p.name} ({p.origin})" for p in fits),
+            f"header matches {len(fits)} export profiles", path=path, line=line,
+            details=f"Found: {shown}\n  Candidates: " + ", ".join(f"{p.name} ({p.origin})" for p in fits),
             fix="make the profiles' columns differ (remove the stale one from --profiles) so one header fits one",
         )
     subset = [(p, missing) for p, missing, unknown in scored if not unknown and len(view(p)) > 1]
@@ -390,8 +390,8 @@ def detect_profile(header: list[str] | Callable[[Profile], list[str]], profiles:
         f"{p.name} (lacks {', '.join(m) or '-'}; unknown {', '.join(u[:5]) or '-'})" for p, m, u in ranked
     )
     raise ProfileError(
-        "header matches no export profile", path=path, line=line, found=shown,
-        details=f"Closest {fmt} profiles: {cands}",
+        "header matches no export profile", path=path, line=line,
+        details=f"Found: {shown}\n  Closest {fmt} profiles: {cands}",
         fix="write a profile for this export and pass its folder with --profiles DIR, "
             "or export in lotline's native format (docs/ingest.md)",
     )
@@ -401,6 +401,6 @@ def _lacks(p: Profile, missing: list[str], shown: str, path: str, line: int) -> 
     names = ", ".join(f'"{m}"' for m in missing)
     return ProfileError(
         f"header lacks required column{'s' if len(missing) > 1 else ''} {names} of profile {p.name}",
-        path=path, line=line, found=shown,
+        path=path, line=line, details=f"Found: {shown}",
         fix=f"export the column, or mark it optional in {p.origin}",
     )

@@ -173,7 +173,7 @@ def map_records(raw: pl.DataFrame, profile: Profile, *, table: str | None = None
             checks.extend(_range_checks(pl.col(name), lim, src_name, rawc))
     if t.name == "measurements":
         vname = pl.col("__wide_src") if wide else chosen.get("value", "value")
-        checks.append(_Check(pl.col("value").is_not_null() & (pl.col("unit") == "nm") & (pl.col("value") <= 0),
+        checks.append(_Check(pl.col("value").is_finite() & (pl.col("unit") == "nm") & (pl.col("value") <= 0),
                              vname, _vraw(df, wide), "a length must be > 0"))
     if t.name == "process_history" and "ended_at" in df.columns:
         checks.append(_Check(pl.col("ended_at") < pl.col("started_at"), chosen.get("ended_at", "ended_at"),

@@ -28,21 +28,36 @@ def _text(v: Any) -> str | None:
     return json.dumps(v)
 
 
-def jsonl_keys(data: bytes, *, path: str) -> tuple[list[str], int]:
-    """Keys of the first JSON record (to pick a profile) and its line."""
+def jsonl_keys(data: bytes, *, path: str, scan: int = 100) -> tuple[list[str], int]:
+    """Keys of the first JSON object among the first ``scan`` records (to pick a profile), and its line.
+
+    A bad line before it is left for the record parser to reject; only a file with no readable record in
+    that range fails here.
+    """
+    first_bad: IngestError | None = None
+    seen = 0
     for i, line in enumerate(data.split(b"\n"), start=1):
         if not line.strip():
             continue
+        seen += 1
+        if seen > scan:
+            break
         try:
             rec = json.loads(line)
         except ValueError as exc:
-            raise IngestError("first record is not valid JSON", path=path, line=i, column=getattr(exc, "colno", 1),
-                              found=line[:60].decode("utf-8", "replace"), expected="one JSON object per line",
-                              fix="export JSON lines (one object per line)") from None
+            first_bad = first_bad or IngestError(
+                "first record is not valid JSON", path=path, line=i, column=getattr(exc, "colno", 1),
+                found=line[:60].decode("utf-8", "replace"), expected="one JSON object per line",
+                fix="export JSON lines (one object per line)")
+            continue
         if not isinstance(rec, dict):
-            raise IngestError("first record is not a JSON object", path=path, line=i, column=1,
-                              found=type(rec).__name__, expected="an object", fix="export one object per line")
+            first_bad = first_bad or IngestError(
+                "first record is not a JSON object", path=path, line=i, column=1, found=type(rec).__name__,
+                expected="an object", fix="export one object per line")
+            continue
         return list(rec), i
+    if first_bad is not None:
+        raise first_bad
     raise IngestError("file has no records", path=path, line=1, column=1, found="only blank lines",
                       expected="one JSON object per line", fix="re-export the file")
 

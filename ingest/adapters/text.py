@@ -149,13 +149,20 @@ class LineChunker:
                 buf = buf[nl + 1:]
                 self.next_line += 1
                 self.skip -= 1
-            self._buf, self._parts, self._size = b"", [buf] if buf else [], len(buf)
             if self.skip and not final:
+                self._buf = buf  # still inside the lines before the data
                 self._check_long(buf)
                 return out
+            self._buf, self._parts, self._size = b"", [buf] if buf else [], len(buf)
+            nl = buf.rfind(b"\n")
+            self._tail = len(buf) if nl < 0 else len(buf) - nl - 1
         elif data:
             self._parts.append(data)
             self._size += len(data)
+            nl = data.rfind(b"\n")
+            self._tail = self._tail + len(data) if nl < 0 else len(data) - nl - 1
+        if self._tail > self.max_line:
+            self._too_long(self._tail)
         if final:
             buf = b"".join(self._parts)
             self._parts, self._size = [], 0
@@ -163,11 +170,6 @@ class LineChunker:
                 self._check_utf8(buf)
                 out.append((self.next_line, buf))
             return out
-        if data:
-            nl = data.rfind(b"\n")
-            self._tail = self._tail + len(data) if nl < 0 else len(data) - nl - 1
-            if self._tail > self.max_line:
-                self._too_long(self._tail)
         if self._size < self.chunk_bytes:
             return out
         buf = b"".join(self._parts)
@@ -192,7 +194,7 @@ class LineChunker:
         raise IngestError(
             f"line is longer than {self.max_line} bytes", path=self.path,
             line=self.next_line + sum(p.count(b"\n") for p in self._parts), column=1,
-            found=f"{n} bytes without a newline", expected="one record per line",
+            found=f"no newline within {self.max_line} bytes", expected="one record per line",
             fix="check that the file is a line-oriented export (not a binary or a single-line dump)",
         )
 
