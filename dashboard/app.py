@@ -1,7 +1,8 @@
 """Entry point of the lotline dashboard: page setup and navigation (``lotline serve`` runs this file).
 
-The pages live in ``dashboard/pages/``; each arranges widgets, tables and charts over the data that
-``dashboard/data.py`` fetches from the warehouse.
+The pages live in ``dashboard/views/``; each arranges widgets, tables and charts over the data that
+``dashboard/data.py`` fetches from the warehouse. (Not ``pages/``: Streamlit treats a ``pages/`` folder
+beside the entry script as a legacy multipage app and then never runs this file's ``st.navigation``.)
 """
 
 from __future__ import annotations

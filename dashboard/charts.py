@@ -50,9 +50,9 @@ def _layout(fig: go.Figure, *, title: str = "", height: int = 380, **extra: Any)
     fig.update_layout(
         title={"text": title, "x": 0.0, "xanchor": "left", "font": {"size": 15}},
         height=height,
-        margin={"l": 60, "r": 20, "t": 50 if title else 20, "b": 40},
+        margin={"l": 60, "r": 20, "t": 40 if title else 15, "b": 40},
         template="plotly_white",
-        legend={"orientation": "h", "yanchor": "bottom", "y": 1.02, "xanchor": "right", "x": 1.0},
+        legend={"orientation": "h", "yanchor": "top", "y": -0.12, "xanchor": "left", "x": 0.0},
         **extra,
     )
     return fig
@@ -198,7 +198,7 @@ def control_chart(
                 )
             )  # fmt: skip
     fig.update_yaxes(title_text=unit or "value")
-    _layout(fig, title=title, height=420, clickmode="event+select", dragmode="select")
+    _layout(fig, title=title, height=470, clickmode="event+select", dragmode="select")
     fig.layout.meta = {"point_traces": n_point_traces}
     return fig
 
@@ -251,7 +251,7 @@ def ewma_chart(ewma_points: pl.DataFrame, *, x: str = "point_at", title: str = "
                     marker={"symbol": RULE_SYMBOLS["ewma"], "size": 11, "color": _SIGNAL_COLOR},
                 )
             )
-    return _layout(fig, title=title, height=250)
+    return _layout(fig, title=title, height=300)
 
 
 def cusum_chart(
@@ -283,7 +283,7 @@ def cusum_chart(
     _step_line(fig, [xs[0], xs[-1]], [-h, -h], name="decision interval ±h", line=_LIMIT_LINE, legendgroup="h",
                show=False)  # fmt: skip
     fig.update_yaxes(title_text="sigma units")
-    return _layout(fig, title=title, height=250)
+    return _layout(fig, title=title, height=300)
 
 
 # ------------------------------------------------------------------------------------------ drill-down keys

@@ -16,11 +16,11 @@ import polars as pl
 import streamlit as st
 
 PAGES = {
-    "overview": "pages/overview.py",
-    "chart": "pages/chart.py",
-    "lot": "pages/lot.py",
-    "excursions": "pages/excursions.py",
-    "health": "pages/health.py",
+    "overview": "views/overview.py",
+    "chart": "views/chart.py",
+    "lot": "views/lot.py",
+    "excursions": "views/excursions.py",
+    "health": "views/health.py",
 }
 """Page files by short name (paths relative to dashboard/app.py)."""
 
@@ -135,6 +135,16 @@ def table(
     if columns:
         frame = frame.select([c for c in columns if c in frame.columns])
     st.dataframe(frame, hide_index=True, width="stretch", key=key, column_config=config or None)
+
+
+def static_table(frame: pl.DataFrame, *, columns: Sequence[str] | None = None) -> None:
+    """Show a short frame as a plain HTML table (text in the page, no grid widget)."""
+    if columns:
+        frame = frame.select([c for c in columns if c in frame.columns])
+    if frame.height == 0:
+        st.caption("(none)")
+        return
+    st.table(frame.with_columns(pl.col(pl.Datetime).dt.strftime("%Y-%m-%d %H:%M:%S")), hide_index=True)
 
 
 def caution(kind: str) -> None:

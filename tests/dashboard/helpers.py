@@ -17,7 +17,7 @@ from warehouse import queries, store
 def run_page(page: str | None = None, **params: str) -> AppTest:
     at = AppTest.from_file(str(APP), default_timeout=60)
     if page:
-        at.switch_page(f"pages/{page}.py")
+        at.switch_page(f"views/{page}.py")
     for k, v in params.items():
         at.query_params[k] = v
     return at.run()
@@ -30,7 +30,7 @@ def query(db, name: str, **kwargs):
 
 def table_with(at: AppTest, *cols: str) -> pl.DataFrame:
     """The first table on the page that has all of ``cols``."""
-    for el in at.dataframe:
+    for el in [*at.dataframe, *at.table]:
         if all(c in el.value.columns for c in cols):
             return pl.from_pandas(el.value)
     raise AssertionError(f"no table with columns {cols}")

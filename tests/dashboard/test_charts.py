@@ -47,7 +47,9 @@ def test_control_chart_limits_follow_the_version_in_force_as_steps():
 
 def test_control_chart_zone_bands_only_when_a_zone_rule_applies():
     assert not [t for t in charts.control_chart(_points(), rules=["we1"]).data if t.legendgroup == "zones"]
-    bands = [t for t in charts.control_chart(_points(), rules=["we1", "we2"]).data if t.legendgroup == "zones"]
+    bands = [
+        t for t in charts.control_chart(_points(), rules=["we1", "we2"]).data if t.legendgroup == "zones"
+    ]
     # 1 and 2 sigma either side of the centre line (zones C and B, Western Electric handbook 1956)
     assert sorted(round(b.y[0], 9) for b in bands) == [44.0, 44.5, 45.5, 46.0]
 
@@ -79,7 +81,9 @@ def test_control_chart_empty_frame_gives_a_blank_figure_that_says_so():
 
 
 def test_wafer_map_uses_uniform_scale_and_a_150_mm_outline():
-    sites = pl.DataFrame({"site_id": ["1", "2"], "x_mm": [0.0, 100.0], "y_mm": [0.0, -50.0], "value": [45.0, 46.0]})
+    sites = pl.DataFrame(
+        {"site_id": ["1", "2"], "x_mm": [0.0, 100.0], "y_mm": [0.0, -50.0], "value": [45.0, 46.0]}
+    )
     fig = charts.wafer_map(sites, unit="nm")
     circle = fig.layout.shapes[0]
     assert (circle.type, circle.x0, circle.x1, circle.y0, circle.y1) == ("circle", -150, 150, -150, 150)
@@ -89,7 +93,9 @@ def test_wafer_map_uses_uniform_scale_and_a_150_mm_outline():
 
 
 def test_defect_map_colours_by_class_on_the_wafer_outline():
-    d = pl.DataFrame({"x_mm": [1.0, 2.0, 3.0], "y_mm": [0.0, 0.0, 0.0], "defect_class": ["scratch", "particle", None]})
+    d = pl.DataFrame(
+        {"x_mm": [1.0, 2.0, 3.0], "y_mm": [0.0, 0.0, 0.0], "defect_class": ["scratch", "particle", None]}
+    )
     fig = charts.defect_map(d)
     assert [t.name for t in fig.data] == ["(unclassified)", "particle", "scratch"]
     assert fig.layout.shapes[0].x1 == 150

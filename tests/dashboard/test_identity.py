@@ -7,11 +7,15 @@ from dashboard.identity import Author, resolve_author
 
 def test_resolve_author_prefers_the_oidc_login():
     user = {"is_logged_in": True, "email": "a.engineer@example.org", "name": "A. Engineer"}
-    assert resolve_author(user, {"X-User": "proxy-user"}, "X-User", "svc") == Author("a.engineer@example.org", "login")
+    assert resolve_author(user, {"X-User": "proxy-user"}, "X-User", "svc") == Author(
+        "a.engineer@example.org", "login"
+    )
 
 
 def test_resolve_author_login_without_email_uses_name():
-    assert resolve_author({"is_logged_in": True, "name": "B. Eng"}, {}, None, "svc") == Author("B. Eng", "login")
+    assert resolve_author({"is_logged_in": True, "name": "B. Eng"}, {}, None, "svc") == Author(
+        "B. Eng", "login"
+    )
 
 
 def test_resolve_author_not_logged_in_ignores_user_fields():

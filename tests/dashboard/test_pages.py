@@ -220,7 +220,8 @@ def test_excursions_page_disposition_is_stored_and_shown_in_history(fixture_db):
     at.text_area(key="f_comment").input("SCAN02 dose check")
     at.button(key="f_submit").click().run()
     assert not at.exception
-    assert at.success, [e.value for e in at.error]
+    assert not at.error, [e.value for e in at.error]
+    assert at.success[0].value.startswith(f"Recorded for excursion {xid} by ")
     hist = query(fixture_db, "excursion_history", excursion_id=xid)
     last = hist.row(-1, named=True)
     assert (last["to_state"], last["classification"], last["cause_category"], last["action"], last["comment"]) == (
@@ -237,7 +238,7 @@ def test_excursions_page_disposition_is_stored_and_shown_in_history(fixture_db):
 def test_excursions_page_logged_in_user_is_the_author(fixture_db):
     xid = shifted_excursion(fixture_db)
     at = AppTest.from_file(str(APP), default_timeout=60)
-    at.switch_page("pages/excursions.py")
+    at.switch_page("views/excursions.py")
     at.query_params["excursion"] = str(xid)
     at.query_params["state"] = "all"
     at.user = {"is_logged_in": True, "email": "a.engineer@example.org"}

@@ -14,7 +14,13 @@ from tests.dashboard.helpers import run_page
 from warehouse import store
 
 ROOT = Path(__file__).resolve().parents[2]
-INJECTIONS = ["' OR 1=1 --", "1; DROP TABLE signals; --", "1 OR 1=1", '" OR ""="', "%' UNION SELECT * FROM rejects --"]
+INJECTIONS = [
+    "' OR 1=1 --",
+    "1; DROP TABLE signals; --",
+    "1 OR 1=1",
+    '" OR ""="',
+    "%' UNION SELECT * FROM rejects --",
+]
 
 
 def _counts(db):
@@ -72,7 +78,11 @@ SQL_PATTERNS = [
 
 def _string_constants(path: Path) -> list[tuple[int, str]]:
     tree = ast.parse(path.read_text(encoding="utf-8"))
-    return [(n.lineno, n.value) for n in ast.walk(tree) if isinstance(n, ast.Constant) and isinstance(n.value, str)]
+    return [
+        (n.lineno, n.value)
+        for n in ast.walk(tree)
+        if isinstance(n, ast.Constant) and isinstance(n.value, str)
+    ]
 
 
 def test_dashboard_source_holds_no_sql_text_and_no_connection():
@@ -89,7 +99,9 @@ def test_dashboard_source_holds_no_sql_text_and_no_connection():
 
 
 def _looks_like_sql(text: str) -> bool:
-    return any(p.search(text) for p in SQL_PATTERNS) or bool(re.search(r"\b(WHERE|GROUP BY|ORDER BY|CASE)\b", text))
+    return any(p.search(text) for p in SQL_PATTERNS) or bool(
+        re.search(r"\b(WHERE|GROUP BY|ORDER BY|CASE)\b", text)
+    )
 
 
 def _module_constants(tree: ast.Module) -> set[str]:
@@ -129,7 +141,11 @@ def test_queries_never_format_values_into_sql():
         params = {a.arg for a in func.args.args + func.args.kwonlyargs}
         safe = set(constants) | _validated_names(func)
         for node in ast.walk(func):
-            if isinstance(node, ast.Assign) and len(node.targets) == 1 and isinstance(node.targets[0], ast.Name):
+            if (
+                isinstance(node, ast.Assign)
+                and len(node.targets) == 1
+                and isinstance(node.targets[0], ast.Name)
+            ):
                 if node.targets[0].id not in params and _constant_expr(node.value, constants):
                     safe.add(node.targets[0].id)
         for node in ast.walk(func):
@@ -139,12 +155,22 @@ def test_queries_never_format_values_into_sql():
                     continue
                 for v in node.values:
                     if isinstance(v, ast.FormattedValue) and not _constant_expr(v.value, safe):
-                        bad.append(f"queries.py:{v.lineno} {func.name}: f-string SQL interpolates {ast.unparse(v.value)}")
-            elif isinstance(node, ast.Call) and isinstance(node.func, ast.Attribute) and node.func.attr == "format":
+                        bad.append(
+                            f"queries.py:{v.lineno} {func.name}: f-string SQL interpolates {ast.unparse(v.value)}"
+                        )
+            elif (
+                isinstance(node, ast.Call)
+                and isinstance(node.func, ast.Attribute)
+                and node.func.attr == "format"
+            ):
                 args = [*node.args, *(k.value for k in node.keywords)]
                 if not all(_constant_expr(a, safe) for a in args):
                     bad.append(f"queries.py:{node.lineno} {func.name}: .format() with a value")
-            elif isinstance(node, ast.BinOp) and isinstance(node.op, ast.Mod) and isinstance(node.left, ast.Constant):
+            elif (
+                isinstance(node, ast.BinOp)
+                and isinstance(node.op, ast.Mod)
+                and isinstance(node.left, ast.Constant)
+            ):
                 if isinstance(node.left.value, str) and _looks_like_sql(node.left.value):
                     bad.append(f"queries.py:{node.lineno} {func.name}: %-formatted SQL")
     assert not bad, "values formatted into SQL:\n" + "\n".join(bad)
@@ -152,7 +178,7 @@ def test_queries_never_format_values_into_sql():
 
 def test_queries_source_check_catches_a_formatted_value(tmp_path):
     # The checker itself must fail on the pattern it is meant to catch.
-    code = 'def f(con, *, lot):\n    return con.sql(f"SELECT * FROM m WHERE lot_id = \'{lot}\'")\n'
+    code = "def f(con, *, lot):\n    return con.sql(f\"SELECT * FROM m WHERE lot_id = '{lot}'\")\n"
     tree = ast.parse(code)
     func = tree.body[0]
     fstr = next(n for n in ast.walk(func) if isinstance(n, ast.JoinedStr))

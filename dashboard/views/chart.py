@@ -51,7 +51,7 @@ def main() -> None:
     rows = {r["series_id"]: r for r in series.filter(pl.col("chart") == chart).iter_rows(named=True)}
     series_id = widgets.choice("Series", list(rows), key="series", default=wanted,
                                format_func=lambda sid: _series_label(rows[sid]), container=c2)  # fmt: skip
-    days = widgets.choice("Window (days, 0 = all)", WINDOWS, key="days", default=0, container=c3)
+    days = widgets.choice("Days (0 = all)", WINDOWS, key="days", default=0, container=c3)
     info = rows[series_id]
 
     frames = data.load(

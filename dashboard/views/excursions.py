@@ -13,6 +13,7 @@ from dashboard import data, widgets
 STATES = ("open", "acknowledged", "closed", "all")
 SEVERITIES = ("all", "critical", "high", "medium", "low")
 CLASSIFICATIONS = ("real", "measurement", "false_alarm")
+FLASH = "disposition_recorded"
 CAUSES = (
     "",
     "process_tool",
@@ -46,6 +47,21 @@ def _filters(frame: pl.DataFrame) -> pl.DataFrame:
     return frame
 
 
+def _submit(excursion_id: int, author) -> None:
+    """Form callback: runs before the page reruns, so the page then shows the new audit entry."""
+    ss = st.session_state
+    try:
+        data.record_disposition(
+            excursion_id=excursion_id, to_state=ss["f_state"], classification=ss["f_classification"],
+            cause_category=ss["f_cause"] or None, action=(ss["f_action"] or "").strip() or None,
+            comment=(ss["f_comment"] or "").strip() or None, lots_affected=list(ss["f_lots"]), author=author,
+        )  # fmt: skip
+    except (ValueError, data.LotlineError) as exc:
+        ss[FLASH] = ("error", f"Not recorded: {exc}")
+    else:
+        ss[FLASH] = ("success", f"Recorded for excursion {excursion_id} by {author.name}.")
+
+
 def _form(detail: dict, author) -> None:
     st.subheader("Record a disposition")
     widgets.caution("disposition")
@@ -54,33 +70,23 @@ def _form(detail: dict, author) -> None:
         st.text(f"Author: {author.label}")
         c1, c2, c3 = st.columns(3)
         states = list(STATES[:3])
-        to_state = c1.selectbox(
+        c1.selectbox(
             "New state",
             states,
             index=states.index(detail["state"]) if detail["state"] in states else 0,
             key="f_state",
         )
-        classification = c2.selectbox(
+        c2.selectbox(
             "Classification", CLASSIFICATIONS, index=None, placeholder="choose", key="f_classification"
         )
-        cause = c3.selectbox(
-            "Cause category", CAUSES, format_func=lambda v: v or "(not known yet)", key="f_cause"
-        )
-        action = st.text_input("Action (as decided under the OCAP)", max_chars=500, key="f_action")
-        affected = st.multiselect("Lots covered", lots, default=lots, key="f_lots")
-        comment = st.text_area("Comment", max_chars=4000, key="f_comment")
-        submitted = st.form_submit_button("Record disposition", type="primary", key="f_submit")
-    if submitted:
-        try:
-            data.record_disposition(
-                excursion_id=int(detail["excursion_id"]), to_state=to_state, classification=classification,
-                cause_category=cause or None, action=action.strip() or None, comment=comment.strip() or None,
-                lots_affected=affected, author=author,
-            )  # fmt: skip
-        except (ValueError, data.LotlineError) as exc:
-            st.error(f"Not recorded: {exc}")
-        else:
-            st.success(f"Recorded for excursion {detail['excursion_id']} by {author.name}.")
+        c3.selectbox("Cause category", CAUSES, format_func=lambda v: v or "(not known yet)", key="f_cause")
+        st.text_input("Action (as decided under the OCAP)", max_chars=500, key="f_action")
+        st.multiselect("Lots covered", lots, default=lots, key="f_lots")
+        st.text_area("Comment", max_chars=4000, key="f_comment")
+        st.form_submit_button(
+            "Record disposition", type="primary", key="f_submit", on_click=_submit,
+            args=(int(detail["excursion_id"]), author),
+        )  # fmt: skip
 
 
 def main() -> None:
@@ -122,6 +128,9 @@ def main() -> None:
     if excursion_id is None or frames["detail"].height == 0:
         widgets.not_found("Excursion", raw)
     detail = frames["detail"].row(0, named=True)
+    if FLASH in st.session_state:
+        kind, message = st.session_state.pop(FLASH)
+        (st.success if kind == "success" else st.error)(message)
     st.header(
         f"Excursion {detail['excursion_id']}: {detail['chart']} ({detail['severity']}, {detail['state']})"
     )
@@ -140,7 +149,8 @@ def main() -> None:
                                               "limit_version", "severity", "withdrawn_at", "withdrawn_reason"],
                   key="excursion_signals")  # fmt: skip
     st.subheader("Audit history")
-    widgets.table(frames["history"], key="audit_history")
+    # A static table: the trail is short, and every entry stays readable (and selectable) as text.
+    widgets.static_table(frames["history"])
     _form(detail, data.current_author())
     widgets.caution("signals")
 
