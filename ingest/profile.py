@@ -11,6 +11,7 @@ Pure: parsing and detection take text and return values; only :func:`load_profil
 
 from __future__ import annotations
 
+import re
 import tomllib
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -147,8 +148,9 @@ def parse_profile(text: str, *, origin: str) -> Profile:
     try:
         doc = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
-        line = getattr(exc, "lineno", None)
-        col = getattr(exc, "colno", None)
+        m = re.search(r"at line (\d+), column (\d+)", str(exc))  # Python 3.11 puts the position in the text
+        line = int(m.group(1)) if m else getattr(exc, "lineno", None)
+        col = int(m.group(2)) if m else getattr(exc, "colno", None)
         raise ProfileError(
             "profile is not valid TOML", path=origin, line=line, column=col, details=str(exc).split(" (at")[0],
             fix="correct the TOML syntax",

@@ -158,6 +158,8 @@ ROW_REJECTS = [
      [(3, None, "HC2609-020,HC2609-020-01,1,S02,0.0", "row has 5 fields, the header has 17 (ragged row)")]),
     ("decimal comma in a comma-separated file", _long(long_row("S01"), long_row("S02", value="12,7")),
      [(3, None, long_row("S02", value="12,7"), "row has 18 fields, the header has 17 (ragged row)")]),
+    ("quoted decimal comma in a dot-decimal file", _long(long_row("S01"), long_row("S02", value='"12,7"')),
+     [(3, "Value_nm", "12,7", 'not a number (the profile\'s decimal mark is "."; found ",")')]),
     ("NaN", _long(long_row("S01", value="NaN"), long_row("S02")), [(2, "Value_nm", "NaN", "not a finite number")]),
     ("inf", _long(long_row("S01"), long_row("S02", value="-inf")), [(3, "Value_nm", "-inf", "not a finite number")]),
     ("not a number", _long(long_row("S01", value="n/a"), long_row("S02")), [(2, "Value_nm", "n/a", "not a number")]),
