@@ -754,6 +754,86 @@ def excursions_set_cmd(excursion_id, db, state, user, classification, cause, act
 # --- drill-down commands ---
 
 
+def _explain_lines(ex, top: int) -> list[str]:
+    """The terminal report of one explanation (formatting only; the numbers come from warehouse.drilldown)."""
+    x = ex.excursion
+    split = ", ".join(f"{k}={v}" for k, v in x["split"].items()) or "(pooled)"
+    lines = [
+        f"Excursion #{x['excursion_id']} ({x['state']}, {x['severity']}): chart {x['chart']}",
+        f"  layer {x['layer']}  parameter {x['parameter']}  statistic {x['statistic']}  chart {x['chart_type']}",
+        f"  split {split}",
+        f"  rules {', '.join(x['rules'])}  first {x['first_at']:%Y-%m-%d %H:%M}  last {x['last_at']:%Y-%m-%d %H:%M}"
+        f"  signals {x['n_signals']}",
+        f"  lots ({len(ex.affected_lots)}): {', '.join(ex.affected_lots[:12])}"
+        + (f" and {len(ex.affected_lots) - 12} more" if len(ex.affected_lots) > 12 else ""),
+        "",
+        f"Commonality: {len(ex.affected_lots)} affected vs {len(ex.reference_lots)} reference lots "
+        f"({ex.periods['population_from']:%Y-%m-%d} to {ex.periods['population_to']:%Y-%m-%d})",
+    ]
+    if ex.commonality is None or ex.commonality.height == 0:
+        lines.append("  (nothing to rank)")
+    else:
+        lines.append(f"  {'rank':>4}  {'step':<12} {'kind':<8} {'candidate':<16} {'affected':>8} {'lots':>5} "
+                     f"{'q':>9}  flags")
+        for r in ex.commonality.head(top).iter_rows(named=True):
+            flags = []
+            if r["ran_most_lots"]:
+                flags.append("ran most lots")
+            if r["aliases"]:
+                flags.append(f"aliased with {len(r['aliases'])}")
+            q = r["q_best"]
+            qtxt = "n/a" if q is None or q != q else f"{q:.2g}"
+            lines.append(f"  {r['rank']:>4}  {r['step']:<12} {r['kind']:<8} {r['candidate']:<16} "
+                         f"{r['n_affected']:>8} {r['n_lots']:>5} {qtxt:>9}  {'; '.join(flags)}")
+            lines.append(f"        {r['reason']}")
+    if ex.signatures is not None and ex.signatures.height:
+        counts = ex.signatures.group_by("label").len().sort(["len", "label"], descending=[True, False])
+        lines += ["", f"Wafer signatures ({ex.signatures.height} affected wafers vs the chart's baseline wafers):"]
+        lines += [f"  {r['label']}: {r['len']} wafer(s)" for r in counts.iter_rows(named=True)]
+        emc = ex.signatures["edge_minus_centre"].drop_nulls()
+        if emc.len():
+            lines.append(f"  mean edge minus centre: {emc.mean():+.2f}")
+    if ex.defect_clusters is not None:
+        lines += ["", f"Defect clusters on the affected wafers: {ex.defect_clusters.height}"]
+        for r in ex.defect_clusters.iter_rows(named=True):
+            lines.append(f"  {r['wafer_id']}: {r['kind']} of {r['n_defects']} defects, {r['length_mm']:.0f} mm long "
+                         f"at ({r['centroid_x_mm']:.0f}, {r['centroid_y_mm']:.0f}) mm")
+    lines += ["", f"Process or metrology: {ex.verdict}"]
+    if ex.attribution is not None:
+        ev = ex.evidence
+        lines.append(f"  measuring tool {ev.metrology_tool}, shift {ev.shift_nm:+.2f} nm "
+                     f"(votes: process {ex.attribution.process_votes}, metrology {ex.attribution.metrology_votes})")
+        lines += [f"  - {t}" for t in ex.attribution.evidence]
+    for n in ex.notes:
+        lines.append(f"note: {n}")
+    lines += ["", "Cautions:"] + [f"  - {c}" for c in ex.cautions]
+    return lines
+
+
+@cli.command("explain")
+@click.argument("excursion_id", type=int)
+@db_option
+@click.option("--top", type=int, default=10, show_default=True, help="Commonality rows to print.")
+@click.option("--json", "as_json", is_flag=True, help="Print the whole explanation as JSON.")
+def explain_cmd(excursion_id: int, db, top: int, as_json: bool):
+    """Explain one excursion: commonality, wafer signatures, defect clusters, process or metrology.
+
+    Example: lotline explain 12 --db demo_run/lotline.duckdb
+    """
+    from warehouse import drilldown, store
+    from warehouse.errors import LotlineError
+
+    try:
+        ex = drilldown.explain_excursion(store.resolve_db_path(db), excursion_id)
+    except LotlineError as exc:
+        fail(exc)
+    if as_json:
+        echo_json(ex.to_dict())
+        return
+    for line in _explain_lines(ex, top):
+        click.echo(line)
+
+
 # --- tool-health commands ---
 
 
