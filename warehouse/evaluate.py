@@ -14,8 +14,9 @@ One run is one unit of work (one transaction). Per plan entry:
    its first point. Either way the signals equal those of a full run.
 3. **Limits.** Frozen versions are only read. A series without one is frozen automatically from the plan
    entry's baseline once complete (user ``lotline-auto``); until then only its out-of-spec check runs.
-4. **Signals** are written idempotently: a signal is identified by series, point key, rule, value and
-   limit version; one no longer found is *withdrawn* (with the reason), never deleted.
+4. **Signals** are written idempotently: a signal is identified by series, point key, rule, value, chart
+   statistic and limit version; one no longer found is *withdrawn* (with the reason), never deleted, and
+   its successor (e.g. the same point with an EWMA value changed by a late earlier point) is a new row.
 5. **Excursions**: new signals join the newest unclosed excursion of their series when at most
    ``EXCURSION_GAP`` unsignalled points lie between them, else open a new one (see warehouse.excursions).
 
@@ -46,7 +47,7 @@ EXCURSION_GAP = 2
 """Unsignalled points allowed between two signals of one excursion."""
 WITHDRAWN_SUPERSEDED = "point's data superseded or moved (corrected re-export or new process history)"
 WITHDRAWN_CHANGED = "point's value changed (corrected re-export)"
-WITHDRAWN_NOT_FOUND = "not found on re-evaluation (limits re-frozen or earlier points changed)"
+WITHDRAWN_NOT_FOUND = "not found on re-evaluation (limits re-frozen, or earlier points changed the chart statistic)"
 
 
 @dataclass
@@ -420,7 +421,9 @@ def _reconcile(ctx: _Context, e: PlanEntry, sig: pl.DataFrame, pts: pl.DataFrame
     match = (
         "s.series_id = c.series_id AND s.point_key = c.point_key AND s.rule = c.rule "
         "AND s.limit_version IS NOT DISTINCT FROM c.limit_version "
-        "AND abs(s.value - c.value) <= 1e-9 * greatest(1.0, abs(c.value))"
+        "AND abs(s.value - c.value) <= 1e-9 * greatest(1.0, abs(c.value)) "
+        "AND ((s.statistic IS NULL AND c.statistic IS NULL) "
+        "     OR abs(s.statistic - c.statistic) <= 1e-9 * greatest(1.0, abs(c.statistic)))"
     )
     con.register("cand", cand)
     con.register("rs", rs)

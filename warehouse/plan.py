@@ -180,7 +180,7 @@ class _Checker:
                 where,
                 f'{label} "{value}" is not known',
                 expected=f"one of {', '.join(choices)}",
-                fix=_did_you_mean(value, choices) + "use one of the listed values",
+                fix=_did_you_mean(value, choices) + "Use one of the listed values",
             )
             return None
         return value
@@ -330,14 +330,14 @@ def _check_baseline(c: _Checker, b, where: tuple) -> None:
 def _check_entry(c: _Checker, entry, i: int, defaults: dict, seen: dict[str, int]) -> None:
     where = ("chart", i)
     if not isinstance(entry, dict):
-        c.err(where, "chart entry must be a table")
+        c.err(where, "chart entry must be a table", expected="a [[chart]] table")
         return
     name = entry.get("name")
     label = f'chart "{name}"' if isinstance(name, str) else f"[[chart]] #{i + 1}"
     c.unknown_keys(entry, ENTRY_KEYS, where, label)
     for req in ("name", "select", "statistic", "chart"):
         if req not in entry:
-            c.err(where, f'{label} lacks required key "{req}"', key=True, fix=f"add {req} = ...")
+            c.err(where, f'{label} lacks required key "{req}"', key=True, fix=f'add the key "{req}" to this [[chart]] table')
     if "name" in entry and c.string(name, (*where, "name"), "chart name") is not None:
         if name in seen:
             c.err((*where, "name"), f'chart name "{name}" is used twice', fix=f"rename one (the first is on line {seen[name]})")

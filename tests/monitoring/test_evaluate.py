@@ -1,0 +1,231 @@
+"""Evaluation: drift caught with frozen limits, idempotency, supersession withdrawals, splits, specs, defects."""
+
+from __future__ import annotations
+
+from datetime import datetime, timedelta
+
+import numpy as np
+import pytest
+
+from tests.monitoring.conftest import load, make_lots, site_rows
+from tests.monitoring.facts import insert_facts
+from warehouse import evaluate, queries, schema, store
+from warehouse.plan import parse_plan, store_plan
+
+
+def _limits(path):
+    with store.open_warehouse(path, read_only=True) as con:
+        return queries.series_limits(con)
+
+
+def _signals(path, **kw):
+    with store.open_warehouse(path, read_only=True) as con:
+        return queries.newest_signals(con, limit=100_000, **kw)
+
+
+def test_evaluate_slow_drift_caught_by_ewma_with_frozen_limits_unmoved(wh):
+    lots = make_lots(80, drift_from=30, drift_per_lot=0.03)
+    load(wh, lots[:30])
+    first = evaluate.evaluate_warehouse(wh, user="t")
+    assert first.limits_frozen == 1
+    before = _limits(wh)
+    # Phase I centre = mean of the first 20 wafer means, sigma = their sample SD (numpy as the oracle)
+    means = np.array([np.mean([r["value"] for r in lot]) for lot in lots[:20]])
+    assert before["center"][0] == pytest.approx(means.mean(), rel=1e-12)
+    assert before["sigma"][0] == pytest.approx(means.std(ddof=1), rel=1e-12)
+    assert before["frozen_by"][0] == "lotline-auto"
+    load(wh, lots[30:])
+    evaluate.evaluate_warehouse(wh, user="t")
+    after = _limits(wh)
+    assert after.height == 1  # no new version: evaluation never re-estimates frozen limits
+    assert after.select("version", "center", "sigma", "lcl", "ucl").rows() == before.select(
+        "version", "center", "sigma", "lcl", "ucl").rows()
+    sig = _signals(wh)
+    ewma = sig.filter(sig["rule"] == "ewma")
+    assert ewma.height > 0
+    first_ewma = ewma["lot_id"].min()
+    assert first_ewma >= "L0030"  # nothing before the drift starts
+    we1 = sig.filter(sig["rule"] == "we1")
+    assert we1.height == 0 or first_ewma < we1["lot_id"].min()  # EWMA sees the drift before rule 1
+
+
+def test_evaluate_twice_adds_nothing_and_full_rerun_changes_nothing(wh):
+    load(wh, make_lots(60, drift_from=25, drift_per_lot=0.05))
+    s1 = evaluate.evaluate_warehouse(wh, user="t")
+    n1 = _signals(wh).height
+    assert s1.signals_new == n1 > 0
+    s2 = evaluate.evaluate_warehouse(wh, user="t")
+    assert (s2.signals_new, s2.signals_withdrawn, s2.series) == (0, 0, 0)
+    s3 = evaluate.evaluate_warehouse(wh, full=True, user="t")
+    assert (s3.signals_new, s3.signals_withdrawn) == (0, 0)
+    assert _signals(wh).height == n1
+
+
+def test_evaluate_superseding_export_withdraws_signals_on_superseded_rows(wh):
+    lots = make_lots(40)
+    lots.append(site_rows("L9999", "L9999-01", [49.0] * 5, datetime(2026, 9, 15)))  # a far outlier lot
+    load(wh, lots)
+    evaluate.evaluate_warehouse(wh, user="t")
+    sig = _signals(wh)
+    bad = sig.filter(sig["lot_id"] == "L9999")
+    assert "we1" in bad["rule"].to_list()
+    # corrected re-export of that lot: the old rows are superseded, the new values are in control
+    with store.open_warehouse(wh) as con:
+        insert_facts(con, schema.MEASUREMENTS, site_rows("L9999", "L9999-01", [45.1] * 5, datetime(2026, 9, 15)),
+                     path="corrected.csv", supersede=True)
+    s = evaluate.evaluate_warehouse(wh, user="t")
+    assert s.series_recomputed == 1 and s.signals_withdrawn == bad.height
+    with store.open_warehouse(wh, read_only=True) as con:
+        all_rows = queries.series_signals(con, series_id=1)
+    old = all_rows.filter(all_rows["lot_id"] == "L9999")
+    assert old.height == bad.height  # kept, not deleted
+    assert old["withdrawn_at"].null_count() == 0
+    assert set(old["withdrawn_reason"]) == {evaluate.WITHDRAWN_CHANGED}
+    assert _signals(wh).filter(_signals(wh)["lot_id"] == "L9999").height == 0
+
+
+def test_evaluate_reexport_on_another_tool_moves_the_point_and_withdraws_the_old_signal(wh):
+    lots = make_lots(30)
+    lots.append(site_rows("L9999", "L9999-01", [49.0] * 5, datetime(2026, 9, 15)))
+    load(wh, lots)
+    evaluate.evaluate_warehouse(wh, user="t")
+    with store.open_warehouse(wh) as con:
+        # the supersede key includes the metrology tool, so mark the old rows by hand like a lot-level correction
+        fid = insert_facts(con, schema.MEASUREMENTS,
+                           site_rows("L9999", "L9999-01", [45.0] * 5, datetime(2026, 9, 15), tool="CDS-2"))
+        con.execute("UPDATE measurements SET _superseded_by = ? WHERE lot_id = 'L9999' AND metrology_tool = 'CDS-1'",
+                    [fid])
+    evaluate.evaluate_warehouse(wh, user="t")
+    with store.open_warehouse(wh, read_only=True) as con:
+        old = queries.series_signals(con, series_id=1)
+    moved = old.filter(old["lot_id"] == "L9999")
+    assert set(moved["withdrawn_reason"]) == {evaluate.WITHDRAWN_SUPERSEDED}
+
+
+def test_evaluate_late_point_recomputes_the_series(wh):
+    lots = make_lots(40)
+    load(wh, lots[:25] + lots[26:])
+    evaluate.evaluate_warehouse(wh, user="t")
+    load(wh, [lots[25]])  # arrives late, in the middle of the series
+    s = evaluate.evaluate_warehouse(wh, user="t")
+    assert (s.series_recomputed, s.series_appended) == (1, 0)
+    with store.open_warehouse(wh, read_only=True) as con:
+        info = queries.series_info(con)
+    assert info["n_points"][0] == 40
+
+
+def test_evaluate_waits_for_baseline_then_auto_freezes(wh):
+    load(wh, make_lots(10))
+    s = evaluate.evaluate_warehouse(wh, user="t")
+    assert (s.waiting_for_baseline, s.limits_frozen, s.signals_new) == (1, 0, 0)
+    load(wh, make_lots(30, seed=5, start=datetime(2026, 10, 1)))
+    s = evaluate.evaluate_warehouse(wh, user="t")
+    assert s.limits_frozen == 1
+
+
+def test_freeze_limits_new_version_is_used_and_history_kept(wh):
+    load(wh, make_lots(40))
+    evaluate.evaluate_warehouse(wh, user="t")
+    rows = evaluate.freeze_limits(wh, chart="m1-cd", first=30, reason="longer baseline", user="a.engineer")
+    assert rows[0]["version"] == 2 and rows[0]["baseline_n"] == 30
+    s = evaluate.evaluate_warehouse(wh, user="t")
+    assert s.series_recomputed == 1
+    hist = _limits(wh)
+    assert hist["version"].to_list() == [1, 2]
+    assert hist["frozen_by"].to_list() == ["lotline-auto", "a.engineer"]
+    assert hist["current"].to_list() == [False, True]
+    with store.open_warehouse(wh, read_only=True) as con:
+        pts = queries.series_points(con, series_id=1)
+    assert set(pts["limit_version"]) == {2}
+
+
+SPLIT_PLAN = """
+[[chart]]
+name = "m1-tool"
+select = { layer = "M1_DEV", parameter = "cd_mid" }
+statistic = "wafer_mean"
+split = ["process_tool", "chamber"]
+step = "M1_LITHO"
+chart = "individuals"
+baseline = { first = 5 }
+"""
+
+
+def _history(lot, tool, chamber, at):
+    return dict(lot_id=lot, step="M1_LITHO", step_seq=10, process_tool=tool, chamber=chamber, started_at=at)
+
+
+def test_evaluate_split_by_history_new_tool_gets_its_series_automatically(tmp_path):
+    path = tmp_path / "wh.duckdb"
+    lots = make_lots(20)
+    with store.open_warehouse(path, create=True) as con:
+        store_plan(con, parse_plan(SPLIT_PLAN, path="p.toml"), user="t")
+        insert_facts(con, schema.MEASUREMENTS, [r for lot in lots for r in lot])
+        insert_facts(con, schema.PROCESS_HISTORY, [
+            _history(f"L{i:04d}", "TRACK-1", "PEB-1", datetime(2026, 9, 1) + timedelta(hours=6 * i - 1))
+            for i in range(12)])
+    evaluate.evaluate_warehouse(path, user="t")
+    with store.open_warehouse(path) as con:
+        insert_facts(con, schema.PROCESS_HISTORY, [
+            _history(f"L{i:04d}", "TRACK-2", "PEB-3", datetime(2026, 9, 1) + timedelta(hours=6 * i - 1))
+            for i in range(12, 20)])
+    evaluate.evaluate_warehouse(path, user="t")
+    with store.open_warehouse(path, read_only=True) as con:
+        info = queries.series_info(con).sort("series_id")
+    assert info.select("process_tool", "chamber", "n_points").rows() == [("TRACK-1", "PEB-1", 12),
+                                                                          ("TRACK-2", "PEB-3", 8)]
+    assert info["split_json"][1] == '{"chamber": "PEB-3", "process_tool": "TRACK-2"}'
+
+
+def test_evaluate_out_of_spec_is_its_own_signal_without_limit_version(wh):
+    lots = make_lots(30)
+    lots.append(site_rows("L9000", "L9000-01", [45.0, 45.0, 45.0, 45.0, 50.5], datetime(2026, 9, 20)))
+    load(wh, lots)
+    with store.open_warehouse(wh) as con:
+        insert_facts(con, schema.SPEC_LIMITS, [dict(product="*", layer="M1_DEV", parameter="cd_mid", lsl=40.5,
+                                                     target=45.0, usl=49.5, unit="nm",
+                                                     effective_from=datetime(2026, 1, 1))])
+    evaluate.evaluate_warehouse(wh, user="t")
+    sig = _signals(wh)
+    oos = sig.filter(sig["rule"] == "oos")
+    assert oos["lot_id"].to_list() == ["L9000"]
+    assert oos["statistic"][0] == 50.5  # the offending site value
+    with store.open_warehouse(wh, read_only=True) as con:
+        raw = queries.series_signals(con, series_id=1)
+    assert raw.filter(raw["rule"] == "oos")["limit_version"].null_count() == 1
+
+
+DEFECT_PLAN = """
+[[chart]]
+name = "m1-d0"
+select = { layer = "M1_ETCH_INSP" }
+statistic = "defect_density"
+split = ["metrology_tool"]
+chart = "laney_u"
+baseline = { first = 20 }
+"""
+
+
+def test_evaluate_laney_u_centre_is_total_defects_over_total_area(tmp_path):
+    path = tmp_path / "wh.duckdb"
+    rng = np.random.default_rng(3)
+    rows = []
+    for i in range(30):
+        area = float(rng.uniform(600, 679))
+        count = int(rng.negative_binomial(1.0, 1.0 / (1.0 + 0.1 * area)))
+        if i == 25:
+            count = 900
+        rows.append(dict(lot_id=f"D{i:03d}", wafer_id=f"D{i:03d}-01", product="AX14", layer="M1_ETCH_INSP",
+                         inspection_tool="INS-1", inspected_at=datetime(2026, 9, 1) + timedelta(hours=i),
+                         inspected_area_cm2=area, defect_count=count, sample_kind="production"))
+    with store.open_warehouse(path, create=True) as con:
+        store_plan(con, parse_plan(DEFECT_PLAN, path="p.toml"), user="t")
+        insert_facts(con, schema.INSPECTIONS, rows)
+    evaluate.evaluate_warehouse(path, user="t")
+    lim = _limits(path)
+    base = rows[:20]
+    # u-bar = sum(c) / sum(a) (NIST/SEMATECH e-Handbook §6.3.3.2, u charts)
+    assert lim["center"][0] == pytest.approx(sum(r["defect_count"] for r in base) / sum(r["inspected_area_cm2"] for r in base))
+    assert lim["sigma_source"][0] == "laney_u_prime"
+    sig = _signals(path)
+    assert "D025" in sig["lot_id"].to_list()
