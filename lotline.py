@@ -837,6 +837,111 @@ def explain_cmd(excursion_id: int, db, top: int, as_json: bool):
 # --- tool-health commands ---
 
 
+@cli.group("report")
+def report_group():
+    """Static reports written from the warehouse.
+
+    Example: lotline report weekly --week 2026-W48 --out tool_health.html
+    """
+
+
+@report_group.command("weekly")
+@click.option("--week", default=None, help="ISO week YYYY-Www (default: the latest week with data).")
+@click.option("--out", "out", type=click.Path(dir_okay=False), default=None,
+              help="HTML file to write (default: tool_health_<week>.html).")
+@click.option("--pdf", "pdf", type=click.Path(dir_okay=False), default=None,
+              help="Also print the report to this PDF with headless Chromium.")
+@click.option("--json", "as_json", is_flag=True, help="Print the scorecards as JSON instead of a summary.")
+@db_option
+def report_weekly_cmd(week, out, pdf, as_json: bool, db):
+    """Weekly tool-health review: CD-SEM, inspection and process-chamber scorecards with charts (one HTML file).
+
+    The file embeds plotly.js once and opens offline. Signals advise; the fab's OCAP and qualified engineers
+    decide.
+
+    Example: lotline report weekly --week 2026-W48 --out tw48.html --pdf tw48.pdf
+    """
+    from pathlib import Path
+
+    from dashboard.report import print_pdf, render_weekly_report
+    from warehouse.errors import LotlineError
+    from warehouse.health import read_weekly_health
+
+    try:
+        h = read_weekly_health(db, week=week)
+    except LotlineError as exc:
+        fail(exc)
+    path = Path(out or f"tool_health_{h.week.label}.html")
+    path.write_text(render_weekly_report(h), encoding="utf-8")
+    if pdf:
+        try:
+            print_pdf(path, Path(pdf))
+        except (RuntimeError, OSError) as exc:
+            fail(exc)
+    if as_json:
+        echo_json({**h.to_dict(), "html": str(path), "pdf": pdf})
+        return
+    click.echo(f"Week {h.week.label}: wrote {path} ({path.stat().st_size / 1e6:.1f} MB)" + (f" and {pdf}" if pdf else ""))
+    for line in h.attention or ["No tool flagged this week."]:
+        click.echo(f"  {line}")
+    click.echo("Signals advise; the fab's OCAP and qualified engineers decide.")
+
+
+@cli.command("capacity")
+@click.option("--beams", type=click.IntRange(min=1), required=True, help="Parallel beams.")
+@click.option("--current-density", "current_density", type=click.FloatRange(min=0, min_open=True), required=True,
+              help="Beam current density J at the sample (A/cm²).")
+@click.option("--contrast", type=click.FloatRange(0, 1, min_open=True), required=True,
+              help="Defect contrast C (0..1].")
+@click.option("--pixel-nm", "pixel_nm", type=click.FloatRange(min=0, min_open=True), required=True,
+              help="Pixel size (nm), set by the smallest defect to catch.")
+@click.option("--care-area-cm2", "care_area", type=click.FloatRange(min=0, min_open=True), required=True,
+              help="Area inspected per wafer (cm²).")
+@click.option("--overhead-s", "overhead_s", type=click.FloatRange(min=0), default=0.0, show_default=True,
+              help="Load and align time per wafer (s).")
+@click.option("--reference", default=None, metavar="BEAMS,J,C,PIXEL_NM,CM2_PER_H",
+              help="A measured operating point of your tool that calibrates the rate constant.")
+@click.option("--json", "as_json", is_flag=True, help="Print the plan as JSON.")
+def capacity_cmd(beams, current_density, contrast, pixel_nm, care_area, overhead_s, reference, as_json: bool):
+    """E-beam inspection capacity: time per wafer, wafers per hour, and the cost of halving the defect size.
+
+    Shot-noise-limited: area rate = k * beams * J * C² * pixel⁴ (common practice); k comes from --reference.
+    Without it only the relative cost is printed. lotline operates no equipment.
+
+    Example: lotline capacity --beams 9 --current-density 0.5 --contrast 0.3 --pixel-nm 10 --care-area-cm2 5
+    --reference 1,0.5,0.3,10,0.8
+    """
+    import polars as pl
+
+    from spc import inspection
+
+    slowdown = float(inspection.defect_size_slowdown(0.5))
+    out: dict = {"beams": beams, "current_density_a_per_cm2": current_density, "contrast": contrast,
+                 "pixel_nm": pixel_nm, "care_area_cm2": care_area, "overhead_s": overhead_s,
+                 "halving_defect_size_slowdown": slowdown}
+    if reference:
+        b, j, c, p, rate = _spc_floats(reference, "--reference", 5)
+        k = inspection.calibrate_area_rate_constant(inspection.BeamSetup(int(b), j, c, p), rate)
+        opts = pl.DataFrame({"beams": [beams, beams], "current_density_a_per_cm2": current_density,
+                             "contrast": contrast, "pixel_nm": [pixel_nm, pixel_nm / 2.0],
+                             "care_area_cm2": care_area, "overhead_s": overhead_s})
+        plan = inspection.plan_inspection_capacity(opts, rate_constant=k).to_dicts()
+        out.update(rate_constant=k, area_rate_cm2_per_h=plan[0]["area_rate_cm2_per_h"],
+                   s_per_wafer=plan[0]["total_s_per_wafer"], wafers_per_hour=plan[0]["wafers_per_hour"],
+                   half_size_s_per_wafer=plan[1]["total_s_per_wafer"], half_size_wafers_per_hour=plan[1]["wafers_per_hour"])
+    if as_json:
+        echo_json(out)
+        return
+    if reference:
+        click.echo(f"area rate {out['area_rate_cm2_per_h']:.4g} cm²/h: {out['s_per_wafer']:.4g} s per wafer, "
+                   f"{out['wafers_per_hour']:.4g} wafers/hour")
+        click.echo(f"half the defect size (pixel {pixel_nm / 2:g} nm): {out['half_size_s_per_wafer']:.4g} s per wafer, "
+                   f"{out['half_size_wafers_per_hour']:.4g} wafers/hour ({slowdown:g}x the scan time)")
+    else:
+        click.echo(f"half the defect size: {slowdown:g}x the scan time (rate ∝ pixel⁴ at fixed current density).")
+        click.echo("Pass --reference BEAMS,J,C,PIXEL_NM,CM2_PER_H measured on your tool for times per wafer.")
+
+
 # --- dashboard commands ---
 
 

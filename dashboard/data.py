@@ -300,3 +300,24 @@ def record_disposition(
             str(db_path()), int(excursion_id), user=author.name, state=to_state, classification=classification,
             cause=cause_category, action=action, lots=lots_affected, comment=comment,
         )  # fmt: skip
+
+
+# ------------------------------------------------------------------------------------------ tool health
+
+
+@st.cache_data(max_entries=16, show_spinner=False)
+def _weekly_health(db: str, stamp: tuple[int, int], week: str | None):
+    from warehouse import health
+
+    del stamp  # part of the cache key only
+    with _LOCK.reading(), store.open_warehouse(db, read_only=True, wait_s=READ_WAIT_S) as con:
+        weeks = health.data_weeks(con)
+        report = health.weekly_health(con, week=week) if weeks.height else None
+    labels = [health.week_of(w).label for w in weeks["week_start"]]
+    return labels, report
+
+
+def weekly_health(week: str | None = None):
+    """The weeks with data (newest first) and the tool-health review of ``week`` (default: the newest)."""
+    db = db_path()
+    return _weekly_health(str(db), store.file_stamp(db), week)

@@ -21,7 +21,7 @@ import polars as pl
 from dashboard import health_charts as hc
 
 __all__ = ["CDSEM_COLUMNS", "INSPECTION_COLUMNS", "PROCESS_COLUMNS", "print_pdf", "render_weekly_report",
-           "scorecard_rows"]
+           "scorecard_frame", "scorecard_rows"]
 
 Cell = Callable[[dict], str]
 
@@ -131,6 +131,13 @@ CLOSED_COLUMNS: Sequence[tuple[str, Cell]] = (
 def scorecard_rows(frame: pl.DataFrame, columns: Sequence[tuple[str, Cell]]) -> list[dict[str, str]]:
     """Rows of a scorecard as display strings keyed by column header (shared by the page and the report)."""
     return [{h: f(r) for h, f in columns} for r in frame.iter_rows(named=True)]
+
+
+def scorecard_frame(frame: pl.DataFrame, columns: Sequence[tuple[str, Cell]]) -> pl.DataFrame:
+    """A scorecard as a frame of display strings, one column per header (for interactive tables)."""
+    rows = scorecard_rows(frame, columns)
+    return pl.DataFrame(rows, schema={h: pl.String for h, _ in columns}, orient="row") if rows else pl.DataFrame(
+        schema={h: pl.String for h, _ in columns})
 
 
 def _table(frame: pl.DataFrame, columns: Sequence[tuple[str, Cell]], *, css: str, limit: int | None = None,
