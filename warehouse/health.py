@@ -951,7 +951,10 @@ def _attention(h: WeeklyHealth, s: HealthSettings) -> list[str]:
             out.append(f"Process chamber {r['process_tool']}/{r['chamber']}: highest OOC rate {r['ooc_rate']:.1%} "
                        f"({r['signalled_points']} of {r['chart_points']} points).")
         if "repeat_offender" in p.columns:
-            for r in p.filter(pl.col("repeat_offender")).iter_rows(named=True):
+            offenders = p.filter(pl.col("repeat_offender")).sort("recent_excursions", descending=True)
+            for r in offenders.head(3).iter_rows(named=True):
                 out.append(f"Process chamber {r['process_tool']}/{r['chamber']}: repeat offender "
                            f"({r['recent_excursions']} excursions in {s.repeat_offender_days} days).")
+            if offenders.height > 3:
+                out.append(f"{offenders.height - 3} more repeat-offender chambers are listed in the scorecard.")
     return out
