@@ -198,7 +198,8 @@ def control_chart(
                 )
             )  # fmt: skip
     fig.update_yaxes(title_text=unit or "value")
-    _layout(fig, title=title, height=470, clickmode="event+select", dragmode="select")
+    # No dragmode here: Streamlit turns click-to-select off when the figure starts in box-select mode.
+    _layout(fig, title=title, height=470)
     fig.layout.meta = {"point_traces": n_point_traces}
     return fig
 
