@@ -983,3 +983,58 @@ def main():
 
 if __name__ == "__main__":
     main()
+@cli.command("demo")
+@click.option("--dir", "out_dir", type=click.Path(file_okay=False), default="demo_run", show_default=True,
+              help="Where the demo writes: DIR/exports/, DIR/lotline.duckdb, DIR/truth.json.")
+@click.option("--days", type=click.IntRange(5, 400), default=60, show_default=True, help="Days of fab history.")
+@click.option("--seed", type=int, default=7, show_default=True, help="Seed of the generator (deterministic).")
+@click.option("--no-serve", is_flag=True, help="Stop after the summary instead of serving the dashboard.")
+@click.option("--score", is_flag=True, help="Score the existing warehouse in --dir against its truth.json "
+              "(does not regenerate).")
+@click.option("--port", type=int, default=8501, show_default=True, help="Dashboard port.")
+@click.option("--json", "as_json", is_flag=True, help="Print the summary (or score) as JSON.")
+def demo_cmd(out_dir, days: int, seed: int, no_serve: bool, score: bool, port: int, as_json: bool):
+    """Run lotline's whole job on an invented fab: generate, ingest, plan, evaluate, summarise, serve.
+
+    With --score, compare the open excursions of an existing demo warehouse with the injected faults:
+    detected or missed, delay in lots and hours, attribution, false excursions per 1,000 chart points.
+
+    Example: lotline demo --dir demo_run --days 60 --no-serve && lotline demo --dir demo_run --score
+    """
+    from pathlib import Path
+
+    from warehouse.errors import LotlineError
+
+    if score:
+        from demo_fab.score import render_score, score_demo
+
+        if not (Path(out_dir) / "truth.json").exists():
+            fail(FileNotFoundError(f"{out_dir}/truth.json not found. Fix: run `lotline demo --dir {out_dir}` first."), 2)
+        try:
+            result = score_demo(out_dir)
+        except LotlineError as exc:
+            fail(exc)
+        if as_json:
+            echo_json(result)
+        else:
+            click.echo(render_score(result))
+        return
+
+    from demo_fab.pipeline import render_summary, run_demo
+
+    try:
+        run = run_demo(out_dir, days=days, seed=seed, progress=lambda m: click.echo(m, err=True))
+    except LotlineError as exc:
+        fail(exc)
+    if as_json:
+        echo_json(run.to_dict())
+    else:
+        click.echo(render_summary(run))
+    if no_serve:
+        return
+    from dashboard.server import run_server
+
+    click.echo(f"Dashboard: http://127.0.0.1:{port}/  (Ctrl-C stops; bound to 127.0.0.1 only)")
+    sys.exit(run_server(run.db, port=port))
+
+

@@ -18,12 +18,15 @@ import duckdb
 import polars as pl
 
 __all__ = [
+    "chart_point_count",
     "excursion_detail",
     "excursion_history",
     "excursion_signals",
     "excursions_by_tool_layer_day",
     "ingest_log",
     "list_excursions",
+    "lot_defect_wafers",
+    "lot_first_times",
     "lot_measurements",
     "lot_process_history",
     "newest_signals",
@@ -33,6 +36,7 @@ __all__ = [
     "series_limits",
     "series_points",
     "series_signals",
+    "standard_defect_runs",
     "superseded_rows",
     "tool_freshness",
     "wafer_defects",
@@ -571,3 +575,51 @@ WHERE h._superseded_by IS NULL
 ORDER BY h.lot_id, h.started_at, h.step
 """
     return _frame(con, sql, [excursion_id, excursion_id, days_before])
+
+
+# ------------------------------------------------------------------------------------------ demo scoring
+
+
+def chart_point_count(con: Con) -> int:
+    """Chart points evaluated so far, over every series (the denominator of false-alarm rates)."""
+    return int(_frame(con, "SELECT coalesce(sum(n_points), 0) AS n FROM series_state")["n"][0])
+
+
+def lot_first_times(con: Con, *, lot_ids: list[str], layer: str | None = None) -> pl.DataFrame:
+    """First current measurement time of each given lot (on one layer, or on any).
+
+    Columns: lot_id, first_at.
+    """
+    sql = """
+SELECT lot_id, min(measured_at) AS first_at FROM measurements
+WHERE list_contains(?::VARCHAR[], lot_id) AND (?::VARCHAR IS NULL OR layer = ?) AND _superseded_by IS NULL
+GROUP BY lot_id ORDER BY first_at
+"""
+    return _frame(con, sql, [lot_ids, layer, layer])
+
+
+def lot_defect_wafers(con: Con, *, lot_id: str, layer: str | None = None) -> pl.DataFrame:
+    """Wafers of a lot that have defect coordinates, most defects first.
+
+    Columns: wafer_id, layer, defects.
+    """
+    sql = """
+SELECT wafer_id, layer, count(*) AS defects FROM defects
+WHERE lot_id = ? AND (?::VARCHAR IS NULL OR layer = ?) AND _superseded_by IS NULL
+GROUP BY ALL ORDER BY defects DESC, wafer_id
+"""
+    return _frame(con, sql, [lot_id, layer, layer])
+
+
+def standard_defect_runs(con: Con, *, inspection_tool: str | None = None) -> pl.DataFrame:
+    """Inspections of standard-defect wafers, oldest first.
+
+    Columns: inspection_tool, lot_id, wafer_id, layer, inspected_at, inspected_area_cm2, defect_count.
+    """
+    sql = """
+SELECT inspection_tool, lot_id, wafer_id, layer, inspected_at, inspected_area_cm2, defect_count
+FROM inspections
+WHERE sample_kind = 'standard_defect' AND (?::VARCHAR IS NULL OR inspection_tool = ?) AND _superseded_by IS NULL
+ORDER BY inspection_tool, inspected_at
+"""
+    return _frame(con, sql, [inspection_tool, inspection_tool])
