@@ -44,6 +44,7 @@ __all__ = [
     "wafer_signature",
     "excursion_commonality",
     "excursion_attribution",
+    "excursion_explanation",
 ]
 
 ENV_USER_HEADER = "LOTLINE__DASHBOARD__USER_HEADER"
@@ -264,13 +265,36 @@ def wafer_signature(lot_id: str, wafer_id: str, layer: str, parameter: str) -> d
     return _signature(str(db), store.file_stamp(db), lot_id, wafer_id, layer, parameter)
 
 
+@st.cache_data(max_entries=64, show_spinner=False)
+def _explanation(db: str, stamp: tuple[int, int], excursion_id: int):
+    from warehouse import drilldown
+
+    del stamp  # part of the cache key only
+    with _LOCK.reading(), store.open_warehouse(db, read_only=True, wait_s=READ_WAIT_S) as con:
+        try:
+            return drilldown.explain_excursion(con, excursion_id)
+        except drilldown.ExcursionNotFoundError:
+            return None
+
+
+def excursion_explanation(excursion_id: int):
+    """The drill-down of one excursion (warehouse.drilldown.explain_excursion), or None for an unknown id."""
+    db = db_path()
+    return _explanation(str(db), store.file_stamp(db), int(excursion_id))
+
+
 def excursion_attribution(excursion_id: int) -> pl.DataFrame | None:
-    """Process-or-metrology verdict of one excursion, when the engine provides one (spc.attribution)."""
-    try:
-        from spc import attribution  # noqa: F401
-    except ImportError:
+    """Process-or-metrology verdict of one excursion (spc.attribution via warehouse.drilldown): one row per line
+    of evidence with the verdict and the votes; None when the question does not apply (defect charts)."""
+    ex = excursion_explanation(excursion_id)
+    if ex is None or ex.attribution is None:
         return None
-    return None
+    a = ex.attribution
+    return pl.DataFrame({
+        "verdict": a.verdict, "measuring_tool": ex.evidence.metrology_tool,
+        "shift_nm": round(ex.evidence.shift_nm, 3), "votes": f"process {a.process_votes}, metrology {a.metrology_votes}",
+        "evidence": list(a.evidence),
+    })  # fmt: skip
 
 
 # ------------------------------------------------------------------------------------------ writing

@@ -537,8 +537,9 @@ def rank_commonality(
         pl.Series("odds_ratio", np.where(degenerate, np.nan, orr)),
         pl.Series("odds_ratio_ci_low", np.where(degenerate, np.nan, lo)),
         pl.Series("odds_ratio_ci_high", np.where(degenerate, np.nan, hi)),
-        pl.Series(
-            "test", np.where(degenerate, None, np.where(use_fisher, "fisher", "chi2")), dtype=pl.String
+        # zip_with, not np.where(..., None, ...): an all-degenerate object array has no string dtype
+        pl.Series("test", np.where(use_fisher, "fisher", "chi2"), dtype=pl.String).zip_with(
+            pl.Series(~degenerate), pl.repeat(None, a.shape[0], dtype=pl.String, eager=True)
         ),
         pl.Series("p_assoc", p),
     )

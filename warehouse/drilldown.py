@@ -41,6 +41,7 @@ import duckdb
 import polars as pl
 
 from spc.attribution import (
+    UNDECIDED,
     Attribution,
     AttributionSettings,
     CrossToolReading,
@@ -609,6 +610,7 @@ def _tool_shift(rows: pl.DataFrame, tool: str, p: dict) -> tuple[float, float, i
 
 def _attribution(con: Con, ex: Explanation, entry: PlanEntry, x: dict, standing: pl.DataFrame, split: dict,
                  product: str, s: DrilldownSettings) -> None:  # fmt: skip
+    ex.verdict = UNDECIDED  # until the evidence is in
     p = ex.periods
     rows = read_wafer_means(
         con, layer=x["layer"], parameter=x["parameter"], product=product, stage=entry.stage,
