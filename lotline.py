@@ -92,7 +92,7 @@ def _ingest_table(results) -> list[str]:
     right = {2, 3, 4, 5}
 
     def fmt(cells) -> str:
-        return "  ".join(c.rjust(w) if i in right else c.ljust(w) for i, (c, w) in enumerate(zip(cells, widths)))
+        return "  ".join(c.rjust(w) if i in right else c.ljust(w) for i, (c, w) in enumerate(zip(cells, widths, strict=True)))
 
     return [fmt(head).rstrip(), *(fmt(r).rstrip() for r in rows)]
 
@@ -106,7 +106,9 @@ def _ingest_table(results) -> list[str]:
 @click.option("--json", "as_json", is_flag=True, help="Print the per-file results as JSON.")
 @click.option("--wait", "wait_s", type=float, default=60.0, show_default=True,
               help="Seconds to wait while another process holds the warehouse.")
-def ingest_cmd(paths, db, profile_dirs, profile, as_json: bool, wait_s: float):
+@click.option("--evaluate", "run_evaluate", is_flag=True,
+              help="Evaluate the monitoring plan after loading (incremental; see `lotline evaluate`).")
+def ingest_cmd(paths, db, profile_dirs, profile, as_json: bool, wait_s: float, run_evaluate: bool = False):
     """Load exports (files or folders, recursive; CSV, Parquet, JSON lines, optionally .gz) into the warehouse.
 
     Each file loads in one transaction; bad rows go to the rejects table with file, line, column, value
@@ -137,6 +139,8 @@ def ingest_cmd(paths, db, profile_dirs, profile, as_json: bool, wait_s: float):
                 click.echo(f"Error: {r.message}", err=True)
         if any(r.rows_rejected for r in report.files):
             click.echo("Rejected rows: lotline rejects --db " + (db or "<warehouse>"), err=True)
+    if run_evaluate:
+        _evaluate_after_ingest(db, to_stderr=as_json)
     sys.exit(report.exit_code)
 
 
@@ -148,7 +152,9 @@ def ingest_cmd(paths, db, profile_dirs, profile, as_json: bool, wait_s: float):
 @click.option("--interval", type=float, default=5.0, show_default=True, help="Seconds between polls.")
 @click.option("--once", is_flag=True, help="Ingest what is ready now and stop (for scripts and tests).")
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object per ingested file.")
-def watch_cmd(folder, db, profile_dirs, interval: float, once: bool, as_json: bool):
+@click.option("--evaluate", "run_evaluate", is_flag=True,
+              help="Evaluate the monitoring plan after each loaded file (incremental).")
+def watch_cmd(folder, db, profile_dirs, interval: float, once: bool, as_json: bool, run_evaluate: bool = False):
     """Poll a drop folder and ingest each new or changed file once, after its size stops changing.
 
     Never moves or deletes files. Ctrl-C stops.
@@ -165,6 +171,8 @@ def watch_cmd(folder, db, profile_dirs, interval: float, once: bool, as_json: bo
             click.echo(_ingest_table([result])[1])
             if result.status == "failed":
                 click.echo(f"Error: {result.message}", err=True)
+        if run_evaluate and result.status == "loaded":
+            _evaluate_after_ingest(db, to_stderr=as_json)
 
     try:
         results = watch_folder(folder, db=db, profile_dirs=profile_dirs, interval_s=interval, once=once,
@@ -456,6 +464,22 @@ def _spc_read_points(path, value_col, series_col, order_col, center, sigma):
 
 
 # --- monitoring commands ---
+
+
+def _evaluate_after_ingest(db, *, to_stderr: bool = False) -> None:
+    """Run an incremental evaluation after a load (``ingest --evaluate``, ``watch --evaluate``)."""
+    from warehouse import evaluate
+    from warehouse.errors import LotlineError
+
+    try:
+        s = evaluate.evaluate_after_ingest(db)
+    except LotlineError as exc:
+        fail(exc)
+    if s is None:
+        click.echo("notice: no monitoring plan loaded; nothing evaluated (lotline plan load PLAN.toml)", err=True)
+        return
+    click.echo(f"evaluated: {s.series} series, {s.signals_new} new signals, {s.signals_withdrawn} withdrawn, "
+               f"{s.excursions_opened} excursions opened", err=to_stderr)
 
 MONITORING_CAUTION = ("Signals advise; they do not decide. The fab's out-of-control action plan (OCAP) and a "
                       "qualified engineer decide holds, releases, rework and tool downs.")
@@ -977,12 +1001,6 @@ def serve_cmd(db, port: int, address: str, user_header: str | None):
 # --- demo commands ---
 
 
-def main():
-    cli()
-
-
-if __name__ == "__main__":
-    main()
 @cli.command("demo")
 @click.option("--dir", "out_dir", type=click.Path(file_okay=False), default="demo_run", show_default=True,
               help="Where the demo writes: DIR/exports/, DIR/lotline.duckdb, DIR/truth.json.")
@@ -1038,3 +1056,9 @@ def demo_cmd(out_dir, days: int, seed: int, no_serve: bool, score: bool, port: i
     sys.exit(run_server(run.db, port=port))
 
 
+def main():
+    cli()
+
+
+if __name__ == "__main__":
+    main()

@@ -47,8 +47,9 @@ T = TypeVar("T")
 SUFFIXES = {".csv": "csv", ".txt": "csv", ".parquet": "parquet", ".jsonl": "jsonl", ".json": "jsonl"}
 """File name endings ingest reads (each optionally followed by ``.gz``)."""
 BLOCK_BYTES = 8 * 1024 * 1024
-CHUNK_BYTES = 48 * 1024 * 1024
-"""Text is parsed and loaded in chunks of about this many bytes, so memory stays flat for big files."""
+CHUNK_BYTES = 16 * 1024 * 1024
+"""Text is parsed and loaded in chunks of about this many bytes, so memory stays flat for big files. A file
+no bigger than one chunk is stored in series order (see ``warehouse.load.SERIES_ORDER``)."""
 
 
 @dataclass
@@ -291,6 +292,7 @@ def _load_content(con, path: Path, fmt: str, *, profiles: list[Profile], forced:
                   counts: load.FileCounts, chunk_bytes: int, on_bytes, state: dict[str, object]) -> list[dict]:
     shown = str(path)
     reader = _Reader(path, on_bytes)
+    small_file = path.stat().st_size <= chunk_bytes
     affected: set[tuple[str, str | None, str | None, str | None]] = set()
     hashes: dict[str, list[pl.DataFrame]] = {}
 
@@ -301,10 +303,11 @@ def _load_content(con, path: Path, fmt: str, *, profiles: list[Profile], forced:
             if frame.height == 0:
                 continue
             t = schema.table(table)
-            load.load_chunk(con, table, frame, file_id=file_id, counts=counts)
+            load.load_chunk(con, table, frame, file_id=file_id, counts=counts, series_order=small_file)
             if t.natural_key:
                 hashes.setdefault(table, []).append(frame.select(
-                    pl.struct(list(t.natural_key)).hash().alias("h"), pl.col(schema.C_SOURCE_LINE).alias("line")))
+                    pl.struct(list(t.natural_key)).hash().alias("h"),
+                    pl.col(schema.C_SOURCE_LINE).cast(pl.UInt32).alias("line")))  # 12 bytes a row
             keys = [c for c in ("lot_id", "layer", "parameter") if c in frame.columns]
             for row in frame.select(keys).unique().iter_rows():
                 d = dict(zip(keys, row, strict=True))
@@ -379,8 +382,10 @@ def _load_content(con, path: Path, fmt: str, *, profiles: list[Profile], forced:
         reader.close()
     # duplicate natural keys inside the file: exact check of the lines whose key hash repeats
     for table, parts in hashes.items():
-        allh = pl.concat(parts)
-        cand = allh.filter(~pl.col("h").is_first_distinct())["line"].to_list()
+        allh = pl.concat(parts, rechunk=False)
+        parts.clear()
+        cand = allh.filter(~pl.col("h").is_first_distinct())["line"].cast(pl.Int64).to_list()
+        del allh
         if cand:
             dup = load.reject_in_file_duplicates(con, table, cand, file_id=file_id, counts=counts)
             if dup.height:

@@ -9,7 +9,8 @@ One file is one transaction (the caller wraps :func:`load_chunk` calls and :func
    tables (``defect_counts``, ``defects``) follow their parent inspection instead of grouping themselves.
 2. **Natural-key dedupe** (tables without a supersede key): a row whose natural key is already stored and
    current is skipped, with an anti-join (``INSERT … WHERE NOT EXISTS``; no primary-key index, see DESIGN).
-3. Insert in series order (``ORDER BY`` the table's series columns), stamped with the file id.
+3. Insert, stamped with the file id, in series order (``ORDER BY`` the table's series columns) unless the
+   caller asks for the export's order (big files loaded in several chunks).
 
 Duplicate natural keys inside one file are found by :func:`reject_in_file_duplicates` after the last chunk:
 the first occurrence stays, each later one is deleted again and recorded as a reject that names the line of
@@ -45,11 +46,8 @@ SERIES_ORDER: dict[str, tuple[str, ...]] = {
 }
 """Rows of a file are stored in this order, so one chart's series sits together on disk (DESIGN: layout)."""
 
-SORT_MAX_ROWS = 200_000
-"""Chunks up to this size are stored in series order; bigger ones keep the export's order (sorting them
-would cost more than the load itself)."""
-
-INGEST_MEMORY_LIMIT = "1GB"
+INGEST_MEMORY_LIMIT = "512MB"
+"""DuckDB's share of an ingest's memory (issue 2: peak RSS <= 2 GB for a 10M-row file); it spills beyond."""
 
 
 @dataclass
@@ -88,8 +86,12 @@ def new_file_id(con: duckdb.DuckDBPyConnection) -> int:
 
 
 def load_chunk(con: duckdb.DuckDBPyConnection, table: str, frame: pl.DataFrame, *, file_id: int,
-               counts: FileCounts) -> None:
-    """Supersede, dedupe and insert one chunk of canonical rows of ``table`` for file ``file_id``."""
+               counts: FileCounts, series_order: bool = True) -> None:
+    """Supersede, dedupe and insert one chunk of canonical rows of ``table`` for file ``file_id``.
+
+    ``series_order`` sorts the chunk into series order on the way in; the caller turns it off for files
+    too big for one chunk (a bulk backfill), where the sort would cost more than the load itself.
+    """
     if frame.height == 0:
         return
     t = schema.table(table)
@@ -102,9 +104,7 @@ def load_chunk(con: duckdb.DuckDBPyConnection, table: str, frame: pl.DataFrame, 
         elif t.supersede_key:
             _supersede(con, t, view, file_id=file_id, counts=counts)
         order = ", ".join(_q(c) for c in SERIES_ORDER.get(table, ()))
-        # series order costs a sort; worth it for the many small daily exports, not for a bulk backfill
-        small = frame.height <= SORT_MAX_ROWS
-        order_sql = f" ORDER BY {order}, {_q(schema.C_SOURCE_LINE)}" if order and small else ""
+        order_sql = f" ORDER BY {order}, {_q(schema.C_SOURCE_LINE)}" if order and series_order else ""
         select = f"SELECT f.*, ? AS {_q(schema.C_SOURCE_FILE_ID)}, NULL::BIGINT AS {_q(schema.C_SUPERSEDED_BY)} FROM {view} f"
         params: list[object] = [file_id]
         if not t.supersede_key and t.natural_key:
