@@ -4,7 +4,9 @@ When a chart of measured lots shifts, the first question is whether the wafers c
 tool that measured them did. Three pieces of evidence answer it, each casting at most one vote:
 
 1. **Monitor wafers on the measuring tool.** A monitor (a reference wafer measured on a schedule) that
-   drifted or read out of its limits in the window says the gauge moved: a vote for *metrology*. A monitor
+   drifted or read out of its limits in the window says the gauge moved: a vote for *metrology*, provided
+   (when the monitor's own shift is known) that it moved the same way as the excursion and by at least
+   ``explain_fraction`` of it; a monitor that moved the other way or too little casts no vote. A monitor
    with enough readings and no flag says the gauge held: a vote for *process*. Too few readings: no vote.
 2. **The same layer's lots on other metrology tools.** Their shifts are pooled by inverse variance. If they
    show the shift too (same sign, at least ``explain_fraction`` of its size, and ``cross_tool_z`` standard
@@ -53,6 +55,7 @@ class MonitorEvidence:
     n_points: int  #: monitor readings in the window
     max_abs_z: float | None = None  #: largest |z| of a reading against the monitor's baseline limits
     drift_flagged: bool = False  #: a drift chart (EWMA, CUSUM) on the monitor signalled in the window
+    shift_nm: float | None = None  #: monitor mean in the window minus its baseline mean, when known
 
 
 @dataclass(frozen=True)
@@ -120,6 +123,13 @@ def _monitor_vote(ev: ExcursionEvidence, s: AttributionSettings) -> tuple[int, s
     z = m.max_abs_z
     if m.drift_flagged or (z is not None and z >= s.monitor_z):
         why = "a drift chart signalled" if m.drift_flagged else f"a reading at |z| = {z:.1f}"
+        if m.shift_nm is not None and ev.shift_nm != 0:
+            same_way = math.copysign(1.0, m.shift_nm) == math.copysign(1.0, ev.shift_nm)
+            if not same_way or abs(m.shift_nm) < s.explain_fraction * abs(ev.shift_nm):
+                return 0, (
+                    f"Monitor wafer on {tool} moved in the window ({why}), but by {_n(m.shift_nm)} against an "
+                    f"excursion of {_n(ev.shift_nm)}: it does not account for the shift, no vote."
+                )
         return (
             -1,
             f"Monitor wafer on {tool} moved in the window ({why}): the gauge itself changed (metrology).",

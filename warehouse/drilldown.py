@@ -668,10 +668,12 @@ def _monitor_evidence(con: Con, ex: Explanation, tool: str, parameter: str,
     mine = health.filter((pl.col("tool") == tool) & pl.col("day").is_in(sorted(win_days)))
     z = (pl.col("mean_nm") - pl.col("baseline_mean_nm")).abs() / pl.col("sigma_day_nm")
     zs = mine.select(z.alias("z"))["z"].drop_nulls().drop_nans()
+    shifts = mine.select((pl.col("mean_nm") - pl.col("baseline_mean_nm")).alias("d"))["d"].drop_nulls().drop_nans()
     monitor = MonitorEvidence(
         n_points=mine.height,
         max_abs_z=float(zs.max()) if zs.len() else None,
         drift_flagged=bool(mine["ewma_signal"].any()),
+        shift_nm=float(shifts.mean()) if shifts.len() else None,
     )
     daily = summarise_monitor_days(raw.drop("measured_at"))
     win = daily.filter(pl.col("day").is_in(sorted(win_days)))

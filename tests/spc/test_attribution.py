@@ -102,3 +102,20 @@ def test_classify_excursion_monitor_with_few_points_casts_no_vote():
 def test_classify_excursion_margin_setting_controls_the_verdict(margin, verdict):
     res = classify_excursion(_ev(cross_tool=OTHERS_SEE_IT), AttributionSettings(margin=margin))
     assert res.verdict == verdict
+
+
+@pytest.mark.parametrize(
+    ("monitor_shift", "votes"),
+    [
+        (0.9, (0, 1)),  # moved the same way and explains most of the shift: metrology
+        (-0.3, (0, 0)),  # moved the other way: it cannot explain the excursion, no vote
+        (0.2, (0, 0)),  # moved the same way but explains only a fifth of it: no vote
+    ],
+)
+def test_classify_excursion_monitor_vote_needs_same_direction_and_size(monitor_shift, votes):
+    # common practice: a gauge drift explains an excursion only if it points the same way and is comparable.
+    moved = MonitorEvidence(n_points=8, max_abs_z=4.0, drift_flagged=True, shift_nm=monitor_shift)
+    res = classify_excursion(_ev(monitor=moved))
+    assert (res.process_votes, res.metrology_votes) == votes
+    if votes == (0, 0):
+        assert "does not account for the shift, no vote." in res.evidence[0]
