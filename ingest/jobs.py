@@ -296,22 +296,39 @@ def _load_content(con, path: Path, fmt: str, *, profiles: list[Profile], forced:
     affected: set[tuple[str, str | None, str | None, str | None]] = set()
     hashes: dict[str, list[pl.DataFrame]] = {}
 
-    def take(frames: dict[str, pl.DataFrame], rejects: pl.DataFrame) -> None:
+    tables_seen: dict[str, None] = {}
+
+    def prepare(frames: dict[str, pl.DataFrame], rejects: pl.DataFrame) -> tuple:
+        """Work that needs no warehouse (runs in the parse thread): key hashes and affected series."""
+        extra = {}
+        for table, frame in frames.items():
+            t = schema.table(table)
+            h = None
+            if t.natural_key and frame.height:
+                h = frame.select(pl.struct(list(t.natural_key)).hash().alias("h"),
+                                 pl.col(schema.C_SOURCE_LINE).cast(pl.UInt32).alias("line"))  # 12 bytes a row
+            keys = [c for c in ("lot_id", "layer", "parameter") if c in frame.columns]
+            extra[table] = (h, frame.select(keys).unique() if frame.height else None)
+        return frames, rejects, extra
+
+    def take(frames: dict[str, pl.DataFrame], rejects: pl.DataFrame, extra: dict | None = None) -> None:
+        if extra is None:
+            frames, rejects, extra = prepare(frames, rejects)
         if rejects.height:
             counts.reject_frames.append(rejects)
         for table, frame in frames.items():
             if frame.height == 0:
                 continue
-            t = schema.table(table)
+            tables_seen[table] = None
             load.load_chunk(con, table, frame, file_id=file_id, counts=counts, series_order=small_file)
-            if t.natural_key:
-                hashes.setdefault(table, []).append(frame.select(
-                    pl.struct(list(t.natural_key)).hash().alias("h"),
-                    pl.col(schema.C_SOURCE_LINE).cast(pl.UInt32).alias("line")))  # 12 bytes a row
-            keys = [c for c in ("lot_id", "layer", "parameter") if c in frame.columns]
-            for row in frame.select(keys).unique().iter_rows():
-                d = dict(zip(keys, row, strict=True))
-                affected.add((table, d.get("lot_id"), d.get("layer"), d.get("parameter")))
+            h, keys_frame = extra[table]
+            if h is not None:
+                hashes.setdefault(table, []).append(h)
+            if keys_frame is not None:
+                names = keys_frame.columns
+                for row in keys_frame.iter_rows():
+                    d = dict(zip(names, row, strict=True))
+                    affected.add((table, d.get("lot_id"), d.get("layer"), d.get("parameter")))
 
     try:
         head = reader.read()
@@ -367,19 +384,20 @@ def _load_content(con, path: Path, fmt: str, *, profiles: list[Profile], forced:
                     raw, ragged = parse_csv_chunk(data, header=header, delimiter=prof.delimiter, first_line=first,
                                                   source=shown)
                     frame, rejects = map_records(raw, prof)
-                    yield frame, (pl.concat([ragged, rejects]) if ragged.height else rejects)
+                    yield prepare({prof.kind: frame}, pl.concat([ragged, rejects]) if ragged.height else rejects)
 
             n = 0
             # parse the next chunk in a thread while the warehouse stores this one (both release the GIL)
-            for frame, rejects in _pipelined(parsed()):
+            for frames, rejects, extra in _pipelined(parsed()):
                 n += 1
-                take({prof.kind: frame}, rejects)
+                take(frames, rejects, extra)
             if n == 0:
                 raise IngestError("file has a header but no data rows", path=shown, line=prof.header_line + 1,
                                   column=1, found="end of file", expected="at least one data row",
                                   fix="re-export the file; nothing was loaded")
     finally:
         reader.close()
+    load.supersede_file(con, list(tables_seen), file_id=file_id, counts=counts)
     # duplicate natural keys inside the file: exact check of the lines whose key hash repeats
     for table, parts in hashes.items():
         allh = pl.concat(parts, rechunk=False)

@@ -1,9 +1,9 @@
 """Writing ingested files into the warehouse: lineage, dedupe, supersession, rejects. All SQL of ingest.
 
 One file is one transaction (the caller wraps :func:`load_chunk` calls and :func:`finish_file` in
-``store.transaction``). Rules, in the order they apply to each chunk of canonical rows:
+``store.transaction``). Rules:
 
-1. **Supersession** (tables with a ``supersede_key``): the chunk's groups (supersede key, plus the time
+1. **Supersession** (tables with a ``supersede_key``; :func:`supersede_file`, once per file): the file's groups (supersede key, plus the time
    column for sample kinds other than ``production`` so daily monitor runs stay separate) mark every current
    row of those groups from *older* files ``_superseded_by = this file``. The rows stay, queryable. Child
    tables (``defect_counts``, ``defects``) follow their parent inspection instead of grouping themselves.
@@ -87,10 +87,12 @@ def new_file_id(con: duckdb.DuckDBPyConnection) -> int:
 
 def load_chunk(con: duckdb.DuckDBPyConnection, table: str, frame: pl.DataFrame, *, file_id: int,
                counts: FileCounts, series_order: bool = True) -> None:
-    """Supersede, dedupe and insert one chunk of canonical rows of ``table`` for file ``file_id``.
+    """Dedupe and insert one chunk of canonical rows of ``table`` for file ``file_id``.
 
     ``series_order`` sorts the chunk into series order on the way in; the caller turns it off for files
-    too big for one chunk (a bulk backfill), where the sort would cost more than the load itself.
+    too big for one chunk (a bulk backfill), where the sort would cost more than the load itself (and then
+    lets DuckDB insert in parallel without keeping the order). Call :func:`supersede_file` after the last
+    chunk.
     """
     if frame.height == 0:
         return
@@ -99,10 +101,6 @@ def load_chunk(con: duckdb.DuckDBPyConnection, table: str, frame: pl.DataFrame, 
     view = "__lotline_chunk"
     con.register(view, frame.select(cols))
     try:
-        if table in CHILD_OF:
-            _cascade(con, table, CHILD_OF[table], file_id=file_id, counts=counts)
-        elif t.supersede_key:
-            _supersede(con, t, view, file_id=file_id, counts=counts)
         order = ", ".join(_q(c) for c in SERIES_ORDER.get(table, ()))
         order_sql = f" ORDER BY {order}, {_q(schema.C_SOURCE_LINE)}" if order and series_order else ""
         select = f"SELECT f.*, ? AS {_q(schema.C_SOURCE_FILE_ID)}, NULL::BIGINT AS {_q(schema.C_SUPERSEDED_BY)} FROM {view} f"
@@ -112,6 +110,7 @@ def load_chunk(con: duckdb.DuckDBPyConnection, table: str, frame: pl.DataFrame, 
             select += (f" WHERE NOT EXISTS (SELECT 1 FROM {_q(table)} m WHERE m.{_q(schema.C_SUPERSEDED_BY)} IS NULL"
                        f" AND m.{_q(schema.C_SOURCE_FILE_ID)} < ? AND {match})")
             params.append(file_id)
+        con.execute(f"SET preserve_insertion_order = {'true' if series_order else 'false'}")
         n = con.execute(f"INSERT INTO {_q(table)} BY NAME {select}{order_sql}", params).fetchall()[0][0]
         counts.loaded += int(n)
         counts.skipped += frame.height - int(n)
@@ -127,22 +126,38 @@ def _group_exprs(t: schema.Table, alias: str) -> list[str]:
     return exprs
 
 
-def _supersede(con: duckdb.DuckDBPyConnection, t: schema.Table, view: str, *, file_id: int,
-               counts: FileCounts) -> None:
+def supersede_file(con: duckdb.DuckDBPyConnection, tables: list[str], *, file_id: int, counts: FileCounts) -> None:
+    """After a file's last chunk: mark the older current rows of the groups it covers as superseded by it.
+
+    One pass per table for the whole file (the new rows carry ``file_id`` and are excluded by
+    ``_source_file_id < file_id``). Child tables follow their parent, so parents go first.
+    """
+    ordered = [t for t in tables if t not in CHILD_OF] + [t for t in tables if t in CHILD_OF]
+    for table in ordered:
+        t = schema.table(table)
+        if table in CHILD_OF:
+            _cascade(con, table, CHILD_OF[table], file_id=file_id, counts=counts)
+        elif t.supersede_key:
+            _supersede(con, t, file_id=file_id, counts=counts)
+
+
+def _supersede(con: duckdb.DuckDBPyConnection, t: schema.Table, *, file_id: int, counts: FileCounts) -> None:
     g_new = _group_exprs(t, "f")
     g_old = _group_exprs(t, "m")
     names = [f"g{i}" for i in range(len(g_new))]
-    groups = f"SELECT DISTINCT {', '.join(f'{e} AS {n}' for e, n in zip(g_new, names, strict=True))} FROM {view} f"
+    groups = (f"SELECT DISTINCT {', '.join(f'{e} AS {n}' for e, n in zip(g_new, names, strict=True))} "
+              f"FROM {_q(t.name)} f WHERE f.{_q(schema.C_SOURCE_FILE_ID)} = ?")
     match = " AND ".join(f"g.{n} IS NOT DISTINCT FROM {e}" for n, e in zip(names, g_old, strict=True))
     cond = (f"m.{_q(schema.C_SUPERSEDED_BY)} IS NULL AND m.{_q(schema.C_SOURCE_FILE_ID)} < ? "
             f"AND EXISTS (SELECT 1 FROM ({groups}) g WHERE {match})")
     hits = con.execute(
         f"SELECT m.{_q(schema.C_SOURCE_FILE_ID)}, m.lot_id, count(*) FROM {_q(t.name)} m WHERE {cond} GROUP BY ALL",
-        [file_id],
+        [file_id, file_id],
     ).fetchall()
     if not hits:
         return
-    con.execute(f"UPDATE {_q(t.name)} m SET {_q(schema.C_SUPERSEDED_BY)} = ? WHERE {cond}", [file_id, file_id])
+    con.execute(f"UPDATE {_q(t.name)} m SET {_q(schema.C_SUPERSEDED_BY)} = ? WHERE {cond}",
+                [file_id, file_id, file_id])
     for old_id, lot, n in hits:
         counts.supersessions[(int(old_id), t.name, str(lot))] += int(n)
         counts.superseded += int(n)
