@@ -470,6 +470,7 @@ SIGNALS = Table(
         Column("lot_id", STRING, nullable=False, doc="Lot of the point"),
         Column("wafer_id", STRING, doc="Wafer of the point; NULL for lot-level points"),
         Column("point_at", TIMESTAMP, nullable=False, doc="Time of the point (first measurement or inspection, UTC)"),
+        Column("point_seq", INT64, nullable=False, doc="1-based position of the point in its series at evaluation"),
         Column("rule", STRING, nullable=False, doc="Rule id: we1..we4, n1..n8, ewma, cusum_hi, cusum_lo, oos"),
         Column("value", FLOAT64, nullable=False, doc="Charted value of the point"),
         Column("statistic", FLOAT64, doc="Chart statistic that crossed (EWMA z, CUSUM sum); NULL for rules on values"),
@@ -485,7 +486,6 @@ SIGNALS = Table(
 EXCURSIONS = Table(
     "excursions",
     "Signals grouped per series into excursions (consecutive or overlapping points).",
-        Column("point_seq", INT64, nullable=False, doc="1-based position of the point in its series at evaluation"),
     (
         Column("excursion_id", INT64, nullable=False, doc="Warehouse-assigned id"),
         Column("series_id", INT64, nullable=False, doc="Series (chart_series.series_id)"),
