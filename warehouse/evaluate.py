@@ -39,7 +39,7 @@ from spc.ewma import EwmaParams, evaluate_ewma
 from spc.rules import BeyondLimits, context_points, evaluate_rules, rule_params
 from warehouse import limits as lim_mod
 from warehouse import points as pts_mod
-from warehouse import store
+from warehouse import schema, store
 from warehouse.errors import ConfigError
 from warehouse.plan import PlanEntry, current_plan, current_plan_version
 
@@ -151,21 +151,25 @@ def _attach_series(ctx: _Context, e: PlanEntry, pts: pl.DataFrame, *, create: bo
     if pts.height == 0:
         return pts.with_columns(pl.lit(None, pl.Int64).alias("series_id"))
     keys = pts.select(scols).unique(maintain_order=True)
-    ids = []
-    for row in keys.to_dicts():
-        sj = pts_mod.split_json(e, row)
-        k = (e.name, row["layer"], row["parameter"], sj)
-        sid = ctx.series.get(k)
-        if sid is None and create:
-            sid = int(ctx.con.execute("SELECT nextval('series_id_seq')").fetchall()[0][0])
-            ctx.con.execute(
-                "INSERT INTO chart_series VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
-                [sid, e.name, row["layer"], row["parameter"], sj, row.get("process_tool"), row.get("chamber"),
-                 row.get("metrology_tool") if "metrology_tool" in e.split else None,
-                 row.get("product") if "product" in e.split else None, ctx.now],
-            )
+    rows = keys.to_dicts()
+    wanted = [(e.name, r["layer"], r["parameter"], pts_mod.split_json(e, r)) for r in rows]
+    missing = [i for i, k in enumerate(wanted) if k not in ctx.series]
+    if missing and create:
+        new_ids = [r[0] for r in ctx.con.execute(
+            "SELECT nextval('series_id_seq') FROM range(?) ORDER BY range", [len(missing)]).fetchall()]
+        recs = []
+        for i, sid in zip(missing, new_ids, strict=True):
+            r, k = rows[i], wanted[i]
             ctx.series[k] = sid
-        ids.append(sid)
+            recs.append({"series_id": sid, "chart": e.name, "layer": r["layer"], "parameter": r["parameter"],
+                         "split_json": k[3], "process_tool": r.get("process_tool"), "chamber": r.get("chamber"),
+                         "metrology_tool": r.get("metrology_tool") if "metrology_tool" in e.split else None,
+                         "product": r.get("product") if "product" in e.split else None, "created_at": ctx.now})
+        frame = pl.DataFrame(recs, schema=schema.polars_schema(schema.CHART_SERIES))
+        ctx.con.register("new_series", frame)
+        ctx.con.execute("INSERT INTO chart_series BY NAME SELECT * FROM new_series")
+        ctx.con.unregister("new_series")
+    ids = [ctx.series.get(k) for k in wanted]
     keys = keys.with_columns(pl.Series("series_id", ids, dtype=pl.Int64))
     return pts.join(keys, on=scols, how="left", nulls_equal=True, maintain_order="left")
 
@@ -240,6 +244,7 @@ def _with_limits(ctx: _Context, e: PlanEntry, pts: pl.DataFrame) -> pl.DataFrame
 
 
 def _freeze_missing(ctx: _Context, e: PlanEntry, pts: pl.DataFrame, series: list[int]) -> None:
+    frozen: list[tuple[int, dict]] = []
     for sid in series:
         if sid in ctx.limits:
             continue
@@ -253,10 +258,12 @@ def _freeze_missing(ctx: _Context, e: PlanEntry, pts: pl.DataFrame, series: list
         except lim_mod.LimitsError as exc:
             ctx.s.notices.append(f"chart {e.name} series {sid}: limits not frozen: {exc.what}")
             continue
-        v = lim_mod.insert_version(ctx.con, sid, est, user=lim_mod.AUTO_USER,
-                                   reason=f"automatic Phase I freeze from the plan baseline {json.dumps(e.baseline)}")
-        ctx.limits[sid] = {**est, "version": v}
+        frozen.append((sid, est))
+        ctx.limits[sid] = {**est, "version": 1}
         ctx.s.limits_frozen += 1
+    lim_mod.insert_first_versions(
+        ctx.con, frozen, user=lim_mod.AUTO_USER, now=ctx.now,
+        reason=f"automatic Phase I freeze from the plan baseline {json.dumps(e.baseline)}")
 
 
 def _rules(e: PlanEntry) -> list:
@@ -544,3 +551,11 @@ def freeze_limits(path=None, *, chart: str, reason: str, user: str, first: int |
                         "lcl": est["lcl"], "ucl": est["ucl"], "baseline_n": est["baseline_n"]})
         store.bump_data_version(con)
     return out
+
+
+def evaluate_after_ingest(path=None, *, user: str | None = None) -> RunSummary | None:
+    """Incremental evaluation for the ingest commands; None (nothing done) when no plan is loaded."""
+    with store.open_warehouse(path) as con:
+        if current_plan_version(con) == 0:
+            return None
+    return evaluate_warehouse(path, user=user)

@@ -32,7 +32,7 @@ def _audit(con, excursion_id: int, *, at, by, from_state, to_state, classificati
     con.execute(
         "INSERT INTO excursion_audit VALUES (nextval('audit_id_seq'), ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
         [excursion_id, at, by, from_state, to_state, classification, cause, action,
-         None if lots is None else json.dumps(sorted(lots)), comment],
+         None if lots is None else json.dumps(sorted(lots), separators=(",", ":")), comment],
     )
 
 
@@ -62,22 +62,33 @@ def group_signals(con, *, series_ids: list[int], now: datetime, gap: int = 2) ->
         chart = dict(con.execute(
             "SELECT series_id, chart FROM chart_series WHERE series_id IN (SELECT series_id FROM touched)"
         ).fetchall())
-        opened = 0
         assign: list[tuple[int, int]] = []
+        new_rows: list[tuple[int, int]] = []  # (placeholder id, series) of excursions to open
         for signal_id, sid, seq in todo:
             cur = latest.get(sid)
             if cur is None or seq - cur[1] > gap + 1:
-                xid = int(con.execute("SELECT nextval('excursion_id_seq')").fetchall()[0][0])
-                con.execute(
-                    "INSERT INTO excursions VALUES (?, ?, ?, 'open', 'low', ?, ?, '[]', '[]', 0, ?)",
-                    [xid, sid, chart[sid], now, now, now],
-                )
-                _audit(con, xid, at=now, by=AUTO_USER, from_state=None, to_state="open",
-                       comment="opened by evaluation")
-                opened += 1
-                cur = (xid, seq)
+                new_rows.append((-(len(new_rows) + 1), sid))
+                cur = (new_rows[-1][0], seq)
             latest[sid] = (cur[0], max(cur[1], seq))
             assign.append((signal_id, cur[0]))
+        opened = len(new_rows)
+        if new_rows:
+            ids = [r[0] for r in con.execute(
+                "SELECT nextval('excursion_id_seq') FROM range(?) ORDER BY range", [opened]).fetchall()]
+            real = {ph: xid for (ph, _), xid in zip(new_rows, ids, strict=True)}
+            frame = pl.DataFrame(
+                {"excursion_id": ids, "series_id": [r[1] for r in new_rows], "chart": [chart[r[1]] for r in new_rows]},
+                schema={"excursion_id": pl.Int64, "series_id": pl.Int64, "chart": pl.String},
+            )
+            con.register("new_exc", frame)
+            con.execute(
+                "INSERT INTO excursions SELECT excursion_id, series_id, chart, 'open', 'low', ?, ?, '[]', '[]', 0, ? "
+                "FROM new_exc ORDER BY excursion_id", [now, now, now])
+            con.execute(
+                "INSERT INTO excursion_audit SELECT nextval('audit_id_seq'), excursion_id, ?, ?, NULL, 'open', NULL, "
+                "NULL, NULL, NULL, 'opened by evaluation' FROM new_exc ORDER BY excursion_id", [now, AUTO_USER])
+            con.unregister("new_exc")
+            assign = [(sig, real.get(x, x)) for sig, x in assign]
         if assign:
             frame = pl.DataFrame(assign, schema={"signal_id": pl.Int64, "excursion_id": pl.Int64}, orient="row")
             con.register("assign", frame)
@@ -95,15 +106,20 @@ def group_signals(con, *, series_ids: list[int], now: datetime, gap: int = 2) ->
                   GROUP BY excursion_id) a
             WHERE e.excursion_id = a.excursion_id"""
         )
-        empty = con.execute(
-            """SELECT e.excursion_id, e.state FROM excursions e WHERE e.series_id IN (SELECT series_id FROM touched)
-               AND e.state <> 'closed' AND NOT EXISTS (SELECT 1 FROM signals s WHERE s.excursion_id = e.excursion_id
-               AND s.withdrawn_at IS NULL)"""
-        ).fetchall()
-        for xid, state in empty:
-            con.execute("UPDATE excursions SET state = 'closed', n_signals = 0 WHERE excursion_id = ?", [xid])
-            _audit(con, xid, at=now, by=AUTO_USER, from_state=state, to_state="closed",
-                   comment="all signals withdrawn (superseded data or re-evaluation)")
+        # an unclosed excursion whose signals were all withdrawn closes itself, with an audit row
+        con.execute(
+            """CREATE OR REPLACE TEMP TABLE emptied AS SELECT e.excursion_id, e.state FROM excursions e
+               WHERE e.series_id IN (SELECT series_id FROM touched) AND e.state <> 'closed'
+                 AND NOT EXISTS (SELECT 1 FROM signals s WHERE s.excursion_id = e.excursion_id
+                                 AND s.withdrawn_at IS NULL)"""
+        )
+        con.execute(
+            "INSERT INTO excursion_audit SELECT nextval('audit_id_seq'), excursion_id, ?, ?, state, 'closed', NULL, "
+            "NULL, NULL, NULL, 'all signals withdrawn (superseded data or re-evaluation)' FROM emptied "
+            "ORDER BY excursion_id", [now, AUTO_USER])
+        con.execute("UPDATE excursions SET state = 'closed', n_signals = 0 "
+                    "WHERE excursion_id IN (SELECT excursion_id FROM emptied)")
+        con.execute("DROP TABLE emptied")
     finally:
         con.unregister("touched")
     return opened

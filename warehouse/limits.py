@@ -25,6 +25,7 @@ from datetime import datetime
 import numpy as np
 import polars as pl
 
+from warehouse import schema
 from warehouse.errors import LotlineError
 from warehouse.plan import DEFECT_STATISTICS, MIN_BASELINE, PlanEntry
 
@@ -112,6 +113,24 @@ def insert_version(con, series_id: int, lim: dict, *, user: str, reason: str) ->
          lim["baseline_n"], user, reason],
     )
     return version
+
+
+def insert_first_versions(con, items: list[tuple[int, dict]], *, user: str, reason: str, now: datetime) -> None:
+    """Insert version 1 for many series without limits at once (automatic freezes)."""
+    if not items:
+        return
+    recs = [{"series_id": sid, "version": 1, **{k: lim[k] for k in _LIMIT_KEYS}, "frozen_at": now,
+             "frozen_by": user, "reason": reason} for sid, lim in items]
+    frame = pl.DataFrame(recs, schema=schema.polars_schema(schema.CONTROL_LIMITS))
+    con.register("new_limits", frame)
+    try:
+        con.execute("INSERT INTO control_limits BY NAME SELECT * FROM new_limits")
+    finally:
+        con.unregister("new_limits")
+
+
+_LIMIT_KEYS = ("center", "sigma", "sigma_level", "sigma_source", "k_sigma", "lcl", "ucl", "n_ref", "overdispersion",
+               "baseline_from", "baseline_to", "baseline_n")
 
 
 def current_limits(con) -> dict[int, dict]:

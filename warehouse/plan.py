@@ -371,8 +371,12 @@ def _check_entry(c: _Checker, entry, i: int, defaults: dict, seen: dict[str, int
         if "step" not in entry:
             c.err((*where, "split"), "splitting by process_tool or chamber needs the route step that made the layer",
                   fix='add step = "<route step>"')
-    if "step" in entry:
-        c.string(entry["step"], (*where, "step"), "step")
+    if "step" in entry and c.string(entry["step"], (*where, "step"), "step") is not None:
+        sel = entry.get("select")
+        layer = sel.get("layer") if isinstance(sel, dict) else None
+        if isinstance(layer, str) and any(ch in layer for ch in "*?["):
+            c.err((*where, "step"), "a route step belongs to one layer, but the selected layer has wildcards",
+                  found=layer, expected="a concrete layer name", fix="write one [[chart]] per layer")
     chart = None
     if "chart" in entry:
         chart = c.string(entry["chart"], (*where, "chart"), "chart", choices=CHART_TYPES)

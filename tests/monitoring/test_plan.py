@@ -122,3 +122,25 @@ def test_describe_plan_ewma_arl_matches_published_table():
 def test_read_plan_missing_file_names_the_path(tmp_path):
     with pytest.raises(ConfigError, match="monitoring plan not found"):
         read_plan(tmp_path / "nope.toml")
+
+
+def test_check_plan_step_with_wildcard_layer_is_refused():
+    text = ('[[chart]]\nname = "m1"\nselect = { layer = "*_DEV", parameter = "cd_mid" }\nstatistic = "wafer_mean"\n'
+            'chart = "ewma"\nsplit = ["chamber"]\nstep = "M1_LITHO"\n')
+    assert str(check_plan(text, path="plan.toml")[0]) == (
+        'plan.toml:7:8: a route step belongs to one layer, but the selected layer has wildcards (found "*_DEV", '
+        "expected a concrete layer name).\n  Fix: write one [[chart]] per layer.")
+
+
+def test_demo_fab_plan_is_valid_and_covers_every_measured_layer():
+    from pathlib import Path
+
+    from demo_fab.fab import INSPECTION_STEPS, MEASURED_LAYERS
+
+    plan = read_plan(Path(__file__).resolve().parents[2] / "demo_fab" / "plan.toml")
+    covered = {(m.name, e.name) for m in MEASURED_LAYERS for e in plan.entries
+               if e.matches(layer=m.name, parameter="cd_mid")}
+    assert {m.name for m in MEASURED_LAYERS} <= {c[0] for c in covered}
+    insp = {s.name for s in INSPECTION_STEPS}
+    assert all(any(e.is_defect and e.matches(layer=s, parameter="total") for e in plan.entries) for s in insp)
+    assert {e.chart for e in plan.entries} >= {"ewma", "cusum", "laney_u", "individuals"}
