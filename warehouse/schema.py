@@ -554,6 +554,18 @@ EVALUATION_RUNS = Table(
     ),
 )
 
+LOT_FIRST_FILES = Table(
+    "lot_first_files",
+    "Per fact table and lot, the first source file holding rows of the lot (lets incremental evaluation skip "
+    "older files).",
+    (
+        Column("table_name", STRING, nullable=False, doc="Fact table (measurements, inspections, defect_counts, "
+               "process_history)"),
+        Column("lot_id", STRING, nullable=False, doc="Lot id"),
+        Column("first_file_id", INT64, nullable=False, doc="Smallest source_files.file_id with rows of the lot"),
+    ),
+)
+
 MONITORING_TABLES: tuple[Table, ...] = (
     PLANS,
     CHART_PLAN,
@@ -564,6 +576,7 @@ MONITORING_TABLES: tuple[Table, ...] = (
     EXCURSION_AUDIT,
     SERIES_STATE,
     EVALUATION_RUNS,
+    LOT_FIRST_FILES,
 )
 
 TABLES: tuple[Table, ...] = FACT_TABLES + OPERATION_TABLES + MONITORING_TABLES

@@ -74,14 +74,21 @@ def _m1_core(con: duckdb.DuckDBPyConnection) -> None:
 
 def _m2_monitoring(con: duckdb.DuckDBPyConnection) -> None:
     for t in schema.MONITORING_TABLES:
+        if t is schema.LOT_FIRST_FILES:  # created by migration 3
+            continue
         con.execute(create_table_sql(t))
     for seq in ("series_id_seq", "signal_id_seq", "excursion_id_seq", "audit_id_seq", "run_id_seq"):
         con.execute(f"CREATE SEQUENCE IF NOT EXISTS {seq} START 1")
 
 
+def _m3_lot_first_files(con: duckdb.DuckDBPyConnection) -> None:
+    con.execute(create_table_sql(schema.LOT_FIRST_FILES))
+
+
 MIGRATIONS: list[Migration] = [
     (1, "canonical fact and operation tables", _m1_core),
     (2, "monitoring plan, series, control limits, signals, excursions, audit, evaluation state", _m2_monitoring),
+    (3, "lot first-file index for incremental evaluation", _m3_lot_first_files),
 ]
 
 
