@@ -372,13 +372,27 @@ def radial_profile(sites: pl.DataFrame, *, title: str = "Radial profile", unit: 
 
 
 def zone_means_chart(zones: pl.DataFrame, *, title: str = "Zone means", unit: str = "") -> go.Figure:
-    """Mean per radial zone (``zone``, ``mean``, optional ``n_sites``) from :func:`spc.signatures.zone_means`."""
+    """Mean ± SD per radial zone (``zone``, ``mean``, optional ``sd``, ``n_sites``), zones in the frame's order.
+
+    Dots with error bars rather than bars from zero: the zones of one wafer differ by tenths of a nm.
+    """
     if zones.height == 0:
         return empty_figure("No zone means.", height=300)
     n_col = "n_sites" if "n_sites" in zones.columns else "n"
     text = [f"n={n}" for n in zones[n_col].to_list()] if n_col in zones.columns else None
-    fig = go.Figure(go.Bar(x=zones["zone"].to_list(), y=zones["mean"].to_list(), text=text,
-                           marker={"color": OKABE_ITO[2]}, name="zone mean"))  # fmt: skip
+    error = None
+    if "sd" in zones.columns:
+        error = {
+            "type": "data",
+            "array": [0.0 if v is None else v for v in zones["sd"].to_list()],
+            "visible": True,
+        }
+    fig = go.Figure(
+        go.Scatter(x=zones["zone"].to_list(), y=zones["mean"].to_list(), text=text, mode="markers+text",
+                   textposition="middle right", error_y=error, name="zone mean",
+                   marker={"size": 11, "color": OKABE_ITO[2]})
+    )  # fmt: skip
+    fig.update_xaxes(type="category")
     fig.update_yaxes(title_text=unit or "mean")
     return _layout(fig, title=title, height=300)
 

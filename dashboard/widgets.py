@@ -137,6 +137,11 @@ def table(
     st.dataframe(frame, hide_index=True, width="stretch", key=key, column_config=config or None)
 
 
+def non_empty(frame: pl.DataFrame, columns: Sequence[str]) -> list[str]:
+    """The ``columns`` of ``frame`` that hold at least one value (split columns a view does not use drop out)."""
+    return [c for c in columns if c in frame.columns and frame[c].null_count() < frame.height]
+
+
 def static_table(frame: pl.DataFrame, *, columns: Sequence[str] | None = None) -> None:
     """Show a short frame as a plain HTML table (text in the page, no grid widget)."""
     if columns:

@@ -47,14 +47,18 @@ def _filters(frame: pl.DataFrame) -> pl.DataFrame:
     return frame
 
 
-def _submit(excursion_id: int, author) -> None:
+def _submit(excursion_id: int, author, suffix: str) -> None:
     """Form callback: runs before the page reruns, so the page then shows the new audit entry."""
     ss = st.session_state
+    v = {
+        name: ss[f"f_{name}{suffix}"]
+        for name in ("state", "classification", "cause", "action", "comment", "lots")
+    }
     try:
         data.record_disposition(
-            excursion_id=excursion_id, to_state=ss["f_state"], classification=ss["f_classification"],
-            cause_category=ss["f_cause"] or None, action=(ss["f_action"] or "").strip() or None,
-            comment=(ss["f_comment"] or "").strip() or None, lots_affected=list(ss["f_lots"]), author=author,
+            excursion_id=excursion_id, to_state=v["state"], classification=v["classification"],
+            cause_category=v["cause"] or None, action=(v["action"] or "").strip() or None,
+            comment=(v["comment"] or "").strip() or None, lots_affected=list(v["lots"]), author=author,
         )  # fmt: skip
     except (ValueError, data.LotlineError) as exc:
         ss[FLASH] = ("error", f"Not recorded: {exc}")
@@ -62,11 +66,14 @@ def _submit(excursion_id: int, author) -> None:
         ss[FLASH] = ("success", f"Recorded for excursion {excursion_id} by {author.name}.")
 
 
-def _form(detail: dict, author) -> None:
+def _form(detail: dict, author, n_audit: int) -> None:
     st.subheader("Record a disposition")
     widgets.caution("disposition")
     lots = json.loads(detail["lots_json"] or "[]")
-    with st.form("disposition", clear_on_submit=True):
+    # A new form after every recorded change, so its defaults follow the excursion's new state. Widget keys
+    # keep the plain name for the first form (tests and links rely on f_state, f_comment, ...).
+    suffix = "" if n_audit <= 1 else f"_{n_audit}"
+    with st.form(f"disposition{suffix}"):
         st.text(f"Author: {author.label}")
         c1, c2, c3 = st.columns(3)
         states = list(STATES[:3])
@@ -74,18 +81,24 @@ def _form(detail: dict, author) -> None:
             "New state",
             states,
             index=states.index(detail["state"]) if detail["state"] in states else 0,
-            key="f_state",
+            key=f"f_state{suffix}",
         )
         c2.selectbox(
-            "Classification", CLASSIFICATIONS, index=None, placeholder="choose", key="f_classification"
+            "Classification",
+            CLASSIFICATIONS,
+            index=None,
+            placeholder="choose",
+            key=f"f_classification{suffix}",
         )
-        c3.selectbox("Cause category", CAUSES, format_func=lambda v: v or "(not known yet)", key="f_cause")
-        st.text_input("Action (as decided under the OCAP)", max_chars=500, key="f_action")
-        st.multiselect("Lots covered", lots, default=lots, key="f_lots")
-        st.text_area("Comment", max_chars=4000, key="f_comment")
+        c3.selectbox(
+            "Cause category", CAUSES, format_func=lambda v: v or "(not known yet)", key=f"f_cause{suffix}"
+        )
+        st.text_input("Action (as decided under the OCAP)", max_chars=500, key=f"f_action{suffix}")
+        st.multiselect("Lots covered", lots, default=lots, key=f"f_lots{suffix}")
+        st.text_area("Comment", max_chars=4000, key=f"f_comment{suffix}")
         st.form_submit_button(
-            "Record disposition", type="primary", key="f_submit", on_click=_submit,
-            args=(int(detail["excursion_id"]), author),
+            "Record disposition", type="primary", key=f"f_submit{suffix}", on_click=_submit,
+            args=(int(detail["excursion_id"]), author, suffix),
         )  # fmt: skip
 
 
@@ -150,8 +163,10 @@ def main() -> None:
                   key="excursion_signals")  # fmt: skip
     st.subheader("Audit history")
     # A static table: the trail is short, and every entry stays readable (and selectable) as text.
-    widgets.static_table(frames["history"])
-    _form(detail, data.current_author())
+    widgets.static_table(frames["history"], columns=["audit_id", "changed_at", "changed_by", "from_state", "to_state",
+                                                     "classification", "cause_category", "action", "comment",
+                                                     "lots_affected_json"])  # fmt: skip
+    _form(detail, data.current_author(), frames["history"].height)
     widgets.caution("signals")
 
 

@@ -67,14 +67,17 @@ def main() -> None:
             pl.col("series_id").map_elements(lambda v: widgets.page_url("chart", series=v), return_dtype=pl.String)
             .alias("open chart"),
         )  # fmt: skip
+        cols = ["point_at", "lot_id", "wafer_id", "layer", "parameter", "process_tool", "chamber", "metrology_tool",
+                "rule", "value", "severity", "excursion_id", "first_detected_at", "open lot", "open chart"]  # fmt: skip
         widgets.table(
             newest,
-            columns=["first_detected_at", "point_at", "lot_id", "wafer_id", "layer", "parameter", "process_tool",
-                     "chamber", "metrology_tool", "rule", "value", "severity", "excursion_id", "open lot", "open chart"],
+            columns=widgets.non_empty(newest, cols),
             key="newest_signals",
-            **{"open lot": st.column_config.LinkColumn("open lot", display_text="lot"),
-               "open chart": st.column_config.LinkColumn("open chart", display_text="chart")},
-        )  # fmt: skip
+            **{
+                "open lot": st.column_config.LinkColumn("open lot", display_text="lot"),
+                "open chart": st.column_config.LinkColumn("open chart", display_text="chart"),
+            },
+        )
     widgets.caution("signals")
 
     st.subheader("Data freshness")

@@ -99,9 +99,13 @@ def no_exception(page) -> None:
     ).first.inner_text()
 
 
+def selectbox(page, label: str):
+    """The combobox input of the Streamlit selectbox labelled ``label`` (its value is the shown option)."""
+    return page.get_by_role("combobox", name=label, exact=True)
+
+
 def select_option(page, label: str, option: str) -> None:
-    box = page.locator('[data-testid="stSelectbox"]').filter(has_text=label).first
-    box.locator('[data-baseweb="select"]').click()
+    selectbox(page, label).click()
     page.get_by_role("option", name=option, exact=True).click()
 
 
@@ -199,8 +203,7 @@ def test_browser_deep_link_reopens_the_same_view(served, browser, page):
         other.goto(link)
         settle(other, charts=1)
         for label, value in (("Window (days)", "14"), ("Grid rows", "metrology tool")):
-            box = other.locator('[data-testid="stSelectbox"]').filter(has_text=label).first
-            assert value in box.inner_text()
+            assert selectbox(other, label).input_value() == value
         assert "metrology tool" in other.locator("h3").filter(has_text="Out-of-control").first.inner_text()
     finally:
         other.context.close()

@@ -104,9 +104,12 @@ def test_defect_map_colours_by_class_on_the_wafer_outline():
 def test_radial_profile_and_zone_means_plot_the_given_columns():
     sites = pl.DataFrame({"r_mm": [0.0, 70.0], "value": [45.0, 45.2]})
     assert list(charts.radial_profile(sites).data[0].x) == [0.0, 70.0]
-    zones = pl.DataFrame({"zone": ["centre", "edge"], "n_sites": [1, 4], "mean": [45.0, 45.6]})
-    bar = charts.zone_means_chart(zones).data[0]
-    assert list(bar.x) == ["centre", "edge"] and list(bar.text) == ["n=1", "n=4"]
+    zones = pl.DataFrame(
+        {"zone": ["centre", "edge"], "n_sites": [1, 4], "mean": [45.0, 45.6], "sd": [None, 0.2]}
+    )
+    dots = charts.zone_means_chart(zones).data[0]
+    assert list(dots.x) == ["centre", "edge"] and list(dots.text) == ["n=1", "n=4"]
+    assert list(dots.y) == [45.0, 45.6] and list(dots.error_y.array) == [0.0, 0.2]
 
 
 def test_ooc_grid_leaves_cells_without_counts_blank():

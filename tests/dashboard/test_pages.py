@@ -161,7 +161,9 @@ def test_lot_page_zone_means_and_commonality_equal_engine(fixture_db):
     assert not at.exception
     sites = query(fixture_db, "wafer_sites", lot_id=lot, wafer_id=wafer, layer="M1_LITHO", parameter="cd_mid")
     zones = zone_means(sites.with_columns(pl.lit(wafer).alias("wafer_id")), wafer_key=["wafer_id"])
-    bar = next(s for s in plotly_specs(at) if s["data"] and s["data"][0].get("type") == "bar")["data"][0]
+    bar = next(s for s in plotly_specs(at) if s["data"] and s["data"][0].get("name") == "zone mean")["data"][
+        0
+    ]
     assert bar["x"] == zones["zone"].to_list() == ["centre", "mid", "edge"]  # sites at r = 0, 70, 135 mm
     assert array(bar["y"]) == pytest.approx(zones["mean"].to_list(), rel=1e-12)
     hist = query(fixture_db, "excursion_population_history", excursion_id=xid)
