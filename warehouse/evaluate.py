@@ -114,6 +114,7 @@ def evaluate_connection(con, *, full: bool = False, user: str = "unknown") -> Ru
     wm_old = 0 if not last else int(last[0][0])
     started = _now()
     s = RunSummary("full" if full else "incremental", version, wm_new)
+    pts_mod.update_lot_index(con)
     ctx = _Context(con, started, user, s)
     for e in plan.entries:
         _evaluate_entry(ctx, e, full=full, watermark=wm_old)
@@ -191,9 +192,15 @@ def _evaluate_entry(ctx: _Context, e: PlanEntry, *, full: bool, watermark: int) 
         recompute = sorted(set(pts["series_id"].unique().to_list()) | known)
         _recompute(ctx, e, pts, recompute)
         return
-    new = _attach_series(ctx, e, pts_mod.read_points(con, e, dirty_lots=lots), create=True)
-    old = _attach_series(ctx, e, pts_mod.read_points(con, e, scope="as_of", watermark=watermark, dirty_lots=lots),
-                         create=False).filter(pl.col("series_id").is_not_null())
+    first = lots.filter(pl.col("first_file_id").is_not_null())
+    min_fid = int(first["first_file_id"].min()) if first.height else watermark + 1
+    lot_ids = lots.select("lot_id")
+    new = _attach_series(ctx, e, pts_mod.read_points(con, e, dirty_lots=lot_ids, min_file_id=min_fid), create=True)
+    if first.filter(pl.col("first_file_id") <= watermark).height:
+        old = pts_mod.read_points(con, e, scope="as_of", watermark=watermark, dirty_lots=lot_ids, min_file_id=min_fid)
+    else:  # every changed lot is new since the last run: nothing of it was evaluated before
+        old = new.clear().drop("series_id")
+    old = _attach_series(ctx, e, old, create=False).filter(pl.col("series_id").is_not_null())
     key = ["series_id", "point_key"]
     cmp = ["series_id", "point_key", "value", "lsl", "usl", "vmin", "vmax"]
     added = new.join(old.select(cmp), on=cmp, how="anti", nulls_equal=True)

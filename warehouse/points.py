@@ -43,11 +43,12 @@ def _rows_pred(alias: str, scope: str) -> str:
     return f"{alias}._source_file_id <= $wm AND ({alias}._superseded_by IS NULL OR {alias}._superseded_by > $wm)"
 
 
-def _history_cte(e: PlanEntry, scope: str) -> str:
+def _history_cte(e: PlanEntry, scope: str, lots: bool = False) -> str:
+    lot_filter = "AND ph.lot_id IN (SELECT lot_id FROM dirty_lots)" if lots else ""
     return f"""
 h AS (
     SELECT lot_id, wafer_id, process_tool, chamber FROM process_history ph
-    WHERE ph.step = $step AND {_rows_pred("ph", scope)}
+    WHERE ph.step = $step AND {_rows_pred("ph", scope)} {lot_filter}
     QUALIFY row_number() OVER (PARTITION BY lot_id, wafer_id ORDER BY started_at DESC, _source_file_id DESC) = 1
 )"""
 
@@ -68,7 +69,11 @@ def points_sql(e: PlanEntry, *, scope: str = "current", lots: bool = False, seri
     hist = _uses_history(e)
     if hist:
         params["step"] = e.step
-    lot_filter = "AND f.lot_id IN (SELECT lot_id FROM dirty_lots)" if lots else ""
+    # the first-file bound lets DuckDB skip older row groups by their zone maps (facts are stored in load order)
+    lot_filter = ("AND f._source_file_id >= $minfid AND f.lot_id IN (SELECT lot_id FROM dirty_lots)"
+                  if lots else "")
+    if lots:
+        params["minfid"] = 0  # filled by the caller
     if e.is_defect:
         inner = _defect_inner(e, scope, lot_filter, params)
     else:
@@ -88,7 +93,7 @@ def points_sql(e: PlanEntry, *, scope: str = "current", lots: bool = False, seri
     where = ""
     ctes = [f"w AS ({inner})"]
     if hist:
-        ctes.insert(0, _history_cte(e, scope).strip())
+        ctes.insert(0, _history_cte(e, scope, lots).strip())
         joins = (
             "LEFT JOIN h hw ON hw.lot_id = w.lot_id AND hw.wafer_id = w.wafer_id "
             "LEFT JOIN h hl ON hl.lot_id = w.lot_id AND hl.wafer_id IS NULL"
@@ -191,11 +196,18 @@ def _spec_join(e: PlanEntry) -> dict[str, str]:
 
 
 def read_points(con, e: PlanEntry, *, scope: str = "current", watermark: int | None = None,
-                dirty_lots: pl.DataFrame | None = None, wanted: pl.DataFrame | None = None) -> pl.DataFrame:
-    """Run the entry's points query; returns the series columns plus POINT_COLUMNS, in series order."""
+                dirty_lots: pl.DataFrame | None = None, wanted: pl.DataFrame | None = None,
+                min_file_id: int = 0) -> pl.DataFrame:
+    """Run the entry's points query; returns the series columns plus POINT_COLUMNS, in series order.
+
+    With ``dirty_lots``, ``min_file_id`` must not exceed the first source file of any of those lots
+    (``lot_first_files``); rows of older files are skipped.
+    """
     sql, params = points_sql(e, scope=scope, lots=dirty_lots is not None, series=wanted is not None)
     if scope == "as_of":
         params["wm"] = watermark
+    if dirty_lots is not None:
+        params["minfid"] = min_file_id
     cur = con.cursor()
     try:
         if dirty_lots is not None:
@@ -211,23 +223,31 @@ def read_points(con, e: PlanEntry, *, scope: str = "current", watermark: int | N
 
 
 def dirty_lots(con, e: PlanEntry, *, watermark: int) -> tuple[pl.DataFrame, bool]:
-    """Lots whose rows for this entry changed after ``watermark``; and whether spec limits changed."""
-    changed = "(f._source_file_id > $wm OR f._superseded_by > $wm)"
+    """Lots whose rows for this entry changed after ``watermark`` (with their first source file of the entry's
+    fact table, NULL when it has none); and whether spec limits changed."""
     params: dict = {"wm": watermark, "layer": e.layer, "product": e.product}
+    # two halves joined by UNION ALL (not OR) so that each can skip row groups by its zone maps
+    halves = ("f._source_file_id > $wm", "f._superseded_by > $wm")
     if e.is_defect:
-        parts = [f"SELECT lot_id FROM inspections f WHERE f.layer GLOB $layer AND f.product GLOB $product AND {changed}"]
+        parts = [f"SELECT lot_id FROM inspections f WHERE f.layer GLOB $layer AND f.product GLOB $product AND {c}"
+                 for c in halves]
         if e.statistic == "defect_density" and e.parameter != "total":
-            parts.append(f"SELECT lot_id FROM defect_counts f WHERE f.layer GLOB $layer AND {changed}")
+            parts += [f"SELECT lot_id FROM defect_counts f WHERE f.layer GLOB $layer AND {c}" for c in halves]
     else:
         params["parameter"] = e.parameter
         parts = [
             "SELECT lot_id FROM measurements f WHERE f.layer GLOB $layer AND f.parameter GLOB $parameter "
-            f"AND f.product GLOB $product AND {changed}"
+            f"AND f.product GLOB $product AND {c}" for c in halves
         ]
     if _uses_history(e):
         params["step"] = e.step
-        parts.append(f"SELECT lot_id FROM process_history f WHERE f.step = $step AND {changed}")
-    sql = "SELECT DISTINCT lot_id FROM (" + " UNION ALL ".join(parts) + ") ORDER BY lot_id"
+        parts += [f"SELECT lot_id FROM process_history f WHERE f.step = $step AND {c}" for c in halves]
+    fact = "inspections" if e.is_defect else "measurements"
+    params["fact"] = fact
+    sql = (
+        "SELECT d.lot_id, i.first_file_id FROM (SELECT DISTINCT lot_id FROM (" + " UNION ALL ".join(parts) + ")) d "
+        "LEFT JOIN lot_first_files i ON i.table_name = $fact AND i.lot_id = d.lot_id ORDER BY d.lot_id"
+    )
     cur = con.cursor()
     try:
         lots = cur.sql(sql, params=params).pl()
@@ -235,7 +255,7 @@ def dirty_lots(con, e: PlanEntry, *, watermark: int) -> tuple[pl.DataFrame, bool
         if not e.is_defect and e.spec_check:
             n = cur.sql(
                 "SELECT count(*) FROM spec_limits f WHERE f.layer GLOB $layer AND f.parameter GLOB $parameter "
-                f"AND {changed}",
+                "AND (f._source_file_id > $wm OR f._superseded_by > $wm)",
                 params={"wm": watermark, "layer": e.layer, "parameter": e.parameter},
             ).fetchall()[0][0]
             spec_changed = n > 0
@@ -249,3 +269,27 @@ def read_series_points(con, *, series_id: int) -> pl.DataFrame:
     from warehouse import evaluate
 
     return evaluate.series_points(con, series_id=series_id)
+
+
+INDEXED_TABLES = ("measurements", "inspections", "defect_counts", "process_history")
+
+
+def update_lot_index(con) -> None:
+    """Add lots first seen since the index's watermark to ``lot_first_files`` (idempotent)."""
+    rows = con.execute("SELECT value FROM meta WHERE key = 'lot_index_file_id'").fetchall()
+    wm = int(rows[0][0]) if rows else 0
+    top = int(con.execute("SELECT coalesce(max(file_id), 0) FROM source_files").fetchall()[0][0])
+    if top <= wm:
+        return
+    for t in INDEXED_TABLES:
+        con.execute(
+            f"""INSERT INTO lot_first_files
+            SELECT ?, f.lot_id, min(f._source_file_id) FROM "{t}" f WHERE f._source_file_id > ?
+            GROUP BY f.lot_id
+            HAVING f.lot_id NOT IN (SELECT lot_id FROM lot_first_files WHERE table_name = ?)""",
+            [t, wm, t],
+        )
+    if rows:
+        con.execute("UPDATE meta SET value = ? WHERE key = 'lot_index_file_id'", [str(top)])
+    else:
+        con.execute("INSERT INTO meta VALUES ('lot_index_file_id', ?)", [str(top)])

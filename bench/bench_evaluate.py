@@ -1,0 +1,219 @@
+"""Evaluation benchmark: a full re-evaluation against the incremental evaluation of one day's new data.
+
+    python -m bench.bench_evaluate [--rows N] [--days 60]      # default 10,000,000 measurements
+
+Builds a warehouse under ``bench/out/`` (reused when its row count matches): N invented site measurements
+in time order (lots of 3 wafers x 9 sites x 2 parameters x 4 layers, spread over ``--days`` days, one
+source file of measurements and one of process history per day), and a monitoring plan of EWMA, CUSUM and
+individuals charts split by metrology tool, process tool/chamber and product.
+
+Steps, each evaluation in its own process so that its peak RSS is its own:
+1. days 1..D-1 loaded, first evaluation (auto-freezes every series' limits);
+2. day D loaded, **incremental** evaluation (timed);
+3. ``--full`` evaluation of the same warehouse, every series from its first point (timed, the baseline).
+
+Target (issue 4): incremental time of one day <= 5 % of the full evaluation's time.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import shutil
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+OUT = Path(__file__).parent / "out"
+TARGET_RATIO = 0.05
+ROWS_PER_LOT = 216  # 4 layers x 2 parameters x 3 wafers x 9 sites
+LAYERS = ("L0", "L1", "L2", "L3")  # generated as "L" || layer index
+
+PLAN = """
+[plan]
+name = "evaluate bench"
+
+[defaults]
+baseline = { first = 25 }
+
+[[chart]]
+name = "cd-ewma-metrology"
+select = { layer = "*", parameter = "cd_mid" }
+statistic = "wafer_mean"
+split = ["product", "metrology_tool"]
+chart = "ewma"
+params = { lambda = 0.1, L = 2.7 }
+rules = ["we1", "we2"]
+
+[[chart]]
+name = "l0-cd-chamber"
+select = { layer = "L0", parameter = "cd_mid" }
+statistic = "wafer_mean"
+split = ["process_tool", "chamber"]
+step = "L0_STEP"
+chart = "cusum"
+params = { cusum_k = 0.5, h = 5.0 }
+
+[[chart]]
+name = "l2-cd-tool"
+select = { layer = "L2", parameter = "cd_mid" }
+statistic = "wafer_mean"
+split = ["process_tool"]
+step = "L2_STEP"
+chart = "individuals"
+rules = ["we1", "we4"]
+
+[[chart]]
+name = "lwr-lot"
+select = { layer = "*", parameter = "lwr" }
+statistic = "lot_mean"
+split = ["product"]
+chart = "individuals"
+"""
+
+# Box-Muller normal from two hash-derived uniforms (deterministic, no random()).
+_U = "((hash({x}) % 1000000007)::DOUBLE + 0.5) / 1000000007.0"
+_N = f"(sqrt(-2 * ln({_U.format(x='{a}')})) * cos(2 * pi() * {_U.format(x='{b}')}))"
+
+
+def _normal(a: str, b: str) -> str:
+    return _N.format(a=a, b=b)
+
+
+def build(path: Path, rows: int, days: int) -> dict:
+    """Create the warehouse with days 1..D-1 loaded; return sizes (day D is loaded by ``load_last_day``)."""
+    from warehouse import store
+    from warehouse.plan import parse_plan, store_plan
+
+    n_lots = max(rows // ROWS_PER_LOT, days * 4)
+    if path.exists():
+        path.unlink()
+    with store.open_warehouse(path, create=True) as con:
+        con.execute("SET preserve_insertion_order = true")
+        with store.transaction(con):
+            store_plan(con, parse_plan(PLAN, path="bench_plan.toml"), user="bench")
+            _insert_days(con, n_lots, days, range(days - 1))
+            store.bump_data_version(con)
+        con.execute("CHECKPOINT")
+        n = con.execute("SELECT count(*) FROM measurements").fetchall()[0][0]
+    return {"lots": n_lots, "rows_before_last_day": int(n)}
+
+
+def load_last_day(path: Path, rows: int, days: int) -> int:
+    """Append day D (its measurement and history files); return the rows added."""
+    from warehouse import store
+
+    n_lots = max(rows // ROWS_PER_LOT, days * 4)
+    with store.open_warehouse(path) as con:
+        before = con.execute("SELECT count(*) FROM measurements").fetchall()[0][0]
+        with store.transaction(con):
+            _insert_days(con, n_lots, days, [days - 1])
+            store.bump_data_version(con)
+        after = con.execute("SELECT count(*) FROM measurements").fetchall()[0][0]
+    return int(after - before)
+
+
+def _insert_days(con, n_lots: int, days: int, day_list) -> None:
+    per_day = n_lots / days
+    for d in day_list:
+        lo, hi = int(round(d * per_day)), int(round((d + 1) * per_day))
+        fid_m, fid_h = 2 * d + 1, 2 * d + 2
+        for fid, kind in ((fid_h, "process_history"), (fid_m, "measurements")):
+            con.execute(
+                "INSERT INTO source_files VALUES (?, ?, ?, 0, ?, 'bench', 'loaded', 0, 0, 0, 0, "
+                "TIMESTAMP '2026-01-01' + to_days(?::INTEGER), 'bench', NULL)",
+                [fid, f"day{d:03d}_{kind}.csv", f"bench-{fid}", kind, d],
+            )
+        # process history: one lot-level row per lot and layer step
+        con.execute(
+            f"""
+INSERT INTO process_history
+SELECT 'LOT' || lpad(lot::VARCHAR, 7, '0'), NULL, CASE WHEN lot % 5 < 3 THEN 'AX14' ELSE 'BX22' END,
+       layer || '_STEP', li + 1, 'TOOL-' || ((lot * 7 + li) % 3)::VARCHAR, 'CH' || ((lot * 3 + li) % 4)::VARCHAR, 'R1',
+       TIMESTAMP '2026-01-01' + to_seconds((lot * ?::DOUBLE + li * 3600 - 600)::BIGINT), NULL, ?, lot * 4 + li + 1, NULL
+FROM range(?, ?) t(lot), (SELECT 'L' || li::VARCHAR AS layer, li FROM range(4) r(li))
+ORDER BY lot, li""",
+            [86400.0 * days / n_lots, fid_h, lo, hi],
+        )
+        lot_eff = _normal("lot * 31 + li", "lot * 17 + li + 7")
+        wafer_eff = _normal("lot * 101 + li * 7 + w", "lot * 13 + li * 3 + w + 5")
+        site_eff = _normal("i", "i + 1000000000")
+        con.execute(
+            f"""
+INSERT INTO measurements
+SELECT 'LOT' || lpad(lot::VARCHAR, 7, '0'), 'LOT' || lpad(lot::VARCHAR, 7, '0') || '-' || (w + 1)::VARCHAR, w + 1,
+       (s + 1)::VARCHAR, (s - 4) * 30.0, (s % 3 - 1) * 30.0, CASE WHEN lot % 5 < 3 THEN 'AX14' ELSE 'BX22' END,
+       layer, 'develop', param, NULL,
+       CASE WHEN param = 'cd_mid' THEN 45 + 5 * li + 0.6 * {lot_eff} + 0.3 * {wafer_eff} + 0.5 * {site_eff}
+            ELSE 3 + 0.1 * {lot_eff} + 0.2 * abs({site_eff}) END,
+       'nm', TIMESTAMP '2026-01-01' + to_seconds((lot * ?::DOUBLE + li * 3600 + w * 120 + s * 5)::BIGINT),
+       'SEM-' || ((lot + li) % 4)::VARCHAR, 'R1', 1, 'production', ?, (i % 1000000) + 2, NULL
+FROM (SELECT i, i // {ROWS_PER_LOT} AS lot, (i % {ROWS_PER_LOT}) // 54 AS li,
+             ((i % {ROWS_PER_LOT}) // 27) % 2 AS pi, ((i % {ROWS_PER_LOT}) // 9) % 3 AS w, i % 9 AS s
+      FROM range(? * {ROWS_PER_LOT}, ? * {ROWS_PER_LOT}) t(i)) g,
+     LATERAL (SELECT 'L' || li::VARCHAR AS layer, CASE WHEN pi = 0 THEN 'cd_mid' ELSE 'lwr' END AS param)
+ORDER BY i""",
+            [86400.0 * days / n_lots, fid_m, lo, hi],
+        )
+
+
+_CHILD = """
+import json, resource, sys, time
+from warehouse import evaluate
+t = time.perf_counter()
+s = evaluate.evaluate_warehouse(sys.argv[1], full=sys.argv[2] == "full", user="bench")
+sec = time.perf_counter() - t
+rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+print(json.dumps({"seconds": sec, "peak_rss_mb": rss, **s.as_dict()}))
+"""
+
+
+def _evaluate_child(path: Path, mode: str) -> dict:
+    root = Path(__file__).resolve().parents[1]
+    out = subprocess.run([sys.executable, "-c", _CHILD, str(path), mode], cwd=root, capture_output=True, text=True)
+    if out.returncode:
+        raise RuntimeError(out.stderr)
+    return json.loads(out.stdout.strip().splitlines()[-1])
+
+
+def run(size: int, *, days: int = 60) -> list[dict]:
+    """Benchmark on ``size`` measurements; rows for the bench harness (see bench/run.py)."""
+    OUT.mkdir(parents=True, exist_ok=True)
+    path = OUT / f"evaluate_{size}.duckdb"
+    t0 = time.perf_counter()
+    info = build(path, size, days)
+    build_s = time.perf_counter() - t0
+    first = _evaluate_child(path, "incremental")
+    added = load_last_day(path, size, days)
+    inc = _evaluate_child(path, "incremental")
+    full = _evaluate_child(path, "full")
+    ratio = inc["seconds"] / full["seconds"] if full["seconds"] else None
+    common = {"size": size, "target": f"<= {TARGET_RATIO:.0%} of full", "build_seconds": round(build_s, 1),
+              "day_rows": added, "series": full["series"], "points": full["points"]}
+    rows = [
+        {"name": "evaluate: incremental (one day) vs full", "seconds": round(inc["seconds"], 3),
+         "baseline_seconds": round(full["seconds"], 3), "ratio": None if ratio is None else round(ratio, 4),
+         "ok": ratio is not None and ratio <= TARGET_RATIO, "peak_rss_mb": round(inc["peak_rss_mb"]),
+         "baseline_peak_rss_mb": round(full["peak_rss_mb"]), "incremental_points": inc["points"],
+         "incremental_series": inc["series"], **common},
+        {"name": "evaluate: first evaluation (auto-freeze, all signals)", "seconds": round(first["seconds"], 3),
+         "baseline_seconds": round(full["seconds"], 3), "ratio": round(first["seconds"] / full["seconds"], 3),
+         "ok": True, "peak_rss_mb": round(first["peak_rss_mb"]), "signals": first["signals_new"], **common},
+    ]
+    shutil.rmtree(path.with_suffix(".duckdb.wal"), ignore_errors=True)
+    return rows
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--rows", type=int, default=10_000_000, help="measurements in the warehouse")
+    ap.add_argument("--days", type=int, default=60, help="days the measurements span (one is the new day)")
+    args = ap.parse_args(argv)
+    for r in run(args.rows, days=args.days):
+        print(json.dumps(r))
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
