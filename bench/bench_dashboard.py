@@ -130,6 +130,7 @@ def build_warehouse(rows: int, *, out: Path = OUT) -> Path:
 
     path = out / f"dashboard_{rows}.duckdb"
     if path.exists():
+        store.init_warehouse(path)  # a file built by an older lotline is migrated in place
         return path
     out.mkdir(parents=True, exist_ok=True)
     tmp = path.with_suffix(".tmp.duckdb")
