@@ -127,7 +127,7 @@ def _insert_days(con, n_lots: int, days: int, day_list) -> None:
             )
         # process history: one lot-level row per lot and layer step
         con.execute(
-            f"""
+            """
 INSERT INTO process_history
 SELECT 'LOT' || lpad(lot::VARCHAR, 7, '0'), NULL, CASE WHEN lot % 5 < 3 THEN 'AX14' ELSE 'BX22' END,
        layer || '_STEP', li + 1, 'TOOL-' || ((lot * 7 + li) % 3)::VARCHAR, 'CH' || ((lot * 3 + li) % 4)::VARCHAR, 'R1',
@@ -189,7 +189,7 @@ def run(size: int, *, days: int = 60) -> list[dict]:
     inc = _evaluate_child(path, "incremental")
     full = _evaluate_child(path, "full")
     ratio = inc["seconds"] / full["seconds"] if full["seconds"] else None
-    common = {"size": size, "target": f"<= {TARGET_RATIO:.0%} of full", "build_seconds": round(build_s, 1),
+    common = {"size": size, "lots": info["lots"], "target": f"<= {TARGET_RATIO:.0%} of full", "build_seconds": round(build_s, 1),
               "day_rows": added, "series": full["series"], "points": full["points"]}
     rows = [
         {"name": "evaluate: incremental (one day) vs full", "seconds": round(inc["seconds"], 3),

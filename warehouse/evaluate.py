@@ -28,7 +28,7 @@ from __future__ import annotations
 import getpass
 import json
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime
 
 import numpy as np
@@ -221,7 +221,6 @@ def _evaluate_entry(ctx: _Context, e: PlanEntry, *, full: bool, watermark: int) 
         else:
             append.append(sid)
     if recompute:
-        scols = pts_mod.series_columns(e)
         known = _series_keys(ctx, e, sorted(recompute))
         wanted = known.unique().drop("series_id")
         pts = _attach_series(ctx, e, pts_mod.read_points(con, e, wanted=wanted), create=True)
@@ -251,17 +250,20 @@ def _with_limits(ctx: _Context, e: PlanEntry, pts: pl.DataFrame) -> pl.DataFrame
 
 
 def _freeze_missing(ctx: _Context, e: PlanEntry, pts: pl.DataFrame, series: list[int]) -> None:
-    frozen: list[tuple[int, dict]] = []
+    bases = {}
     for sid in series:
         if sid in ctx.limits:
             continue
-        sp = pts.filter(pl.col("series_id") == sid)
-        base = lim_mod.baseline_points(e, sp)
+        base = lim_mod.baseline_points(e, pts.filter(pl.col("series_id") == sid))
         if base is None:
             ctx.s.waiting_for_baseline += 1
             continue
+        bases[sid] = base
+    sites = _baseline_sites(ctx, e, bases)
+    frozen: list[tuple[int, dict]] = []
+    for sid, base in bases.items():
         try:
-            est = lim_mod.estimate_limits(e, base)
+            est = lim_mod.estimate_limits(e, base, sites.get(sid))
         except lim_mod.LimitsError as exc:
             ctx.s.notices.append(f"chart {e.name} series {sid}: limits not frozen: {exc.what}")
             continue
@@ -271,6 +273,31 @@ def _freeze_missing(ctx: _Context, e: PlanEntry, pts: pl.DataFrame, series: list
     lim_mod.insert_first_versions(
         ctx.con, frozen, user=lim_mod.AUTO_USER, now=ctx.now,
         reason=f"automatic Phase I freeze from the plan baseline {json.dumps(e.baseline)}")
+
+
+def _baseline_sites(ctx: _Context, e: PlanEntry, bases: dict[int, pl.DataFrame]) -> dict[int, pl.DataFrame]:
+    """Site values (lot_id, wafer_id, value) of each series' baseline points, for variance components."""
+    if not bases or e.is_defect or e.statistic not in ("site_value", "wafer_mean", "lot_mean"):
+        return {}
+    if e.statistic == "site_value":
+        return {sid: b.select("lot_id", "wafer_id", "value") for sid, b in bases.items()}
+    site_entry = replace(e, statistic="site_value", spec_check=False)
+    lots = pl.concat([b.select("lot_id") for b in bases.values()]).unique()
+    wanted = _series_keys(ctx, e, sorted(bases)).drop("series_id")
+    rows = _attach_series(ctx, e, pts_mod.read_points(ctx.con, site_entry, dirty_lots=lots, wanted=wanted),
+                          create=False)
+    parts = pl.col("point_key").str.split("|")
+    if e.statistic == "wafer_mean":
+        key = pl.concat_str([parts.list.get(0), parts.list.get(1), parts.list.get(5)], separator="|")
+    else:
+        key = pl.concat_str([parts.list.get(0), parts.list.get(5)], separator="|")
+    rows = rows.with_columns(key.alias("_pk"))
+    out = {}
+    for sid, b in bases.items():
+        keep = b.select(pl.col("point_key").alias("_pk"))
+        out[sid] = rows.filter(pl.col("series_id") == sid).join(keep, on="_pk", how="semi").select(
+            "lot_id", "wafer_id", "value")
+    return out
 
 
 def _rules(e: PlanEntry) -> list:
@@ -549,7 +576,7 @@ def freeze_limits(path=None, *, chart: str, reason: str, user: str, first: int |
                 out.append({"series_id": sid, "skipped": "baseline incomplete (too few points)"})
                 continue
             try:
-                est = lim_mod.estimate_limits(e, base)
+                est = lim_mod.estimate_limits(e, base, _baseline_sites(ctx, e, {sid: base}).get(sid))
             except lim_mod.LimitsError as exc:
                 out.append({"series_id": sid, "skipped": exc.what})
                 continue

@@ -94,6 +94,12 @@ def group_signals(con, *, series_ids: list[int], now: datetime, gap: int = 2) ->
             con.register("assign", frame)
             con.execute("UPDATE signals s SET excursion_id = a.excursion_id FROM assign a WHERE s.signal_id = a.signal_id")
             con.unregister("assign")
+        # only excursions that gained or lost signals in this run need their aggregates refreshed
+        changed = {x for _, x in assign} | {r[0] for r in con.execute(
+            "SELECT DISTINCT excursion_id FROM signals WHERE withdrawn_at = ? AND excursion_id IS NOT NULL "
+            "AND series_id IN (SELECT series_id FROM touched)", [now]).fetchall()}
+        con.unregister("touched")
+        con.register("touched", pl.DataFrame({"excursion_id": sorted(changed)}, schema={"excursion_id": pl.Int64}))
         rank = "CASE severity WHEN 'critical' THEN 4 WHEN 'high' THEN 3 WHEN 'medium' THEN 2 ELSE 1 END"
         con.execute(
             f"""UPDATE excursions e SET first_at = a.first_at, last_at = a.last_at, rules_json = a.rules,
@@ -102,14 +108,14 @@ def group_signals(con, *, series_ids: list[int], now: datetime, gap: int = 2) ->
                          to_json(list(DISTINCT rule ORDER BY rule))::VARCHAR AS rules,
                          to_json(list(DISTINCT lot_id ORDER BY lot_id))::VARCHAR AS lots, count(*) AS n,
                          CASE max({rank}) WHEN 4 THEN 'critical' WHEN 3 THEN 'high' WHEN 2 THEN 'medium' ELSE 'low' END AS sev
-                  FROM signals WHERE withdrawn_at IS NULL AND series_id IN (SELECT series_id FROM touched)
+                  FROM signals WHERE withdrawn_at IS NULL AND excursion_id IN (SELECT excursion_id FROM touched)
                   GROUP BY excursion_id) a
             WHERE e.excursion_id = a.excursion_id"""
         )
         # an unclosed excursion whose signals were all withdrawn closes itself, with an audit row
         con.execute(
             """CREATE OR REPLACE TEMP TABLE emptied AS SELECT e.excursion_id, e.state FROM excursions e
-               WHERE e.series_id IN (SELECT series_id FROM touched) AND e.state <> 'closed'
+               WHERE e.excursion_id IN (SELECT excursion_id FROM touched) AND e.state <> 'closed'
                  AND NOT EXISTS (SELECT 1 FROM signals s WHERE s.excursion_id = e.excursion_id
                                  AND s.withdrawn_at IS NULL)"""
         )

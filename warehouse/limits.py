@@ -5,17 +5,21 @@ only ever reads them. A series without frozen limits is frozen automatically fro
 once the baseline is complete (first N points exist, or a point after the window's end exists and the
 window holds at least ``MIN_BASELINE`` points), recorded as user ``lotline-auto``; until then the series'
 control rules are skipped (its out-of-spec check still runs) and `lotline evaluate` reports it as waiting.
+Automatic freezing uses the points that have arrived: baseline data arriving after the freeze does not
+move the limits (an engineer re-freezes with `lotline limits freeze`).
 
-Sigma of the charted statistic (the level that is plotted):
-    * site values, wafer means, lot means: the sample SD of the baseline *points* themselves. A wafer
-      mean's variance is σ²_lot + σ²_wafer + σ²_site/n (nested variance components), which is what the
-      spread of wafer means around the grand mean estimates; the within-wafer sigma alone would make
-      limits far too tight (the classic nested-variance trap, NIST line-width data; see notes/domain.md).
-    * wafer SD / range: individuals chart of the statistic, sigma = mean moving range / d2 with
-      d2(2) = 1.128 (NIST/SEMATECH e-Handbook §6.3.2.2, individuals control charts).
-    * u charts: ū = Σ defects / Σ area; sigma of one point = sqrt(ū / a_i) (Poisson; e-Handbook §6.3.3.2).
-      Laney u′: the same times σ_z = mean moving range of z_i = (u_i − ū)/sqrt(ū/a_i), / 1.128
-      (Laney 2002, Quality Engineering 14(4)).
+Sigma of the charted statistic (the level that is plotted), all computed by ``spc``:
+    * site values, wafer means, lot means: nested variance components of the baseline's site values
+      (``spc.variance.nested_components``, lot > wafer > site) and the sigma recommended for the charted
+      level (``sigma_for``: σ²_lot + σ²_wafer + σ²_site/n for a wafer mean). Within-wafer sigma alone would
+      make the limits far too tight (the nested-variance trap, notes/domain.md). When the baseline design
+      is unbalanced or has one wafer per lot, the components cannot be separated by ANOVA and the sample
+      SD of the baseline points is used: it estimates the same total variance of one point
+      (``sigma_source = baseline_points_sd``).
+    * wafer SD / range: individuals chart of the statistic (``spc.shewhart.individuals_limits``:
+      mean moving range / d2(2); NIST/SEMATECH e-Handbook §6.3.2.2).
+    * u charts: ``spc.attributes.u_points`` (ū = Σ defects / Σ area, sigma sqrt(ū/a_i)); Laney u′:
+      ``spc.attributes.laney_u_points`` (sigma times σ_z; Laney 2002, Quality Engineering 14(4)).
 """
 
 from __future__ import annotations
@@ -25,12 +29,14 @@ from datetime import datetime
 import numpy as np
 import polars as pl
 
+from spc.attributes import laney_u_points, u_points
+from spc.shewhart import individuals_limits
+from spc.variance import nested_components
 from warehouse import schema
 from warehouse.errors import LotlineError
 from warehouse.plan import DEFECT_STATISTICS, MIN_BASELINE, PlanEntry
 
 AUTO_USER = "lotline-auto"
-D2_N2 = 1.128  # d2 for moving ranges of 2 (e-Handbook §6.3.2.2, table of control chart constants)
 
 
 class LimitsError(LotlineError, ValueError):
@@ -54,8 +60,11 @@ def baseline_points(e: PlanEntry, pts: pl.DataFrame, *, window: tuple[datetime, 
     return sub if complete and sub.height >= MIN_BASELINE else None
 
 
-def estimate_limits(e: PlanEntry, base: pl.DataFrame) -> dict:
-    """Phase I centre, sigma and limits of one series from its baseline points (see module doc)."""
+def estimate_limits(e: PlanEntry, base: pl.DataFrame, sites: pl.DataFrame | None = None) -> dict:
+    """Phase I centre, sigma and limits of one series from its baseline points (see module doc).
+
+    ``sites``: the site values (lot_id, wafer_id, value) of the baseline points, for variance components.
+    """
     k = float(e.params.get("k", 3.0))
     v = base["value"].cast(pl.Float64).to_numpy()
     if v.size < 2:
@@ -63,26 +72,23 @@ def estimate_limits(e: PlanEntry, base: pl.DataFrame) -> dict:
     out = {"k_sigma": k, "n_ref": None, "overdispersion": None, "baseline_n": int(v.size),
            "baseline_from": base["point_at"].min(), "baseline_to": base["point_at"].max()}
     if e.chart in ("u", "laney_u") and e.statistic in DEFECT_STATISTICS:
-        area = base["area_cm2"].cast(pl.Float64).to_numpy()
-        counts = base["n"].cast(pl.Float64).to_numpy()
-        ubar = float(counts.sum() / area.sum())
-        n_ref = float(area.mean())
-        sz = 1.0
-        if e.chart == "laney_u" and ubar > 0:
-            z = (v - ubar) / np.sqrt(ubar / area)
-            sz = float(np.mean(np.abs(np.diff(z))) / D2_N2)
+        frame = base.select(pl.lit("s").alias("series"), pl.col("n").alias("count"), "area_cm2")
+        pts = laney_u_points(frame) if e.chart == "laney_u" else u_points(frame)
+        ubar = float(pts["center"][0])
+        n_ref = float(base["area_cm2"].cast(pl.Float64).mean())
+        sz = float(pts["sigma_z"][0]) if e.chart == "laney_u" else 1.0
         sigma_ref = float(np.sqrt(ubar / n_ref) * sz) if ubar > 0 else 0.0
         out.update(center=ubar, sigma=sigma_ref, sigma_level="count", n_ref=n_ref,
                    sigma_source="laney_u_prime" if e.chart == "laney_u" else "poisson",
                    overdispersion=sz if e.chart == "laney_u" else None)
     elif e.statistic in ("wafer_sd", "wafer_range"):
-        out.update(center=float(v.mean()), sigma=float(np.mean(np.abs(np.diff(v))) / D2_N2),
-                   sigma_level="wafer", sigma_source="moving_range")
+        lim = individuals_limits(pl.DataFrame({"series": "s", "seq": np.arange(v.size), "value": v}), k=k)
+        out.update(center=float(lim["center"][0]), sigma=float(lim["sigma"][0]), sigma_level="wafer",
+                   sigma_source="moving_range")
     else:
         level = {"site_value": "site", "wafer_mean": "wafer", "lot_mean": "lot"}.get(e.statistic, "wafer")
-        out.update(center=float(v.mean()), sigma=float(v.std(ddof=1)), sigma_level=level,
-                   sigma_source="variance_components_total")
-    if not out["sigma"] > 0:
+        out.update(center=float(v.mean()), sigma_level=level, **_nested_sigma(e, v, sites))
+    if not (out["sigma"] > 0 and np.isfinite(out["sigma"])):
         raise LimitsError("baseline points have no spread (sigma 0)", found=out["sigma"], expected="> 0",
                           fix="choose a baseline with real process variation")
     lcl = out["center"] - k * out["sigma"]
@@ -90,6 +96,22 @@ def estimate_limits(e: PlanEntry, base: pl.DataFrame) -> dict:
         lcl = max(lcl, 0.0)
     out.update(lcl=lcl, ucl=out["center"] + k * out["sigma"])
     return out
+
+
+def _nested_sigma(e: PlanEntry, v: np.ndarray, sites: pl.DataFrame | None) -> dict:
+    """Variance-components sigma of the charted level, or the SD of the points when ANOVA cannot apply."""
+    fallback = {"sigma": float(v.std(ddof=1)), "sigma_source": "baseline_points_sd"}
+    if sites is None or sites.height == 0:
+        return fallback
+    wafers_per_lot = sites.group_by("lot_id").agg(pl.col("wafer_id").n_unique())["wafer_id"]
+    if wafers_per_lot.min() < 2:
+        return fallback  # one wafer per lot: lot and wafer components are confounded
+    try:
+        vc = nested_components(sites, ["lot_id", "wafer_id"], "value", residual="site")
+    except (ValueError, ZeroDivisionError):
+        return fallback  # unbalanced design (missing sites or wafers)
+    key = {"site_value": "value", "wafer_mean": "wafer_id", "lot_mean": "lot_id"}[e.statistic]
+    return {"sigma": float(vc.sigma_for[key]), "sigma_source": "variance_components"}
 
 
 def point_sigma(e: PlanEntry, lim: dict, pts: pl.DataFrame) -> np.ndarray:

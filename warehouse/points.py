@@ -20,7 +20,7 @@ import json
 
 import polars as pl
 
-from warehouse.plan import DEFECT_STATISTICS, PlanEntry
+from warehouse.plan import PlanEntry
 
 POINT_COLUMNS = ("lot_id", "wafer_id", "point_key", "point_at", "value", "n", "vmin", "vmax", "area_cm2",
                  "product_any", "lsl", "usl")

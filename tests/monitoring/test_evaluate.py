@@ -7,7 +7,7 @@ from datetime import datetime, timedelta
 import numpy as np
 import pytest
 
-from tests.monitoring.conftest import load, make_lots, site_rows
+from tests.monitoring.conftest import PLAN, load, make_lots, site_rows
 from tests.monitoring.facts import insert_facts
 from warehouse import evaluate, queries, schema, store
 from warehouse.plan import parse_plan, store_plan
@@ -229,3 +229,35 @@ def test_evaluate_laney_u_centre_is_total_defects_over_total_area(tmp_path):
     assert lim["sigma_source"][0] == "laney_u_prime"
     sig = _signals(path)
     assert "D025" in sig["lot_id"].to_list()
+
+
+def test_evaluate_wafer_mean_limits_use_variance_components_of_the_charted_level(wh):
+    rng = np.random.default_rng(21)
+    a, b, n = 25, 3, 5
+    y = np.empty((a, b, n))
+    rows = []
+    for i in range(a):
+        lot_eff = rng.normal(0, 0.6)
+        for j in range(b):
+            y[i, j] = 45.0 + lot_eff + rng.normal(0, 0.3) + rng.normal(0, 0.3, n)
+            rows.append(site_rows(f"L{i:04d}", f"L{i:04d}-{j + 1:02d}", y[i, j],
+                                  datetime(2026, 9, 1) + timedelta(hours=6 * i, minutes=10 * j)))
+    rows.append(site_rows("L9000", "L9000-01", [45.0] * n, datetime(2026, 10, 1)))
+    load(wh, rows)
+    with store.open_warehouse(wh) as con:  # plan version 2: baseline = the first 75 wafers (all 25 lots)
+        store_plan(con, parse_plan(PLAN.replace("first = 20", "first = 75"), path="plan.toml"), user="t")
+    evaluate.evaluate_warehouse(wh, user="t")
+    lim = _limits(wh)
+    # nested ANOVA by expected mean squares, written out here as the oracle (NIST/SEMATECH e-Handbook §3.5.1;
+    # Montgomery, Design and Analysis of Experiments, nested designs)
+    grand = y.mean()
+    lot_m, waf_m = y.mean(axis=(1, 2)), y.mean(axis=2)
+    ms_lot = b * n * np.sum((lot_m - grand) ** 2) / (a - 1)
+    ms_waf = n * np.sum((waf_m - lot_m[:, None]) ** 2) / (a * (b - 1))
+    ms_site = np.sum((y - waf_m[:, :, None]) ** 2) / (a * b * (n - 1))
+    s2_site, s2_waf, s2_lot = ms_site, (ms_waf - ms_site) / n, (ms_lot - ms_waf) / (b * n)
+    expected = np.sqrt(s2_lot + s2_waf + s2_site / n)
+    assert lim["sigma_source"][0] == "variance_components"
+    assert lim["sigma"][0] == pytest.approx(expected, rel=1e-9)
+    assert lim["center"][0] == pytest.approx(grand, rel=1e-12)
+    assert lim["sigma"][0] > 1.5 * np.sqrt(s2_site / n)  # far wider than within-wafer sigma / sqrt(n)
