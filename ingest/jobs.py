@@ -19,6 +19,7 @@ import hashlib
 import os
 import queue
 import sys
+import tempfile
 import threading
 import zlib
 from collections.abc import Callable, Iterable, Iterator
@@ -293,6 +294,8 @@ def _load_content(con, path: Path, fmt: str, *, profiles: list[Profile], forced:
     shown = str(path)
     reader = _Reader(path, on_bytes)
     small_file = path.stat().st_size <= chunk_bytes
+    stage = None if small_file else tempfile.TemporaryDirectory(prefix="lotline-load-")
+    stage_dir = Path(stage.name) if stage else None
     affected: set[tuple[str, str | None, str | None, str | None]] = set()
     hashes: dict[str, list[pl.DataFrame]] = {}
 
@@ -320,7 +323,8 @@ def _load_content(con, path: Path, fmt: str, *, profiles: list[Profile], forced:
             if frame.height == 0:
                 continue
             tables_seen[table] = None
-            load.load_chunk(con, table, frame, file_id=file_id, counts=counts, series_order=small_file)
+            load.load_chunk(con, table, frame, file_id=file_id, counts=counts, series_order=small_file,
+                            stage_dir=stage_dir)
             h, keys_frame = extra[table]
             if h is not None:
                 hashes.setdefault(table, []).append(h)
@@ -397,6 +401,8 @@ def _load_content(con, path: Path, fmt: str, *, profiles: list[Profile], forced:
                                   fix="re-export the file; nothing was loaded")
     finally:
         reader.close()
+        if stage is not None:
+            stage.cleanup()
     load.supersede_file(con, list(tables_seen), file_id=file_id, counts=counts)
     # duplicate natural keys inside the file: exact check of the lines whose key hash repeats
     for table, parts in hashes.items():

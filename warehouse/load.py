@@ -21,6 +21,7 @@ from __future__ import annotations
 
 from collections import Counter
 from dataclasses import dataclass, field
+from pathlib import Path
 
 import duckdb
 import polars as pl
@@ -60,6 +61,7 @@ class FileCounts:
     rejected_lines: set[int] = field(default_factory=set)
     supersessions: Counter[tuple[int, str, str]] = field(default_factory=Counter)
     reject_frames: list[pl.DataFrame] = field(default_factory=list)
+    chunks: int = 0
 
 
 def _q(name: str) -> str:
@@ -69,6 +71,7 @@ def _q(name: str) -> str:
 def configure_for_ingest(con: duckdb.DuckDBPyConnection) -> None:
     """Bound the memory one ingest may use (big files are loaded in chunks)."""
     con.execute(f"SET memory_limit = '{INGEST_MEMORY_LIMIT}'")
+    con.execute("SET enable_progress_bar = false")
     con.execute("SET preserve_insertion_order = true")
 
 
@@ -86,25 +89,39 @@ def new_file_id(con: duckdb.DuckDBPyConnection) -> int:
 
 
 def load_chunk(con: duckdb.DuckDBPyConnection, table: str, frame: pl.DataFrame, *, file_id: int,
-               counts: FileCounts, series_order: bool = True) -> None:
+               counts: FileCounts, series_order: bool = True, stage_dir: Path | None = None) -> None:
     """Dedupe and insert one chunk of canonical rows of ``table`` for file ``file_id``.
 
     ``series_order`` sorts the chunk into series order on the way in; the caller turns it off for files
     too big for one chunk (a bulk backfill), where the sort would cost more than the load itself (and then
     lets DuckDB insert in parallel without keeping the order). Call :func:`supersede_file` after the last
     chunk.
+
+    ``stage_dir``: hand the chunk over as a Parquet file written there instead of an in-memory Arrow view.
+    Measured with DuckDB 2.0.1: inside one open transaction every Arrow-view insert keeps about 170 bytes a
+    row alive until COMMIT (1.6 GB for a 10M-row file), a Parquet-sourced insert keeps nothing; staging costs
+    about 15 % more CPU, so only files of several chunks use it.
     """
     if frame.height == 0:
         return
     t = schema.table(table)
     cols = [c for c in t.names if c not in (schema.C_SOURCE_FILE_ID, schema.C_SUPERSEDED_BY)]
-    view = "__lotline_chunk"
-    con.register(view, frame.select(cols))
+    staged: Path | None = None
+    if stage_dir is not None:
+        staged = Path(stage_dir) / f"chunk_{file_id}_{counts.chunks}.parquet"
+        counts.chunks += 1
+        frame.select(cols).write_parquet(staged, compression="uncompressed", statistics=False)
+        source, source_params = "read_parquet(?)", [str(staged)]
+    else:
+        view = "__lotline_chunk"
+        con.register(view, frame.select(cols))
+        source, source_params = view, []
     try:
         order = ", ".join(_q(c) for c in SERIES_ORDER.get(table, ()))
         order_sql = f" ORDER BY {order}, {_q(schema.C_SOURCE_LINE)}" if order and series_order else ""
-        select = f"SELECT f.*, ? AS {_q(schema.C_SOURCE_FILE_ID)}, NULL::BIGINT AS {_q(schema.C_SUPERSEDED_BY)} FROM {view} f"
-        params: list[object] = [file_id]
+        select = (f"SELECT f.*, ? AS {_q(schema.C_SOURCE_FILE_ID)}, NULL::BIGINT AS {_q(schema.C_SUPERSEDED_BY)} "
+                  f"FROM {source} f")
+        params: list[object] = [file_id, *source_params]
         if not t.supersede_key and t.natural_key:
             match = " AND ".join(f"m.{_q(k)} IS NOT DISTINCT FROM f.{_q(k)}" for k in t.natural_key)
             select += (f" WHERE NOT EXISTS (SELECT 1 FROM {_q(table)} m WHERE m.{_q(schema.C_SUPERSEDED_BY)} IS NULL"
@@ -115,7 +132,10 @@ def load_chunk(con: duckdb.DuckDBPyConnection, table: str, frame: pl.DataFrame, 
         counts.loaded += int(n)
         counts.skipped += frame.height - int(n)
     finally:
-        con.unregister(view)
+        if staged is not None:
+            staged.unlink(missing_ok=True)
+        else:
+            con.unregister(view)
 
 
 def _group_exprs(t: schema.Table, alias: str) -> list[str]:
