@@ -120,7 +120,8 @@ def evaluate_connection(con, *, full: bool = False, user: str = "unknown") -> Ru
         _evaluate_entry(ctx, e, full=full, watermark=wm_old)
     from warehouse import excursions
 
-    s.excursions_opened = excursions.group_signals(con, series_ids=sorted(ctx.touched), now=started)
+    s.excursions_opened = excursions.group_signals(con, series_ids=sorted(ctx.touched), now=started,
+                                                   any_withdrawn=s.signals_withdrawn > 0)
     s.series = len(ctx.touched)
     run_id = con.execute("SELECT nextval('run_id_seq')").fetchall()[0][0]
     con.execute(
@@ -231,22 +232,19 @@ def _evaluate_entry(ctx: _Context, e: PlanEntry, *, full: bool, watermark: int) 
 
 def _with_limits(ctx: _Context, e: PlanEntry, pts: pl.DataFrame) -> pl.DataFrame:
     """Add center, sigma and limit_version from the version in force (nulls where none is frozen)."""
-    sids = pts["series_id"].to_numpy()
-    center = np.full(pts.height, np.nan)
-    version = np.zeros(pts.height, dtype=np.int64)
-    sigma = np.full(pts.height, np.nan)
-    for sid in np.unique(sids):
-        lim = ctx.limits.get(int(sid))
-        if lim is None:
-            continue
-        m = sids == sid
-        center[m] = lim["center"]
-        version[m] = lim["version"]
-        sigma[m] = lim_mod.point_sigma(e, lim, pts.filter(pl.Series(m)))
-    return pts.with_columns(
-        pl.Series("center", center), pl.Series("sigma", sigma),
-        pl.Series("limit_version", version).replace(0, None),
-    )
+    sids = pts["series_id"].unique().to_list()
+    rows = [(sid, ctx.limits[sid]["version"], ctx.limits[sid]["center"], ctx.limits[sid]["sigma"],
+             ctx.limits[sid]["n_ref"], ctx.limits[sid]["overdispersion"]) for sid in sids if sid in ctx.limits]
+    lim = pl.DataFrame(rows, schema={"series_id": pl.Int64, "limit_version": pl.Int64, "center": pl.Float64,
+                                     "_sigma": pl.Float64, "_n_ref": pl.Float64, "_sz": pl.Float64}, orient="row")
+    out = pts.join(lim, on="series_id", how="left", maintain_order="left")
+    if e.chart in ("u", "laney_u"):
+        # sigma of one point varies with its inspected area (lim_mod.point_sigma, row-wise)
+        sigma = pl.when(pl.col("_n_ref").is_not_null()).then(
+            (pl.col("center") / pl.col("area_cm2")).sqrt() * pl.col("_sz").fill_null(1.0)).otherwise(pl.col("_sigma"))
+    else:
+        sigma = pl.col("_sigma")
+    return out.with_columns(sigma.alias("sigma")).drop("_sigma", "_n_ref", "_sz")
 
 
 def _freeze_missing(ctx: _Context, e: PlanEntry, pts: pl.DataFrame, series: list[int]) -> None:

@@ -36,7 +36,7 @@ def _audit(con, excursion_id: int, *, at, by, from_state, to_state, classificati
     )
 
 
-def group_signals(con, *, series_ids: list[int], now: datetime, gap: int = 2) -> int:
+def group_signals(con, *, series_ids: list[int], now: datetime, gap: int = 2, any_withdrawn: bool = True) -> int:
     """Assign unassigned standing signals of the series to excursions; refresh aggregates; return opened."""
     if not series_ids:
         return 0
@@ -95,9 +95,11 @@ def group_signals(con, *, series_ids: list[int], now: datetime, gap: int = 2) ->
             con.execute("UPDATE signals s SET excursion_id = a.excursion_id FROM assign a WHERE s.signal_id = a.signal_id")
             con.unregister("assign")
         # only excursions that gained or lost signals in this run need their aggregates refreshed
-        changed = {x for _, x in assign} | {r[0] for r in con.execute(
-            "SELECT DISTINCT excursion_id FROM signals WHERE withdrawn_at = ? AND excursion_id IS NOT NULL "
-            "AND series_id IN (SELECT series_id FROM touched)", [now]).fetchall()}
+        changed = {x for _, x in assign}
+        if any_withdrawn:
+            changed |= {r[0] for r in con.execute(
+                "SELECT DISTINCT excursion_id FROM signals WHERE withdrawn_at = ? AND excursion_id IS NOT NULL "
+                "AND series_id IN (SELECT series_id FROM touched)", [now]).fetchall()}
         con.unregister("touched")
         con.register("touched", pl.DataFrame({"excursion_id": sorted(changed)}, schema={"excursion_id": pl.Int64}))
         rank = "CASE severity WHEN 'critical' THEN 4 WHEN 'high' THEN 3 WHEN 'medium' THEN 2 ELSE 1 END"
