@@ -26,7 +26,9 @@ def main() -> None:
     )
 
     st.subheader("Ingest log")
-    widgets.table(frames["log"], key="ingest_log")
+    widgets.table(frames["log"], key="ingest_log",
+                  columns=["file_id", "loaded_at", "status", "path", "kind", "profile", "rows_loaded", "rows_rejected",
+                           "rows_skipped", "rows_superseded", "loaded_by", "message", "size_bytes", "sha256"])  # fmt: skip
 
     st.subheader("Rejected rows" + (f" of file {file_id}" if file_id is not None else ""))
     rej = frames["rejects"]
