@@ -31,7 +31,6 @@ import time
 from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime
 
-import numpy as np
 import polars as pl
 
 from spc.cusum import CusumParams, evaluate_cusum
@@ -47,6 +46,7 @@ EXCURSION_GAP = 2
 """Unsignalled points allowed between two signals of one excursion."""
 WITHDRAWN_SUPERSEDED = "point's data superseded or moved (corrected re-export or new process history)"
 WITHDRAWN_CHANGED = "point's value changed (corrected re-export)"
+WITHDRAWN_CHART_REMOVED = "chart removed from the monitoring plan"
 WITHDRAWN_NOT_FOUND = "not found on re-evaluation (limits re-frozen, or earlier points changed the chart statistic)"
 
 
@@ -118,6 +118,8 @@ def evaluate_connection(con, *, full: bool = False, user: str = "unknown") -> Ru
     ctx = _Context(con, started, user, s)
     for e in plan.entries:
         _evaluate_entry(ctx, e, full=full, watermark=wm_old)
+    if full:
+        _withdraw_removed_charts(ctx, [e.name for e in plan.entries])
     from warehouse import excursions
 
     s.excursions_opened = excursions.group_signals(con, series_ids=sorted(ctx.touched), now=started,
@@ -142,6 +144,25 @@ class _Context:
         self.series = {(r[1], r[2], r[3], r[4]): r[0] for r in rows}
         st = con.sql("SELECT * FROM series_state").pl()
         self.state = {r["series_id"]: r for r in st.to_dicts()}
+
+
+def _withdraw_removed_charts(ctx: _Context, names: list[str]) -> None:
+    """Withdraw standing signals of series whose chart is no longer in the plan (kept, with the reason)."""
+    gone = sorted(sid for (chart, *_), sid in ctx.series.items() if chart not in names)
+    if not gone:
+        return
+    frame = pl.DataFrame({"series_id": gone}, schema={"series_id": pl.Int64})
+    ctx.con.register("gone", frame)
+    try:
+        n = ctx.con.execute(
+            "UPDATE signals SET withdrawn_at = ?, withdrawn_reason = ? WHERE withdrawn_at IS NULL "
+            "AND series_id IN (SELECT series_id FROM gone)", [ctx.now, WITHDRAWN_CHART_REMOVED]).fetchall()
+    finally:
+        ctx.con.unregister("gone")
+    withdrawn = int(n[0][0]) if n else 0
+    if withdrawn:
+        ctx.s.signals_withdrawn += withdrawn
+        ctx.touched.update(gone)
 
 
 # ------------------------------------------------------------------------------------------ per entry

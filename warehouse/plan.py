@@ -30,8 +30,8 @@ chambers get series automatically.
 from __future__ import annotations
 
 import difflib
-import functools
 import fnmatch
+import functools
 import hashlib
 import json
 import tomllib
@@ -468,10 +468,46 @@ def _build(text: str, path: str) -> Plan:
 # ------------------------------------------------------------------------------------------ storing
 
 
+IDENTITY_FIELDS = ("layer", "parameter", "product", "stage", "sample_kind", "statistic", "step", "chart")
+"""Fields that define what a chart's series and frozen limits mean; changing one needs a new chart name
+(the chart type only between families: variables charts and u / u' charts keep limits differently)."""
+
+
+def _chart_family(chart: str) -> str:
+    return "attribute" if chart in ("u", "laney_u") else "variables"
+
+
 def store_plan(con, plan: Plan, *, user: str) -> int:
-    """Store a validated plan as the next plan version (inside the caller's transaction); return it."""
+    """Store a validated plan as the next plan version (inside the caller's transaction); return it.
+
+    Refuses an entry that keeps its name but changes what it charts (``IDENTITY_FIELDS``, or its split):
+    its series and frozen limits belong to the old definition.
+    """
     row = con.execute("SELECT coalesce(max(plan_version), 0) FROM plans").fetchall()[0][0]
     version = int(row) + 1
+    old = {
+        r[0]: r[1:]
+        for r in con.execute(
+            f"SELECT chart, {', '.join('chart_type' if f == 'chart' else f for f in IDENTITY_FIELDS)}, split_json "
+            "FROM chart_plan WHERE plan_version = ?", [version - 1]).fetchall()
+    }
+    for e in plan.entries:
+        if e.name not in old:
+            continue
+        before = dict(zip((*IDENTITY_FIELDS, "split"), old[e.name], strict=True))
+        before["split"] = tuple(json.loads(before["split"]))
+        now = {f: getattr(e, f) for f in (*IDENTITY_FIELDS, "split")}
+        if _chart_family(now["chart"]) == _chart_family(before["chart"]):
+            now["chart"] = before["chart"]  # e.g. individuals -> ewma: the same limits apply
+        diff = [f for f in now if now[f] != before[f]]
+        if diff:
+            f = diff[0]
+            raise ConfigError(
+                f'chart "{e.name}" changes its {f}, but its series and frozen limits belong to the loaded definition',
+                path=plan.path, line=e.line, column=1, found=_show_value(now[f]),
+                expected=f"{_show_value(before[f])} as in plan version {version - 1}",
+                fix="give the changed chart a new name (the old one's history stays), or keep the old definition",
+            )
     con.execute(
         "INSERT INTO plans VALUES (?, ?, ?, ?, now()::TIMESTAMP, ?)",
         [version, plan.path, plan.sha256, plan.text, user],
@@ -486,6 +522,10 @@ def store_plan(con, plan: Plan, *, user: str) -> int:
             ],
         )
     return version
+
+
+def _show_value(v) -> str:
+    return ", ".join(v) if isinstance(v, tuple) else str(v)
 
 
 def current_plan(con) -> Plan | None:

@@ -261,3 +261,21 @@ def test_evaluate_wafer_mean_limits_use_variance_components_of_the_charted_level
     assert lim["sigma"][0] == pytest.approx(expected, rel=1e-9)
     assert lim["center"][0] == pytest.approx(grand, rel=1e-12)
     assert lim["sigma"][0] > 1.5 * np.sqrt(s2_site / n)  # far wider than within-wafer sigma / sqrt(n)
+
+
+def test_evaluate_new_plan_without_a_chart_withdraws_its_signals(wh):
+    lots = make_lots(30)
+    lots.append(site_rows("L9999", "L9999-01", [49.0] * 5, datetime(2026, 9, 15)))
+    load(wh, lots)
+    evaluate.evaluate_warehouse(wh, user="t")
+    assert _signals(wh).height > 0
+    other = PLAN.replace('name = "m1-cd"', 'name = "m1-cd-v2"')
+    with store.open_warehouse(wh) as con:
+        store_plan(con, parse_plan(other, path="plan.toml"), user="t")
+    s = evaluate.evaluate_warehouse(wh, user="t")
+    assert s.mode == "full"
+    with store.open_warehouse(wh, read_only=True) as con:
+        old = queries.series_signals(con, series_id=1)
+        exc = queries.list_excursions(con, chart="m1-cd")
+    assert set(old["withdrawn_reason"]) == {evaluate.WITHDRAWN_CHART_REMOVED}
+    assert set(exc["state"]) == {"closed"}

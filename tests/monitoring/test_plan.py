@@ -144,3 +144,21 @@ def test_demo_fab_plan_is_valid_and_covers_every_measured_layer():
     insp = {s.name for s in INSPECTION_STEPS}
     assert all(any(e.is_defect and e.matches(layer=s, parameter="total") for e in plan.entries) for s in insp)
     assert {e.chart for e in plan.entries} >= {"ewma", "cusum", "laney_u", "individuals"}
+
+
+def test_store_plan_refuses_an_entry_that_changes_its_statistic_under_the_same_name(tmp_path):
+    from warehouse import store
+    from warehouse.plan import store_plan
+
+    path = tmp_path / "w.duckdb"
+    v1 = H + 'statistic = "wafer_mean"\nchart = "ewma"\n'
+    with store.open_warehouse(path, create=True) as con:
+        assert store_plan(con, parse_plan(v1, path="plan.toml"), user="t") == 1
+        assert store_plan(con, parse_plan(v1.replace('"ewma"', '"cusum"'), path="plan.toml"), user="t") is not None
+    with store.open_warehouse(path) as con, pytest.raises(ConfigError) as err:
+        store_plan(con, parse_plan(v1.replace('"ewma"', '"cusum"').replace("wafer_mean", "wafer_sd"),
+                                   path="plan.toml"), user="t")
+    assert str(err.value) == (
+        'plan.toml:1:1: chart "m1" changes its statistic, but its series and frozen limits belong to the loaded '
+        'definition (found "wafer_sd", expected wafer_mean as in plan version 2).\n'
+        "  Fix: give the changed chart a new name (the old one's history stays), or keep the old definition.")
