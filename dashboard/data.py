@@ -18,6 +18,7 @@ command line, else ``$LOTLINE_DB``, else ``./lotline.duckdb``) and the trusted p
 from __future__ import annotations
 
 import getpass
+import inspect
 import os
 import sys
 import threading
@@ -166,7 +167,8 @@ def load(requests: Mapping[str, Request]) -> dict[str, Any]:
         >>> frames = load({"sev": ("open_excursions_by_severity", {})})  # doctest: +SKIP
     """
     for name, _ in requests.values():
-        if name.startswith("_") or not callable(getattr(queries, name, None)):
+        fn = getattr(queries, name, None)
+        if name.startswith("_") or not inspect.isfunction(fn) or fn.__module__ != queries.__name__:
             raise AttributeError(f"warehouse.queries has no read function {name!r}")
     db = db_path()
     batch = tuple((label, name, _freeze(dict(kwargs))) for label, (name, kwargs) in requests.items())
