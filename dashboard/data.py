@@ -189,13 +189,14 @@ def empty(frame: pl.DataFrame | None) -> bool:
 
 
 @st.cache_data(max_entries=128, show_spinner=False)
-def _drift(db: str, stamp: tuple[int, int], series_id: int, lam: float, L: float, limits: str, k: float, h: float,
+def _drift(points: pl.DataFrame, series_id: int, lam: float, L: float, limits: str, k: float, h: float,
            headstart: float):  # fmt: skip
     from spc.cusum import CusumParams, evaluate_cusum
     from spc.ewma import EwmaParams, evaluate_ewma
 
-    pts = _run_batch(db, stamp, (("p", "series_points", (("series_id", series_id),)),))["p"]
-    pts = pts.filter(pl.col("center").is_not_null() & pl.col("sigma").is_not_null() & (pl.col("sigma") > 0))
+    pts = points.filter(
+        pl.col("center").is_not_null() & pl.col("sigma").is_not_null() & (pl.col("sigma") > 0)
+    )
     if pts.height == 0:
         return pts, pts
     frame = pts.with_columns(pl.lit(str(series_id)).alias("series"))
@@ -206,12 +207,23 @@ def _drift(db: str, stamp: tuple[int, int], series_id: int, lam: float, L: float
 
 
 def series_drift(
-    series_id: int, *, lam: float, L: float, limits: str = "exact", k: float, h: float, headstart: float = 0.0
+    points: pl.DataFrame,
+    series_id: int,
+    *,
+    lam: float,
+    L: float,
+    limits: str = "exact",
+    k: float,
+    h: float,
+    headstart: float = 0.0,
 ) -> tuple[pl.DataFrame, pl.DataFrame]:
-    """EWMA and CUSUM paths of one series from the engine (spc.ewma / spc.cusum) over its stored points."""
-    db = db_path()
-    return _drift(str(db), store.file_stamp(db), int(series_id), float(lam), float(L), str(limits), float(k),
-                  float(h), float(headstart))  # fmt: skip
+    """EWMA and CUSUM paths (spc.ewma / spc.cusum) over a series' points as ``series_points`` returned them.
+
+    Takes the points the page already loaded, so the series is read once; cached on the frame's content.
+    """  # fmt: skip
+    return _drift(
+        points, int(series_id), float(lam), float(L), str(limits), float(k), float(h), float(headstart)
+    )
 
 
 @st.cache_data(max_entries=64, show_spinner=False)

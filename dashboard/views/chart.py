@@ -63,7 +63,8 @@ def main() -> None:
             "spec": ("series_spec", {"series_id": series_id, "at": info["last_point_at"]}),
         }
     )
-    points, signals, limits, plan = frames["points"], frames["signals"], frames["limits"], frames["plan"]
+    all_points, signals, limits, plan = frames["points"], frames["signals"], frames["limits"], frames["plan"]
+    points = all_points
     plan_row = plan.row(0, named=True) if plan.height else {}
     rules = _json(plan_row.get("rules_json"), [])
     params = _json(plan_row.get("params_json"), {})
@@ -106,6 +107,7 @@ def main() -> None:
     ewma_p = {**CHART_PARAMS["ewma"], **(params if chart_type == "ewma" else {})}
     cusum_p = {**CHART_PARAMS["cusum"], **(params if chart_type == "cusum" else {})}
     ewma, cusum = data.series_drift(
+        all_points,
         series_id, lam=ewma_p["lambda"], L=ewma_p["L"], limits=ewma_p["limits"], k=cusum_p["cusum_k"],
         h=cusum_p["h"], headstart=cusum_p["headstart"],
     )  # fmt: skip
