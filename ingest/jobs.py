@@ -424,7 +424,7 @@ def _chunks(reader: _Reader, head: bytes, chunker: LineChunker) -> Iterator[tupl
     """The file's non-blank chunks of whole lines, as ``(first_line, utf8_bytes)``."""
     block = head
     while True:
-        nxt = reader.read() if block else b""
+        nxt = reader.read(max(BLOCK_BYTES, chunker.chunk_bytes)) if block else b""
         final = not nxt
         for first, data in chunker.feed(block, final=final):
             if data.strip():
