@@ -159,12 +159,13 @@ ORDER BY i""",
 
 
 _CHILD = """
-import json, resource, sys, time
+import json, sys, time
 from warehouse import evaluate
 t = time.perf_counter()
 s = evaluate.evaluate_warehouse(sys.argv[1], full=sys.argv[2] == "full", user="bench")
 sec = time.perf_counter() - t
-rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+# VmHWM (peak resident set of this process image); ru_maxrss would carry the parent's peak across fork/exec
+rss = next(int(l.split()[1]) for l in open("/proc/self/status") if l.startswith("VmHWM")) / 1024
 print(json.dumps({"seconds": sec, "peak_rss_mb": rss, **s.as_dict()}))
 """
 

@@ -116,6 +116,7 @@ def evaluate_connection(con, *, full: bool = False, user: str = "unknown") -> Ru
     s = RunSummary("full" if full else "incremental", version, wm_new)
     pts_mod.update_lot_index(con)
     ctx = _Context(con, started, user, s)
+    ctx.changes = {} if full else pts_mod.read_changes(con, watermark=wm_old)
     for e in plan.entries:
         _evaluate_entry(ctx, e, full=full, watermark=wm_old)
     if full:
@@ -139,6 +140,7 @@ class _Context:
     def __init__(self, con, now: datetime, user: str, summary: RunSummary) -> None:
         self.con, self.now, self.user, self.s = con, now, user, summary
         self.touched: set[int] = set()
+        self.changes: dict[str, pl.DataFrame] = {}
         self.limits = lim_mod.current_limits(con)
         rows = con.execute("SELECT series_id, chart, layer, parameter, split_json FROM chart_series").fetchall()
         self.series = {(r[1], r[2], r[3], r[4]): r[0] for r in rows}
@@ -203,7 +205,7 @@ def _evaluate_entry(ctx: _Context, e: PlanEntry, *, full: bool, watermark: int) 
     refrozen = {sid for (chart, *_), sid in ctx.series.items() if chart == e.name and sid in ctx.limits
                 and (ctx.state.get(sid) or {}).get("limit_version") != ctx.limits[sid]["version"]}
     if not full:
-        lots, spec_changed = pts_mod.dirty_lots(con, e, watermark=watermark)
+        lots, spec_changed = pts_mod.changed_lots(e, ctx.changes)
         if spec_changed:
             full = True
         elif lots.height == 0 and not refrozen:
@@ -467,7 +469,11 @@ def _write_state(ctx, e, pts, series, ew, cu, *, base_state, context=None) -> No
 
 def _reconcile(ctx: _Context, e: PlanEntry, sig: pl.DataFrame, pts: pl.DataFrame, series: list[int], *,
                recompute: bool) -> None:
-    """Write new signals, withdraw standing ones no longer found (recompute only)."""
+    """Write new signals, withdraw standing ones no longer found (recompute only).
+
+    Appended points are later than every evaluated point of their series, and a run is one transaction, so
+    they cannot have signals yet: the duplicate check is needed only when recomputing.
+    """
     con = ctx.con
     cand = sig.select(
         pl.col("series").cast(pl.Int64).alias("series_id"), pl.col("point_key").cast(pl.String),
@@ -512,7 +518,7 @@ INSERT INTO signals
 SELECT nextval('signal_id_seq'), c.series_id, c.point_key, c.lot_id, c.wafer_id, c.point_at, c.point_seq, c.rule,
        c.value, c.statistic, c.limit_version, ?, ?, NULL, NULL, NULL
 FROM cand c
-WHERE NOT EXISTS (SELECT 1 FROM signals s WHERE s.withdrawn_at IS NULL AND {match})
+WHERE {"NOT EXISTS (SELECT 1 FROM signals s WHERE s.withdrawn_at IS NULL AND " + match + ")" if recompute else "true"}
 ORDER BY c.series_id, c.point_seq, c.rule""",
             [e.severity, ctx.now],
         ).fetchall()

@@ -17,6 +17,7 @@ bound parameter.
 from __future__ import annotations
 
 import json
+import re
 
 import polars as pl
 
@@ -222,48 +223,6 @@ def read_points(con, e: PlanEntry, *, scope: str = "current", watermark: int | N
     return out
 
 
-def dirty_lots(con, e: PlanEntry, *, watermark: int) -> tuple[pl.DataFrame, bool]:
-    """Lots whose rows for this entry changed after ``watermark`` (with their first source file of the entry's
-    fact table, NULL when it has none); and whether spec limits changed."""
-    params: dict = {"wm": watermark, "layer": e.layer, "product": e.product}
-    # two halves joined by UNION ALL (not OR) so that each can skip row groups by its zone maps
-    halves = ("f._source_file_id > $wm", "f._superseded_by > $wm")
-    if e.is_defect:
-        parts = [f"SELECT lot_id FROM inspections f WHERE f.layer GLOB $layer AND f.product GLOB $product AND {c}"
-                 for c in halves]
-        if e.statistic == "defect_density" and e.parameter != "total":
-            parts += [f"SELECT lot_id FROM defect_counts f WHERE f.layer GLOB $layer AND {c}" for c in halves]
-    else:
-        params["parameter"] = e.parameter
-        parts = [
-            "SELECT lot_id FROM measurements f WHERE f.layer GLOB $layer AND f.parameter GLOB $parameter "
-            f"AND f.product GLOB $product AND {c}" for c in halves
-        ]
-    if _uses_history(e):
-        params["step"] = e.step
-        parts += [f"SELECT lot_id FROM process_history f WHERE f.step = $step AND {c}" for c in halves]
-    fact = "inspections" if e.is_defect else "measurements"
-    params["fact"] = fact
-    sql = (
-        "SELECT d.lot_id, i.first_file_id FROM (SELECT DISTINCT lot_id FROM (" + " UNION ALL ".join(parts) + ")) d "
-        "LEFT JOIN lot_first_files i ON i.table_name = $fact AND i.lot_id = d.lot_id ORDER BY d.lot_id"
-    )
-    cur = con.cursor()
-    try:
-        lots = cur.sql(sql, params=params).pl()
-        spec_changed = False
-        if not e.is_defect and e.spec_check:
-            n = cur.sql(
-                "SELECT count(*) FROM spec_limits f WHERE f.layer GLOB $layer AND f.parameter GLOB $parameter "
-                "AND (f._source_file_id > $wm OR f._superseded_by > $wm)",
-                params={"wm": watermark, "layer": e.layer, "parameter": e.parameter},
-            ).fetchall()[0][0]
-            spec_changed = n > 0
-    finally:
-        cur.close()
-    return lots, spec_changed
-
-
 def read_series_points(con, *, series_id: int) -> pl.DataFrame:
     """Points of one stored series with the limits in force (see queries.series_points)."""
     from warehouse import evaluate
@@ -293,3 +252,80 @@ def update_lot_index(con) -> None:
         con.execute("UPDATE meta SET value = ? WHERE key = 'lot_index_file_id'", [str(top)])
     else:
         con.execute("INSERT INTO meta VALUES ('lot_index_file_id', ?)", [str(top)])
+
+
+def glob_regex(pattern: str) -> str:
+    """An anchored regular expression for a plan wildcard (``*`` any run, ``?`` one character).
+
+    >>> glob_regex("M1_*"), glob_regex("a.b?")
+    ('^M1_.*$', '^a\\\\.b.$')
+    """
+    out = []
+    for ch in pattern:
+        out.append(".*" if ch == "*" else "." if ch == "?" else re.escape(ch))
+    return "^" + "".join(out) + "$"
+
+
+def read_changes(con, *, watermark: int) -> dict[str, pl.DataFrame]:
+    """Everything that changed after ``watermark``, read once per run (new or superseded rows).
+
+    Keys: measurements (lot_id, layer, parameter, product, first_file_id), inspections (lot_id, layer,
+    product, first_file_id), defect_counts (lot_id, layer), process_history (lot_id, step,
+    first_measurements, first_inspections), spec_limits (layer, parameter). Each fact query has two halves joined by UNION (not OR) so that both can skip row
+    groups by their zone maps.
+    """
+    def both(cols: str, table: str) -> str:
+        return (f'SELECT DISTINCT {cols} FROM "{table}" f WHERE f._source_file_id > $wm UNION '
+                f'SELECT DISTINCT {cols} FROM "{table}" f WHERE f._superseded_by > $wm')
+
+    def first(sql: str, table: str) -> str:
+        return (f"SELECT c.*, i.first_file_id FROM ({sql}) c LEFT JOIN lot_first_files i "
+                f"ON i.table_name = '{table}' AND i.lot_id = c.lot_id")
+
+    queries = {
+        "measurements": first(both("lot_id, layer, parameter, product", "measurements"), "measurements"),
+        "inspections": first(both("lot_id, layer, product", "inspections"), "inspections"),
+        "defect_counts": both("lot_id, layer", "defect_counts"),
+        "process_history": (
+            f"SELECT c.*, m.first_file_id AS first_measurements, i.first_file_id AS first_inspections "
+            f"FROM ({both('lot_id, step', 'process_history')}) c "
+            "LEFT JOIN lot_first_files m ON m.table_name = 'measurements' AND m.lot_id = c.lot_id "
+            "LEFT JOIN lot_first_files i ON i.table_name = 'inspections' AND i.lot_id = c.lot_id"
+        ),
+        "spec_limits": both("layer, parameter", "spec_limits"),
+    }
+    cur = con.cursor()
+    try:
+        return {k: cur.sql(q, params={"wm": watermark}).pl() for k, q in queries.items()}
+    finally:
+        cur.close()
+
+
+def changed_lots(e: PlanEntry, changes: dict[str, pl.DataFrame]) -> tuple[pl.DataFrame, bool]:
+    """The entry's changed lots (lot_id, first_file_id) and whether its spec limits changed."""
+    layer = pl.col("layer").str.contains(glob_regex(e.layer))
+    product = pl.col("product").str.contains(glob_regex(e.product))
+    if e.is_defect:
+        parts = [changes["inspections"].filter(layer & product).select("lot_id")]
+        if e.statistic == "defect_density" and e.parameter != "total":
+            parts.append(changes["defect_counts"].filter(layer).select("lot_id"))
+        facts = changes["inspections"]
+    else:
+        param = pl.col("parameter").str.contains(glob_regex(e.parameter))
+        parts = [changes["measurements"].filter(layer & param & product).select("lot_id")]
+        facts = changes["measurements"]
+    firsts = [facts.select("lot_id", "first_file_id")]
+    if _uses_history(e):
+        hist = changes["process_history"].filter(pl.col("step") == e.step)
+        parts.append(hist.select("lot_id"))
+        col = "first_inspections" if e.is_defect else "first_measurements"
+        firsts.append(hist.select("lot_id", pl.col(col).alias("first_file_id")))
+    lots = pl.concat(parts).unique()
+    firsts = pl.concat(firsts).filter(pl.col("first_file_id").is_not_null()).unique("lot_id")
+    lots = lots.join(firsts, on="lot_id", how="left").sort("lot_id")
+    spec_changed = False
+    if not e.is_defect and e.spec_check:
+        spec = changes["spec_limits"]
+        spec_changed = spec.filter(pl.col("layer").str.contains(glob_regex(e.layer))
+                                   & pl.col("parameter").str.contains(glob_regex(e.parameter))).height > 0
+    return lots, spec_changed
