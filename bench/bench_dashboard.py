@@ -9,7 +9,7 @@ evaluate``'s engine, so signals and excursions are real.
 
 For each page the same calls ``dashboard/data.py`` makes are run ``--repeat`` times on one read-only
 connection (the page's unit of work; the file open is reported on its own row). The baseline replays, bare on
-the same connection (``execute(sql, params).fetchall()``), exactly the statements those calls sent to DuckDB:
+the same connection (``sql(text, params=...).to_arrow_table()``), exactly the statements those calls sent to DuckDB:
 they are recorded by a connection proxy, so the two sides run the same SQL text with the same parameters.
 
 Target (issue 7): p95 through the queries <= 1.5 x the bare p95, and < 1 s.
@@ -197,8 +197,8 @@ def _bare(con, statements: list) -> None:
                 cur.register(a, b)
             elif kind == "unregister":
                 cur.unregister(a)
-            else:
-                (cur.execute(a, b) if b is not None else cur.execute(a)).fetchall()
+            else:  # the cheapest full fetch: the result as one Arrow table, no Python objects per row
+                (cur.sql(a, params=b) if b is not None else cur.sql(a)).to_arrow_table()
     finally:
         cur.close()
 
