@@ -121,6 +121,7 @@ def evaluate_connection(con, *, full: bool = False, user: str = "unknown") -> Ru
         _evaluate_entry(ctx, e, full=full, watermark=wm_old)
     if full:
         _withdraw_removed_charts(ctx, [e.name for e in plan.entries])
+    _flush(ctx)
     from warehouse import excursions
 
     s.excursions_opened = excursions.group_signals(con, series_ids=sorted(ctx.touched), now=started,
@@ -141,6 +142,8 @@ class _Context:
         self.con, self.now, self.user, self.s = con, now, user, summary
         self.touched: set[int] = set()
         self.changes: dict[str, pl.DataFrame] = {}
+        self.pending_state: list[pl.DataFrame] = []
+        self.pending_signals: list[pl.DataFrame] = []
         self.limits = lim_mod.current_limits(con)
         rows = con.execute("SELECT series_id, chart, layer, parameter, split_json FROM chart_series").fetchall()
         self.series = {(r[1], r[2], r[3], r[4]): r[0] for r in rows}
@@ -456,24 +459,40 @@ def _write_state(ctx, e, pts, series, ew, cu, *, base_state, context=None) -> No
                                        "n_points": pl.Int64, "ewma": pl.Float64, "cusum_hi": pl.Float64,
                                        "cusum_lo": pl.Float64, "context_json": pl.String,
                                        "evaluated_at": pl.Datetime("us")})
-    con = ctx.con
-    con.register("new_state", frame)
-    try:
-        con.execute("DELETE FROM series_state WHERE series_id IN (SELECT series_id FROM new_state)")
-        con.execute("INSERT INTO series_state BY NAME SELECT * FROM new_state")
-    finally:
-        con.unregister("new_state")
+    ctx.pending_state.append(frame)  # written once per run by _flush
     for r in frame.to_dicts():
         ctx.state[r["series_id"]] = r
 
 
+def _flush(ctx: _Context) -> None:
+    """Write the run's series states and appended signals in one statement each."""
+    con = ctx.con
+    if ctx.pending_state:
+        con.register("new_state", pl.concat(ctx.pending_state))
+        try:
+            con.execute("DELETE FROM series_state WHERE series_id IN (SELECT series_id FROM new_state)")
+            con.execute("INSERT INTO series_state BY NAME SELECT * FROM new_state")
+        finally:
+            con.unregister("new_state")
+    if ctx.pending_signals:
+        con.register("cand", pl.concat(ctx.pending_signals))
+        try:
+            n = con.execute(
+                """INSERT INTO signals
+SELECT nextval('signal_id_seq'), c.series_id, c.point_key, c.lot_id, c.wafer_id, c.point_at, c.point_seq, c.rule,
+       c.value, c.statistic, c.limit_version, c.severity, ?, NULL, NULL, NULL
+FROM cand c ORDER BY c.series_id, c.point_seq, c.rule""",
+                [ctx.now],
+            ).fetchall()
+            ctx.s.signals_new += int(n[0][0]) if n else 0
+        finally:
+            con.unregister("cand")
+    ctx.pending_state, ctx.pending_signals = [], []
+
+
 def _reconcile(ctx: _Context, e: PlanEntry, sig: pl.DataFrame, pts: pl.DataFrame, series: list[int], *,
                recompute: bool) -> None:
-    """Write new signals, withdraw standing ones no longer found (recompute only).
-
-    Appended points are later than every evaluated point of their series, and a run is one transaction, so
-    they cannot have signals yet: the duplicate check is needed only when recomputing.
-    """
+    """Write new signals, withdraw standing ones no longer found (recompute only; appends are deferred)."""
     con = ctx.con
     cand = sig.select(
         pl.col("series").cast(pl.Int64).alias("series_id"), pl.col("point_key").cast(pl.String),
@@ -482,6 +501,11 @@ def _reconcile(ctx: _Context, e: PlanEntry, sig: pl.DataFrame, pts: pl.DataFrame
         pl.col("rule").cast(pl.String), pl.col("value").cast(pl.Float64), pl.col("statistic").cast(pl.Float64),
         pl.col("limit_version").cast(pl.Int64),
     )
+    if not recompute:
+        # appended points are later than every evaluated point of their series, and a run is one
+        # transaction, so they cannot have signals yet: insert them all at once with the run's others
+        ctx.pending_signals.append(cand.with_columns(pl.lit(e.severity).alias("severity")))
+        return
     rs = pl.DataFrame({"series_id": series}, schema={"series_id": pl.Int64})
     pk = pts.select(pl.col("series_id").cast(pl.Int64), "point_key", pl.col("value").alias("pv"))
     match = (
@@ -518,7 +542,7 @@ INSERT INTO signals
 SELECT nextval('signal_id_seq'), c.series_id, c.point_key, c.lot_id, c.wafer_id, c.point_at, c.point_seq, c.rule,
        c.value, c.statistic, c.limit_version, ?, ?, NULL, NULL, NULL
 FROM cand c
-WHERE {"NOT EXISTS (SELECT 1 FROM signals s WHERE s.withdrawn_at IS NULL AND " + match + ")" if recompute else "true"}
+WHERE NOT EXISTS (SELECT 1 FROM signals s WHERE s.withdrawn_at IS NULL AND {match})
 ORDER BY c.series_id, c.point_seq, c.rule""",
             [e.severity, ctx.now],
         ).fetchall()
