@@ -12,8 +12,13 @@ STATUSES = ("all", "loaded", "failed", "duplicate")
 
 def main() -> None:
     st.title("Data health")
-    status = widgets.choice("Ingest status", STATUSES, key="status", default="all")
-    file_id = widgets.int_param("file")
+    left, right = st.columns(2)
+    status = widgets.choice("Ingest status", STATUSES, key="status", default="all", container=left)
+    files = data.load_one("ingest_log", status=None, limit=100_000)
+    with_rejects = ["all", *[str(f) for f in files.filter(files["rows_rejected"] > 0)["file_id"].to_list()]]
+    picked = widgets.choice("Rejects of file", with_rejects, key="file", default="all", container=right,
+                            format_func=lambda v: "every file" if v == "all" else f"file {v}")  # fmt: skip
+    file_id = None if picked == "all" else int(picked)
     extent = data.load_one("data_time_range")
     last_at = extent["last_at"][0] if extent.height else None
     frames = data.load(
@@ -31,6 +36,7 @@ def main() -> None:
                            "rows_skipped", "rows_superseded", "loaded_by", "message", "size_bytes", "sha256"])  # fmt: skip
 
     st.subheader("Rejected rows" + (f" of file {file_id}" if file_id is not None else ""))
+    st.caption("Each row says where it was (file, line, column), what was found and how to fix it.")
     rej = frames["rejects"]
     if rej.height == 0:
         st.info("No rejected rows.")

@@ -278,6 +278,16 @@ def test_health_page_rejects_log_and_superseded_equal_queries(fixture_db):
     assert at.get("download_button")
 
 
+def test_health_page_file_filter_shows_that_files_rejects(fixture_db):
+    at = run_page("health", file="1")
+    assert not at.exception
+    assert at.selectbox(key="w_file").value == "1"
+    rej = table_with(at, "line", "reason")
+    assert (
+        rej["file_id"].to_list() == query(fixture_db, "rejects", file_id=1)["file_id"].to_list() == [1, 1, 1]
+    )
+
+
 def test_health_page_status_filter_shows_failed_files_only(fixture_db):
     at = run_page("health", status="failed")
     assert not at.exception
