@@ -15,7 +15,7 @@ from spc.attributes import c_points, laney_u_points, p_points, test_overdispersi
 from spc.capability import evaluate_capability
 from spc.rules import evaluate_rules
 
-REF = Path(__file__).resolve().parents[3] / "shared/reference"
+REF = Path(__file__).resolve().parents[1] / "data/reference"
 EXAMPLES = json.loads((REF / "worked_examples/examples.json").read_text())
 
 

@@ -17,7 +17,7 @@ from spc.ewma import EwmaParams, evaluate_ewma
 from spc.signals import evaluate_signals
 
 EXAMPLES = json.loads(
-    (Path(__file__).resolve().parents[3] / "shared/reference/worked_examples/examples.json").read_text()
+    (Path(__file__).resolve().parents[1] / "data/reference/worked_examples/examples.json").read_text()
 )
 SCHEMA = {"series": pl.String, "seq": pl.Int64, "value": pl.Float64, "center": pl.Float64, "sigma": pl.Float64}
 

@@ -14,7 +14,7 @@ from spc.rules import evaluate_rules
 from spc.shewhart import individuals_limits, xbar_points, xbar_r_limits, xbar_s_limits
 from spc.subgroups import summarize_subgroups
 
-REF = Path(__file__).resolve().parents[3] / "shared/reference"
+REF = Path(__file__).resolve().parents[1] / "data/reference"
 EXAMPLES = json.loads((REF / "worked_examples/examples.json").read_text())
 
 

@@ -10,7 +10,7 @@ import pytest
 
 from spc.variance import nested_components
 
-REF = Path(__file__).resolve().parents[3] / "shared/reference"
+REF = Path(__file__).resolve().parents[1] / "data/reference"
 EXAMPLES = json.loads((REF / "worked_examples/examples.json").read_text())
 
 
