@@ -202,20 +202,21 @@ def test_browser_disposition_is_stored_and_shown_in_audit_history(served, page):
 
 def test_browser_deep_link_reopens_the_same_view(served, browser, page):
     url, _ = served
-    page.goto(f"{url}/")
+    page.goto(f"{url}/?by=metrology_tool")
     settle(page, charts=1)
     select_option(page, "Window (days)", "14")
     page.wait_for_function("location.search.includes('days=14')", timeout=TIMEOUT_MS)
-    select_option(page, "Grid rows", "metrology tool")
-    page.wait_for_function("location.search.includes('by=metrology_tool')", timeout=TIMEOUT_MS)
     settle(page, charts=1)
     link = page.url
+    window = page.get_by_text("Window: ").first.inner_text()
+    assert "by=metrology_tool" in link  # every input of the view is in the address
     other = browser.new_context(viewport={"width": 1400, "height": 900}).new_page()
     try:
         other.goto(link)
         settle(other, charts=1)
         for label, value in (("Window (days)", "14"), ("Grid rows", "metrology tool")):
             assert selectbox(other, label).input_value() == value
+        assert other.get_by_text("Window: ").first.inner_text() == window
         assert "metrology tool" in other.locator("h3").filter(has_text="Out-of-control").first.inner_text()
     finally:
         other.context.close()
