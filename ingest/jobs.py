@@ -1,7 +1,10 @@
 """Ingest jobs: find export files, read them, pick a profile, run the adapters, hand frames to the warehouse.
 
-Each file is one unit of work: the warehouse is opened for it (with lock retry) and closed afterwards, and
-the file's rows go in one transaction. A file that cannot be read at all leaves only a ``source_files`` row
+Each file is one unit of work: its rows go in one transaction. The files of one ``ingest_paths`` run share
+a connection in batches (``store.Batch``): the warehouse is opened (with lock retry) for the first file of a
+batch and closed after the file that ends it, once the batch has been open for about 2 s or has taken 50
+files, so a waiting reader gets in between batches and no connection outlives a batch of work. A single
+``ingest_file`` call without a batch opens and closes the warehouse for that file alone. A file that cannot be read at all leaves only a ``source_files`` row
 with status ``failed`` and the message (written in its own small transaction after the rollback). The same
 bytes twice are recorded as ``duplicate`` and load nothing.
 
@@ -156,14 +159,16 @@ def ingest_paths(
     report = IngestReport()
     total = sum(f.stat().st_size for f in files)
     bar = _progress(total, progress)
+    batch = store.Batch(db, create=True, wait_s=wait_s, on_open=load.configure_for_ingest)
     try:
         for f in files:
             res = ingest_file(f, db=db, profiles=profiles, forced=profile, wait_s=wait_s, user=who,
-                              chunk_bytes=chunk_bytes, on_bytes=bar.update if bar else None)
+                              chunk_bytes=chunk_bytes, on_bytes=bar.update if bar else None, batch=batch)
             report.files.append(res)
             if on_file:
                 on_file(res)
     finally:
+        batch.close()
         if bar:
             bar.close()
     return report
@@ -194,47 +199,62 @@ def ingest_file(
     user: str,
     chunk_bytes: int = CHUNK_BYTES,
     on_bytes: Callable[[int], object] | None = None,
+    batch: store.Batch | None = None,
 ) -> FileResult:
-    """Ingest one file in one transaction (see the module doc)."""
-    shown = str(path)
-    sha, size = sha256_of(path)
-    fmt = export_format(path) or "csv"
-    with store.open_warehouse(db, create=True, wait_s=wait_s) as con:
-        load.configure_for_ingest(con)
-        first = load.find_loaded_file(con, sha)
-        if first is not None:
-            with store.transaction(con):
-                fid = load.record_file(con, status="duplicate", path=shown, sha256=sha, size=size, kind=None,
-                                       profile=None, user=user, message=f"same bytes as file {first}; nothing loaded")
-            if on_bytes:
-                on_bytes(size)
-            return FileResult(path=shown, status="duplicate", file_id=fid,
-                              message=f"same bytes as file {first}; nothing loaded")
-        state: dict[str, object] = {}
-        try:
-            with store.transaction(con):
-                fid = load.new_file_id(con)
-                counts = load.FileCounts()
-                result = _load_content(con, path, fmt, profiles=profiles, forced=forced, file_id=fid,
-                                       counts=counts, chunk_bytes=chunk_bytes, on_bytes=on_bytes, state=state)
-                rejects = pl.concat(counts.reject_frames) if counts.reject_frames else None
-                if rejects is None:
-                    from ingest.adapters.text import empty_rejects
+    """Ingest one file in one transaction (see the module doc).
 
-                    rejects = empty_rejects()
-                prof: Profile = state["profile"]  # type: ignore[assignment]
-                load.finish_file(con, file_id=fid, path=shown, sha256=sha, size=size, kind=prof.kind,
-                                 profile=prof.name, user=user, counts=counts, rejects=rejects)
-        except IngestError as exc:
-            if exc.path is None:
-                exc = _with_path(exc, shown)
-            prof = state.get("profile")  # type: ignore[assignment]
-            with store.transaction(con):
-                fid = load.record_file(con, status="failed", path=shown, sha256=sha, size=size,
-                                       kind=getattr(prof, "kind", None), profile=getattr(prof, "name", None),
-                                       user=user, message=str(exc))
-            return FileResult(path=shown, status="failed", file_id=fid, profile=getattr(prof, "name", None),
-                              kind=getattr(prof, "kind", None), message=str(exc))
+    ``batch`` lends the connection of a batch of files (``ingest_paths``); without one the warehouse is
+    opened for this file and closed afterwards.
+    """
+    sha, size = sha256_of(path)
+    if batch is not None:
+        with batch.unit() as con:
+            return _ingest_one(con, path, sha, size, profiles=profiles, forced=forced, user=user,
+                               chunk_bytes=chunk_bytes, on_bytes=on_bytes)
+    with store.Batch(db, create=True, wait_s=wait_s, max_units=1, on_open=load.configure_for_ingest) as own:
+        with own.unit() as con:
+            return _ingest_one(con, path, sha, size, profiles=profiles, forced=forced, user=user,
+                               chunk_bytes=chunk_bytes, on_bytes=on_bytes)
+
+
+def _ingest_one(con, path: Path, sha: str, size: int, *, profiles: list[Profile], forced: str | None, user: str,
+                chunk_bytes: int, on_bytes: Callable[[int], object] | None) -> FileResult:
+    shown = str(path)
+    fmt = export_format(path) or "csv"
+    first = load.find_loaded_file(con, sha)
+    if first is not None:
+        with store.transaction(con):
+            fid = load.record_file(con, status="duplicate", path=shown, sha256=sha, size=size, kind=None,
+                                   profile=None, user=user, message=f"same bytes as file {first}; nothing loaded")
+        if on_bytes:
+            on_bytes(size)
+        return FileResult(path=shown, status="duplicate", file_id=fid,
+                          message=f"same bytes as file {first}; nothing loaded")
+    state: dict[str, object] = {}
+    try:
+        with store.transaction(con):
+            fid = load.new_file_id(con)
+            counts = load.FileCounts()
+            result = _load_content(con, path, fmt, profiles=profiles, forced=forced, file_id=fid,
+                                   counts=counts, chunk_bytes=chunk_bytes, on_bytes=on_bytes, state=state)
+            rejects = pl.concat(counts.reject_frames) if counts.reject_frames else None
+            if rejects is None:
+                from ingest.adapters.text import empty_rejects
+
+                rejects = empty_rejects()
+            prof: Profile = state["profile"]  # type: ignore[assignment]
+            load.finish_file(con, file_id=fid, path=shown, sha256=sha, size=size, kind=prof.kind,
+                             profile=prof.name, user=user, counts=counts, rejects=rejects)
+    except IngestError as exc:
+        if exc.path is None:
+            exc = _with_path(exc, shown)
+        prof = state.get("profile")  # type: ignore[assignment]
+        with store.transaction(con):
+            fid = load.record_file(con, status="failed", path=shown, sha256=sha, size=size,
+                                   kind=getattr(prof, "kind", None), profile=getattr(prof, "name", None),
+                                   user=user, message=str(exc))
+        return FileResult(path=shown, status="failed", file_id=fid, profile=getattr(prof, "name", None),
+                          kind=getattr(prof, "kind", None), message=str(exc))
     rejected = rejects.select(pl.col("line").n_unique()).item() if rejects.height else 0
     return FileResult(path=shown, status="loaded", profile=prof.name, kind=prof.kind, file_id=fid,
                       rows_loaded=counts.loaded, rows_rejected=rejected, rows_superseded=counts.superseded,
@@ -368,9 +388,16 @@ def _load_content(con, path: Path, fmt: str, *, profiles: list[Profile], forced:
             pool = [p for p in profiles if p.format == "csv"]
             bom = bom_encoding(head)
 
-            def view(p: Profile) -> list[str]:
-                return header_fields(decode_head(head[:1 << 20], p.encoding), delimiter=p.delimiter,
-                                     header_line=p.header_line)
+            texts: dict[str, str] = {}
+            views: dict[tuple[str, str, int], list[str]] = {}
+
+            def view(p: Profile) -> list[str]:  # the header as each profile reads it (decoded once per dialect)
+                k = (p.encoding, p.delimiter, p.header_line)
+                if k not in views:
+                    if p.encoding not in texts:
+                        texts[p.encoding] = decode_head(head[:1 << 20], p.encoding)
+                    views[k] = header_fields(texts[p.encoding], delimiter=p.delimiter, header_line=p.header_line)
+                return list(views[k])
 
             first_line = decode_head(head[:1 << 16], bom or "utf-8").splitlines()[:1]
             shown_header = first_line[0][:300] if first_line else ""

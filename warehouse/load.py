@@ -162,28 +162,47 @@ def supersede_file(con: duckdb.DuckDBPyConnection, tables: list[str], *, file_id
 
 
 def _supersede(con: duckdb.DuckDBPyConnection, t: schema.Table, *, file_id: int, counts: FileCounts) -> None:
+    """Older current rows of the file's groups -> superseded by ``file_id``.
+
+    The file's distinct groups are collected first (its rows sit at the end of the table, so the scan on
+    ``_source_file_id = file_id`` skips the older row groups by their zone maps) and hash-joined with the
+    table: only rows whose group matches are touched, and DuckDB pushes the groups' min/max into the scan.
+    Measured on the 12-day demo (310k rows): 0.6-0.9 s a file with a correlated EXISTS, ~0.05 s this way.
+    """
     g_new = _group_exprs(t, "f")
     g_old = _group_exprs(t, "m")
     names = [f"g{i}" for i in range(len(g_new))]
-    groups = (f"SELECT DISTINCT {', '.join(f'{e} AS {n}' for e, n in zip(g_new, names, strict=True))} "
-              f"FROM {_q(t.name)} f WHERE f.{_q(schema.C_SOURCE_FILE_ID)} = ?")
-    match = " AND ".join(f"g.{n} IS NOT DISTINCT FROM {e}" for n, e in zip(names, g_old, strict=True))
-    cond = (f"m.{_q(schema.C_SUPERSEDED_BY)} IS NULL AND m.{_q(schema.C_SOURCE_FILE_ID)} < ? "
-            f"AND EXISTS (SELECT 1 FROM ({groups}) g WHERE {match})")
-    hits = con.execute(
-        f"SELECT m.{_q(schema.C_SOURCE_FILE_ID)}, m.lot_id, count(*) FROM {_q(t.name)} m WHERE {cond} GROUP BY ALL",
-        [file_id, file_id],
-    ).fetchall()
-    if not hits:
-        return
-    con.execute(f"UPDATE {_q(t.name)} m SET {_q(schema.C_SUPERSEDED_BY)} = ? WHERE {cond}",
-                [file_id, file_id, file_id])
+    con.execute(
+        f"CREATE OR REPLACE TEMP TABLE __lotline_groups AS SELECT DISTINCT "
+        f"{', '.join(f'{e} AS {n}' for e, n in zip(g_new, names, strict=True))} "
+        f"FROM {_q(t.name)} f WHERE f.{_q(schema.C_SOURCE_FILE_ID)} = ?",
+        [file_id],
+    )
+    try:
+        match = " AND ".join(f"g.{n} IS NOT DISTINCT FROM {e}" for n, e in zip(names, g_old, strict=True))
+        cond = f"m.{_q(schema.C_SUPERSEDED_BY)} IS NULL AND m.{_q(schema.C_SOURCE_FILE_ID)} < ?"
+        hits = con.execute(
+            f"SELECT m.{_q(schema.C_SOURCE_FILE_ID)}, m.lot_id, count(*) FROM {_q(t.name)} m "
+            f"JOIN __lotline_groups g ON {match} WHERE {cond} GROUP BY ALL",
+            [file_id],
+        ).fetchall()
+        if not hits:
+            return
+        con.execute(
+            f"UPDATE {_q(t.name)} m SET {_q(schema.C_SUPERSEDED_BY)} = ? FROM __lotline_groups g "
+            f"WHERE {match} AND {cond}",
+            [file_id, file_id],
+        )
+    finally:
+        con.execute("DROP TABLE IF EXISTS __lotline_groups")
     for old_id, lot, n in hits:
         counts.supersessions[(int(old_id), t.name, str(lot))] += int(n)
         counts.superseded += int(n)
 
 
 def _cascade(con: duckdb.DuckDBPyConnection, table: str, parent: str, *, file_id: int, counts: FileCounts) -> None:
+    if not any(t == parent for _, t, _ in counts.supersessions):
+        return  # this file superseded no parent row, so no child row follows
     keys = [k for k in schema.table(table).names if k in schema.table(parent).natural_key]
     match = " AND ".join(f"p.{_q(k)} = m.{_q(k)}" for k in keys)
     cond = (f"m.{_q(schema.C_SUPERSEDED_BY)} IS NULL AND m.{_q(schema.C_SOURCE_FILE_ID)} < ? AND EXISTS ("

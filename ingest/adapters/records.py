@@ -21,10 +21,16 @@ from warehouse.errors import IngestError
 
 
 def _text(v: Any) -> str | None:
+    """A JSON value as the text the mapping parses: strings as they are, anything else as JSON text."""
     if v is None:
         return None
-    if isinstance(v, str):
+    tv = type(v)
+    if tv is str:
         return v
+    if tv is int:  # same text as json.dumps, several times cheaper
+        return str(v)
+    if tv is float and v - v == 0:  # finite (json.dumps writes NaN/Infinity itself)
+        return repr(v)
     return json.dumps(v)
 
 

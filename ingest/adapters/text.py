@@ -78,7 +78,12 @@ def decode_head(head: bytes, encoding: str) -> str:
 
 def header_fields(text: str, *, delimiter: str, header_line: int) -> list[str]:
     """The header's fields (line ``header_line``, 1-based), stripped of blanks and quotes."""
-    lines = text.splitlines()
+    cut = -1
+    for _ in range(header_line):  # split only the lines up to the header (the text may be a 1 MB block)
+        cut = text.find("\n", cut + 1)
+        if cut < 0:
+            break
+    lines = (text if cut < 0 else text[: cut + 1]).splitlines()
     if len(lines) < header_line:
         return []
     row = next(csv.reader([lines[header_line - 1]], delimiter=delimiter))
