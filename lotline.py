@@ -669,11 +669,19 @@ def limits_freeze_cmd(db, chart, series_id, window, first, reason, user):
 @db_option
 @click.option("--full", is_flag=True, help="Recompute every series from its first point.")
 @click.option("--json", "as_json", is_flag=True, help="Print the run summary as JSON.")
-def evaluate_cmd(db, full: bool, as_json: bool):
+@click.option("--engine", type=click.Choice(["local", "spark"]), default="local", show_default=True,
+              help="local: the warehouse file; spark: a Parquet lake (see `lotline lake export`).")
+@click.option("--lake", "lake_dir", type=click.Path(file_okay=False), default=None,
+              help="Lake folder to evaluate (--engine spark).")
+@click.option("--master", default="local[2]", show_default=True, help="Spark master URL (--engine spark).")
+def evaluate_cmd(db, full: bool, as_json: bool, engine: str = "local", lake_dir=None, master: str = "local[2]"):
     """Evaluate every chart of the plan: new signals, withdrawn ones, excursions (incremental by default).
 
     Example: lotline evaluate --db lotline.duckdb
     """
+    if engine == "spark":
+        _lake_evaluate(lake_dir, master, as_json)
+        return
     from warehouse import evaluate, store
     from warehouse.errors import LotlineError
 
@@ -996,6 +1004,69 @@ def serve_cmd(db, port: int, address: str, user_header: str | None):
         fail(FileNotFoundError(f"{path}: warehouse not found. Fix: run `lotline demo` or `lotline ingest PATH` first, or pass --db."))
     click.echo(f"Serving {path} at http://{address}:{port} (Ctrl-C stops)")
     sys.exit(run_server(path, port=port, address=address, user_header=user_header))
+
+
+# --- lake commands ---
+
+
+@cli.group("lake")
+def lake_group():
+    """Parquet lake: export the warehouse for a distributed engine (see docs/scaling.md).
+
+    Example: lotline lake export lake/ --db lotline.duckdb
+    """
+
+
+@lake_group.command("export")
+@click.argument("lake_dir", metavar="DIR", type=click.Path(file_okay=False))
+@db_option
+@click.option("--json", "as_json", is_flag=True, help="Print rows and files written per table as JSON.")
+def lake_export_cmd(lake_dir, db, as_json: bool):
+    """Append what is new in the warehouse to the lake at DIR (never rewrites its files).
+
+    Example: lotline lake export lake/ --db lotline.duckdb
+    """
+    from warehouse import lake, store
+    from warehouse.errors import LotlineError
+
+    try:
+        summary = lake.export_lake(store.resolve_db_path(db), lake_dir)
+    except LotlineError as exc:
+        fail(exc)
+    if as_json:
+        echo_json(summary)
+        return
+    rows = sum(v["rows"] for v in summary.values())
+    files = sum(v["files"] for v in summary.values())
+    click.echo(f"lake {lake_dir}: {rows} rows in {files} new files")
+    for name, v in summary.items():
+        if v["files"]:
+            click.echo(f"  {name}: {v['rows']} rows, {v['files']} files")
+
+
+def _lake_evaluate(lake_dir, master: str, as_json: bool) -> None:
+    """`lotline evaluate --engine spark`: the plan over the lake on a Spark session."""
+    from warehouse.errors import ConfigError, LotlineError
+
+    if not lake_dir:
+        fail(ConfigError("--engine spark needs a lake", fix="pass --lake DIR (made by `lotline lake export DIR`)"), 2)
+    try:
+        from warehouse import spark_engine
+
+        s = spark_engine.evaluate_lake(lake_dir, master=master)
+    except LotlineError as exc:
+        fail(exc)
+    if as_json:
+        echo_json(s)
+        return
+    click.echo(
+        f"spark evaluation of {lake_dir}: {s['series']} series, {s['points']} points, {s['signals']} signals "
+        f"written to {s['table']} snapshot {s['snapshot']} (session {s['session_seconds']} s, "
+        f"evaluation {s['seconds']} s)"
+    )
+    for n in s["notices"]:
+        click.echo(f"notice: {n}")
+    click.echo(MONITORING_CAUTION)
 
 
 # --- demo commands ---
