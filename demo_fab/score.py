@@ -10,8 +10,9 @@ How a fault is matched, by kind (the kinds of ``demo_fab.faults``):
   excursion matches when its lots overlap the fault's affected lots, its parameter is the fault's (for
   defect faults: its layer is), and its first point is inside the fault window. Detection time is the
   earliest matching excursion's first point. Attributed: a matching excursion's series is split by the
-  responsible tool/chamber, or the drill-down (``warehouse.drilldown``, when present) ranks it first; for a
-  metrology fault, the series' metrology tool is the responsible one or the process-or-metrology check
+  responsible tool/chamber, or else the drill-down's commonality (``warehouse.drilldown``) ranks it first; for a
+  metrology fault, only excursions whose signalled points that tool measured match,
+  and attribution means the series' metrology tool is the responsible one or the process-or-metrology check
   says "likely metrology".
 - scratch: the defect-cluster finder (``spc.spatial``) finds a scratch on the affected wafer.
 - tool stops reporting: the data-freshness query flags the tool as stale at the end of the data.
@@ -33,6 +34,8 @@ import polars as pl
 from spc.inspection import evaluate_density_trend
 from spc.spatial import find_defect_clusters
 from warehouse import queries, store
+from warehouse.drilldown import explain_excursion
+from warehouse.errors import LotlineError
 
 EXCURSION_KINDS = ("chamber_shift", "slow_drift", "bake_plate_edge", "metrology_offset", "metrology_drift",
                    "defect_burst")
@@ -139,6 +142,12 @@ def _score_excursion_fault(con, f, row, exc, start, stop, resp) -> tuple[dict, s
         cand = cand.filter(pl.col("parameter") == param)
         if f.get("layer"):
             cand = cand.filter(pl.col("layer") == f["layer"])
+    mtool = resp.get("metrology_tool")
+    if mtool and not resp.get("process_tool"):
+        # A metrology fault shows only in what that tool measured: keep excursions whose signalled points
+        # that tool measured (on any chart: an offset also trips the process charts it feeds).
+        tools = queries.excursion_point_tools(con).filter(pl.col("metrology_tool") == mtool)
+        cand = cand.filter(pl.col("excursion_id").is_in(tools["excursion_id"].to_list()))
     cand = cand.filter(pl.col("lots").list.eval(pl.element().is_in(sorted(fault_lots))).list.any())
     if not cand.height:
         row["how"] = "no excursion on the fault's lots in its window"
@@ -164,29 +173,25 @@ def _lots_before(con, f: dict, detected_at: datetime, start: datetime) -> int:
 
 def _attribution(con, cand: pl.DataFrame, resp: dict) -> tuple[bool, str]:
     tool, chamber, mtool = resp.get("process_tool"), resp.get("chamber"), resp.get("metrology_tool")
-    for r in cand.iter_rows(named=True):
+    for r in cand.sort("first_at").iter_rows(named=True):
         if mtool and r.get("metrology_tool") == mtool:
             return True, f"series split by metrology tool {mtool}"
         if tool and r.get("process_tool") == tool and (chamber is None or r.get("chamber") in (None, chamber)):
             if chamber is None or r.get("chamber") == chamber:
                 return True, f"series split by {tool}/{chamber}" if chamber else f"series split by {tool}"
-    try:
-        from warehouse import drilldown  # the drill-down analytics, when installed
-    except ImportError:
-        return False, "split does not name the responsible tool"
     first = cand.sort("first_at").row(0, named=True)
     try:
-        ex = drilldown.explain_excursion_connection(con, int(first["excursion_id"]))
-    except Exception as exc:  # noqa: BLE001 - scoring reports, it does not fail on one analysis
+        ex = explain_excursion(con, int(first["excursion_id"]))
+    except LotlineError as exc:
         return False, f"drill-down failed: {exc}"
     if mtool:
-        ok = getattr(ex, "verdict", None) == "likely metrology"
-        return ok, f"process-or-metrology verdict: {getattr(ex, 'verdict', None)}"
-    top = ex.top_candidate() if hasattr(ex, "top_candidate") else None
-    if top is None:
+        return ex.verdict == "likely metrology", f"process-or-metrology verdict: {ex.verdict}"
+    com = ex.commonality
+    if com is None or not com.height:
         return False, "commonality found no candidate"
+    top = com.row(0, named=True)
     ok = top.get("process_tool") == tool and (chamber is None or top.get("chamber") == chamber)
-    return ok, f"commonality ranks {top.get('process_tool')}/{top.get('chamber')} first"
+    return ok, f"commonality ranks {top.get('candidate')} first"
 
 
 def _first_wafer_with_defects(con, lot: str, layer: str) -> str | None:

@@ -21,6 +21,7 @@ __all__ = [
     "chart_point_count",
     "excursion_detail",
     "excursion_history",
+    "excursion_point_tools",
     "excursion_signals",
     "excursions_by_tool_layer_day",
     "ingest_log",
@@ -623,3 +624,21 @@ WHERE sample_kind = 'standard_defect' AND (?::VARCHAR IS NULL OR inspection_tool
 ORDER BY inspection_tool, inspected_at
 """
     return _frame(con, sql, [inspection_tool, inspection_tool])
+
+
+
+
+def excursion_point_tools(con: Con) -> pl.DataFrame:
+    """The metrology tools that measured the signalled points of every excursion on a measurement chart.
+
+    Columns: excursion_id, metrology_tool.
+    """
+    sql = """
+SELECT DISTINCT g.excursion_id, m.metrology_tool
+FROM signals g JOIN chart_series s USING (series_id)
+JOIN measurements m ON m.lot_id = g.lot_id AND (g.wafer_id IS NULL OR m.wafer_id = g.wafer_id)
+    AND m.layer = s.layer AND m.parameter = s.parameter AND m._superseded_by IS NULL
+WHERE g.excursion_id IS NOT NULL AND g.withdrawn_at IS NULL
+ORDER BY 1, 2
+"""
+    return _frame(con, sql)
