@@ -44,7 +44,9 @@ def main() -> None:
         )
         for name in PAGES
     ]  # fmt: skip
-    pages.append(st.Page("views/tool_health.py", title="Tool health", icon=":material/build:", url_path="tool-health"))
+    pages.append(
+        st.Page("views/tool_health.py", title="Tool health", icon=":material/build:", url_path="tool-health")
+    )
     st.navigation(pages, position="sidebar").run()
 
 

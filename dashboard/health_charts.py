@@ -19,8 +19,12 @@ __all__ = [
     "shrink_figure",
 ]
 
-_LAYOUT = dict(template="plotly_white", height=360, margin=dict(l=60, r=20, t=50, b=50),
-               legend=dict(orientation="h", y=-0.2))
+_LAYOUT = dict(
+    template="plotly_white",
+    height=360,
+    margin=dict(l=60, r=20, t=50, b=50),
+    legend=dict(orientation="h", y=-0.2),
+)
 
 
 def _empty(title: str, text: str = "No data for this week.") -> go.Figure:
@@ -38,15 +42,40 @@ def monitor_figure(daily: pl.DataFrame) -> go.Figure:
     fig = go.Figure()
     for tool, g in daily.sort("tool", "day").group_by("tool", maintain_order=True):
         name = tool[0]
-        fig.add_trace(go.Scatter(x=g["day"], y=g["deviation_nm"], mode="markers", name=f"{name} daily",
-                                 legendgroup=name, marker=dict(size=5, opacity=0.5)))
-        fig.add_trace(go.Scatter(x=g["day"], y=g["ewma_deviation_nm"], mode="lines", name=f"{name} EWMA",
-                                 legendgroup=name))
+        fig.add_trace(
+            go.Scatter(
+                x=g["day"],
+                y=g["deviation_nm"],
+                mode="markers",
+                name=f"{name} daily",
+                legendgroup=name,
+                marker=dict(size=5, opacity=0.5),
+            )
+        )
+        fig.add_trace(
+            go.Scatter(
+                x=g["day"], y=g["ewma_deviation_nm"], mode="lines", name=f"{name} EWMA", legendgroup=name
+            )
+        )
     lim = daily.group_by("day").agg(pl.col("ewma_limit_nm").mean()).sort("day")
-    fig.add_trace(go.Scatter(x=lim["day"], y=lim["ewma_limit_nm"], mode="lines", name="EWMA limit (mean)",
-                             line=dict(dash="dash", color="grey")))
-    fig.add_trace(go.Scatter(x=lim["day"], y=-lim["ewma_limit_nm"], mode="lines", showlegend=False,
-                             line=dict(dash="dash", color="grey")))
+    fig.add_trace(
+        go.Scatter(
+            x=lim["day"],
+            y=lim["ewma_limit_nm"],
+            mode="lines",
+            name="EWMA limit (mean)",
+            line=dict(dash="dash", color="grey"),
+        )
+    )
+    fig.add_trace(
+        go.Scatter(
+            x=lim["day"],
+            y=-lim["ewma_limit_nm"],
+            mode="lines",
+            showlegend=False,
+            line=dict(dash="dash", color="grey"),
+        )
+    )
     fig.update_layout(title=title, yaxis_title="nm from baseline", **_LAYOUT)
     return fig
 
@@ -58,10 +87,27 @@ def repeat_sd_figure(daily: pl.DataFrame) -> go.Figure:
         return _empty(title)
     fig = go.Figure()
     for tool, g in daily.sort("tool", "day").group_by("tool", maintain_order=True):
-        fig.add_trace(go.Scatter(x=g["day"], y=g["sd_nm"], mode="lines+markers", name=tool[0],
-                                 legendgroup=tool[0], marker=dict(size=4)))
-        fig.add_trace(go.Scatter(x=g["day"], y=g["s_ucl"], mode="lines", name=f"{tool[0]} UCL",
-                                 legendgroup=tool[0], line=dict(dash="dot"), showlegend=False))
+        fig.add_trace(
+            go.Scatter(
+                x=g["day"],
+                y=g["sd_nm"],
+                mode="lines+markers",
+                name=tool[0],
+                legendgroup=tool[0],
+                marker=dict(size=4),
+            )
+        )
+        fig.add_trace(
+            go.Scatter(
+                x=g["day"],
+                y=g["s_ucl"],
+                mode="lines",
+                name=f"{tool[0]} UCL",
+                legendgroup=tool[0],
+                line=dict(dash="dot"),
+                showlegend=False,
+            )
+        )
     fig.update_layout(title=title, yaxis_title="SD of repeats (nm)", **_LAYOUT)
     return fig
 
@@ -86,11 +132,21 @@ def fleet_offset_figure(card: pl.DataFrame) -> go.Figure:
     c = card.filter(pl.col("fleet_offset_nm").is_not_null()).sort("tool")
     if c.height == 0:
         return _empty(title)
-    fig = go.Figure(go.Scatter(
-        x=c["tool"], y=c["fleet_offset_nm"], mode="markers", marker=dict(size=10), name="offset",
-        error_y=dict(type="data", symmetric=False, array=(c["fleet_offset_hi"] - c["fleet_offset_nm"]).to_list(),
-                     arrayminus=(c["fleet_offset_nm"] - c["fleet_offset_lo"]).to_list()),
-    ))
+    fig = go.Figure(
+        go.Scatter(
+            x=c["tool"],
+            y=c["fleet_offset_nm"],
+            mode="markers",
+            marker=dict(size=10),
+            name="offset",
+            error_y=dict(
+                type="data",
+                symmetric=False,
+                array=(c["fleet_offset_hi"] - c["fleet_offset_nm"]).to_list(),
+                arrayminus=(c["fleet_offset_nm"] - c["fleet_offset_lo"]).to_list(),
+            ),
+        )
+    )
     fig.add_hline(y=0, line_color="grey")
     fig.update_layout(title=title, yaxis_title="nm", **_LAYOUT)
     return fig
@@ -107,12 +163,24 @@ def accuracy_figure(pairs: pl.DataFrame) -> go.Figure:
         "tool", "reference_method", maintain_order=True
     ):
         name = f"{tool} / {method}"
-        fig.add_trace(go.Scatter(x=g["reference"], y=g["measured"], mode="markers", name=name, legendgroup=name))
+        fig.add_trace(
+            go.Scatter(x=g["reference"], y=g["measured"], mode="markers", name=name, legendgroup=name)
+        )
         b, a = g["fit_slope"][0], g["fit_offset_nm"][0]
         if b is not None and a is not None:
-            fig.add_trace(go.Scatter(x=[lo, hi], y=[a + b * lo, a + b * hi], mode="lines", legendgroup=name,
-                                     showlegend=False, line=dict(width=1)))
-    fig.add_trace(go.Scatter(x=[lo, hi], y=[lo, hi], mode="lines", name="y = x", line=dict(dash="dash", color="grey")))
+            fig.add_trace(
+                go.Scatter(
+                    x=[lo, hi],
+                    y=[a + b * lo, a + b * hi],
+                    mode="lines",
+                    legendgroup=name,
+                    showlegend=False,
+                    line=dict(width=1),
+                )
+            )
+    fig.add_trace(
+        go.Scatter(x=[lo, hi], y=[lo, hi], mode="lines", name="y = x", line=dict(dash="dash", color="grey"))
+    )
     fig.update_layout(title=title, xaxis_title="reference (nm)", yaxis_title="CD-SEM (nm)", **_LAYOUT)
     return fig
 
@@ -124,11 +192,22 @@ def capture_trend_figure(trend: pl.DataFrame) -> go.Figure:
         return _empty(title, "No standard-defect inspections.")
     fig = go.Figure()
     for tool, g in trend.sort("tool", "inspected_at").group_by("tool", maintain_order=True):
-        fig.add_trace(go.Scatter(
-            x=g["inspected_at"], y=g["capture_rate"], mode="lines+markers", name=tool[0], marker=dict(size=4),
-            error_y=dict(type="data", symmetric=False, array=(g["capture_hi"] - g["capture_rate"]).to_list(),
-                         arrayminus=(g["capture_rate"] - g["capture_lo"]).to_list(), thickness=0.5),
-        ))
+        fig.add_trace(
+            go.Scatter(
+                x=g["inspected_at"],
+                y=g["capture_rate"],
+                mode="lines+markers",
+                name=tool[0],
+                marker=dict(size=4),
+                error_y=dict(
+                    type="data",
+                    symmetric=False,
+                    array=(g["capture_hi"] - g["capture_rate"]).to_list(),
+                    arrayminus=(g["capture_rate"] - g["capture_lo"]).to_list(),
+                    thickness=0.5,
+                ),
+            )
+        )
     fig.update_layout(title=title, yaxis_title="capture rate", yaxis_tickformat=".0%", **_LAYOUT)
     return fig
 
@@ -142,8 +221,14 @@ def ooc_rate_figure(process: pl.DataFrame, top: int = 20) -> go.Figure:
     if p.height == 0:
         return _empty(title)
     label = (p["process_tool"] + "/" + p["chamber"]).to_list()
-    fig = go.Figure(go.Bar(x=label, y=p["ooc_rate"], text=[f"{v:.0%}" for v in p["ooc_rate"]],
-                           customdata=p.select("signalled_points", "chart_points").rows(),
-                           hovertemplate="%{x}: %{y:.1%} (%{customdata[0]} of %{customdata[1]} points)<extra></extra>"))
+    fig = go.Figure(
+        go.Bar(
+            x=label,
+            y=p["ooc_rate"],
+            text=[f"{v:.0%}" for v in p["ooc_rate"]],
+            customdata=p.select("signalled_points", "chart_points").rows(),
+            hovertemplate="%{x}: %{y:.1%} (%{customdata[0]} of %{customdata[1]} points)<extra></extra>",
+        )
+    )
     fig.update_layout(title=title, yaxis_title="OOC rate", yaxis_tickformat=".0%", **_LAYOUT)
     return fig

@@ -20,8 +20,15 @@ import polars as pl
 
 from dashboard import health_charts as hc
 
-__all__ = ["CDSEM_COLUMNS", "INSPECTION_COLUMNS", "PROCESS_COLUMNS", "print_pdf", "render_weekly_report",
-           "scorecard_frame", "scorecard_rows"]
+__all__ = [
+    "CDSEM_COLUMNS",
+    "INSPECTION_COLUMNS",
+    "PROCESS_COLUMNS",
+    "print_pdf",
+    "render_weekly_report",
+    "scorecard_frame",
+    "scorecard_rows",
+]
 
 Cell = Callable[[dict], str]
 
@@ -36,6 +43,7 @@ def _num(col: str, nd: int = 2, signed: bool = False) -> Cell:
         if isinstance(v, int):
             return str(v)
         return f"{v:+.{nd}f}" if signed else f"{v:.{nd}f}"
+
     return f
 
 
@@ -50,6 +58,7 @@ def _interval(col: str, lo: str, hi: str, nd: int = 2, pct: bool = False, signed
             return ""
         fmt = (lambda x: f"{x:.1%}") if pct else (lambda x: f"{x:+.{nd}f}" if signed else f"{x:.{nd}f}")
         return f"{fmt(v)} [{fmt(a)}, {fmt(b)}]" if a is not None and b is not None else fmt(v)
+
     return f
 
 
@@ -67,9 +76,15 @@ CDSEM_COLUMNS: Sequence[tuple[str, Cell]] = (
     ("EWMA drift (nm)", _num("drift_nm", signed=True)),
     ("shape", _text("change_shape")),
     ("drift rate (nm/day)", _num("drift_rate_nm_per_day", 3, signed=True)),
-    ("step (nm) / day", lambda r: "" if r.get("step_nm") is None else f"{r['step_nm']:+.2f} / {r.get('step_day')}"),
+    (
+        "step (nm) / day",
+        lambda r: "" if r.get("step_nm") is None else f"{r['step_nm']:+.2f} / {r.get('step_day')}",
+    ),
     ("bias (nm)", _num("bias_nm", signed=True)),
-    ("offset to fleet (nm) [95 %]", _interval("fleet_offset_nm", "fleet_offset_lo", "fleet_offset_hi", signed=True)),
+    (
+        "offset to fleet (nm) [95 %]",
+        _interval("fleet_offset_nm", "fleet_offset_lo", "fleet_offset_hi", signed=True),
+    ),
     ("matching slope", _interval("matching_slope", "matching_slope_lo", "matching_slope_hi")),
     ("repeatability (nm)", _num("repeatability_nm", 3)),
     ("reproducibility (nm)", _num("reproducibility_nm", 3)),
@@ -81,8 +96,13 @@ CDSEM_COLUMNS: Sequence[tuple[str, Cell]] = (
     ("TMU (nm)", _num("tmu_nm")),
 )
 PT_COLUMNS: Sequence[tuple[str, Cell]] = (
-    ("CD-SEM", _text("tool")), ("layer", _text("layer")), ("product", _text("product")), ("LSL", _num("lsl")),
-    ("USL", _num("usl")), ("sigma meas (nm)", _num("reproducibility_nm", 3)), ("P/T", _num("p_to_t", 3)),
+    ("CD-SEM", _text("tool")),
+    ("layer", _text("layer")),
+    ("product", _text("product")),
+    ("LSL", _num("lsl")),
+    ("USL", _num("usl")),
+    ("sigma meas (nm)", _num("reproducibility_nm", 3)),
+    ("P/T", _num("p_to_t", 3)),
     ("verdict", _text("verdict")),
 )
 INSPECTION_COLUMNS: Sequence[tuple[str, Cell]] = (
@@ -111,20 +131,38 @@ PROCESS_COLUMNS: Sequence[tuple[str, Cell]] = (
     ("repeat offender", _flag("repeat_offender")),
 )
 LIMIT_COLUMNS: Sequence[tuple[str, Cell]] = (
-    ("chart", _text("chart")), ("layer", _text("layer")), ("series", _text("split_json")),
-    ("version", _num("version")), ("centre", _num("center", 3)), ("previous centre", _num("previous_center", 3)),
-    ("sigma", _num("sigma", 3)), ("frozen", _text("frozen_at")), ("by", _text("frozen_by")), ("reason", _text("reason")),
+    ("chart", _text("chart")),
+    ("layer", _text("layer")),
+    ("series", _text("split_json")),
+    ("version", _num("version")),
+    ("centre", _num("center", 3)),
+    ("previous centre", _num("previous_center", 3)),
+    ("sigma", _num("sigma", 3)),
+    ("frozen", _text("frozen_at")),
+    ("by", _text("frozen_by")),
+    ("reason", _text("reason")),
 )
 NEW_EXCURSION_COLUMNS: Sequence[tuple[str, Cell]] = (
-    ("excursion", _num("excursion_id")), ("chart", _text("chart")), ("layer", _text("layer")),
-    ("process tool", _text("process_tool")), ("chamber", _text("chamber")), ("metrology tool", _text("metrology_tool")),
-    ("state", _text("state")), ("severity", _text("severity")), ("first point", _text("first_at")),
+    ("excursion", _num("excursion_id")),
+    ("chart", _text("chart")),
+    ("layer", _text("layer")),
+    ("process tool", _text("process_tool")),
+    ("chamber", _text("chamber")),
+    ("metrology tool", _text("metrology_tool")),
+    ("state", _text("state")),
+    ("severity", _text("severity")),
+    ("first point", _text("first_at")),
     ("signals", _num("n_signals")),
 )
 CLOSED_COLUMNS: Sequence[tuple[str, Cell]] = (
-    ("excursion", _num("excursion_id")), ("chart", _text("chart")), ("closed", _text("changed_at")),
-    ("by", _text("changed_by")), ("classification", _text("classification")), ("cause", _text("cause_category")),
-    ("action", _text("action")), ("comment", _text("comment")),
+    ("excursion", _num("excursion_id")),
+    ("chart", _text("chart")),
+    ("closed", _text("changed_at")),
+    ("by", _text("changed_by")),
+    ("classification", _text("classification")),
+    ("cause", _text("cause_category")),
+    ("action", _text("action")),
+    ("comment", _text("comment")),
 )
 
 
@@ -136,18 +174,31 @@ def scorecard_rows(frame: pl.DataFrame, columns: Sequence[tuple[str, Cell]]) -> 
 def scorecard_frame(frame: pl.DataFrame, columns: Sequence[tuple[str, Cell]]) -> pl.DataFrame:
     """A scorecard as a frame of display strings, one column per header (for interactive tables)."""
     rows = scorecard_rows(frame, columns)
-    return pl.DataFrame(rows, schema={h: pl.String for h, _ in columns}, orient="row") if rows else pl.DataFrame(
-        schema={h: pl.String for h, _ in columns})
+    return (
+        pl.DataFrame(rows, schema={h: pl.String for h, _ in columns}, orient="row")
+        if rows
+        else pl.DataFrame(schema={h: pl.String for h, _ in columns})
+    )
 
 
-def _table(frame: pl.DataFrame, columns: Sequence[tuple[str, Cell]], *, css: str, limit: int | None = None,
-           empty: str = "Nothing this week.") -> str:
+def _table(
+    frame: pl.DataFrame,
+    columns: Sequence[tuple[str, Cell]],
+    *,
+    css: str,
+    limit: int | None = None,
+    empty: str = "Nothing this week.",
+) -> str:
     if frame.height == 0:
         return f"<p class='empty'>{html.escape(empty)}</p>"
     rows = scorecard_rows(frame.head(limit) if limit else frame, columns)
     head = "".join(f"<th>{html.escape(h)}</th>" for h, _ in columns)
     body = "".join("<tr>" + "".join(f"<td>{html.escape(v)}</td>" for v in r.values()) + "</tr>" for r in rows)
-    more = f"<p class='note'>Showing {limit} of {frame.height} rows.</p>" if limit and frame.height > limit else ""
+    more = (
+        f"<p class='note'>Showing {limit} of {frame.height} rows.</p>"
+        if limit and frame.height > limit
+        else ""
+    )
     return f"<table class='{css}'><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>{more}"
 
 
@@ -199,17 +250,26 @@ def render_weekly_report(h) -> str:
     parts.append("<h3>P/T per measured layer</h3>")
     parts.append(_table(h.cdsem_pt, PT_COLUMNS, css="pt", empty="No spec limits for the layers measured."))
     parts.append("<div class='charts'>")
-    for f in (hc.monitor_figure(h.monitor_daily), hc.fleet_offset_figure(h.cdsem), hc.repeat_sd_figure(h.monitor_daily),
-              hc.shrink_figure(h.repeat_means), hc.accuracy_figure(h.accuracy_pairs)):
+    for f in (
+        hc.monitor_figure(h.monitor_daily),
+        hc.fleet_offset_figure(h.cdsem),
+        hc.repeat_sd_figure(h.monitor_daily),
+        hc.shrink_figure(h.repeat_means),
+        hc.accuracy_figure(h.accuracy_pairs),
+    ):
         parts.append(f"<div>{fig(f)}</div>")
     parts.append("</div>")
 
     parts.append("<h2>Inspection tools</h2>")
-    parts.append(_table(h.inspection, INSPECTION_COLUMNS, css="scorecard inspection", empty="No inspection data."))
+    parts.append(
+        _table(h.inspection, INSPECTION_COLUMNS, css="scorecard inspection", empty="No inspection data.")
+    )
     parts.append(f"<div class='charts'><div>{fig(hc.capture_trend_figure(h.capture_trend))}</div></div>")
 
     parts.append("<h2>Process tools and chambers</h2>")
-    parts.append(_table(h.process, PROCESS_COLUMNS, css="scorecard process", empty="No charted process chambers."))
+    parts.append(
+        _table(h.process, PROCESS_COLUMNS, css="scorecard process", empty="No charted process chambers.")
+    )
     parts.append(f"<div class='charts'><div>{fig(hc.ooc_rate_figure(h.process))}</div></div>")
 
     parts.append(f"<h2>What changed since {esc(h.previous.label)}</h2>")
@@ -219,7 +279,9 @@ def render_weekly_report(h) -> str:
     parts.append(_table(h.new_excursions, NEW_EXCURSION_COLUMNS, css="changes", limit=50))
     parts.append(f"<h3>Dispositions closed ({h.closed_dispositions.height})</h3>")
     parts.append(_table(h.closed_dispositions, CLOSED_COLUMNS, css="changes", limit=50))
-    parts.append("<p class='note'>Generated by lotline from the warehouse; statistics advise, engineers decide.</p>")
+    parts.append(
+        "<p class='note'>Generated by lotline from the warehouse; statistics advise, engineers decide.</p>"
+    )
     parts.append("</body></html>")
     return "\n".join(parts)
 
@@ -234,11 +296,22 @@ def print_pdf(html_path: Path, pdf_path: Path, *, timeout_s: float = 120.0) -> P
     exe = chromium_path()
     if exe is None:
         raise RuntimeError("no chromium on PATH (install Debian's chromium package) to print the PDF")
-    cmd = [exe, "--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
-           "--no-first-run", "--run-all-compositor-stages-before-draw", "--virtual-time-budget=10000",
-           f"--print-to-pdf={Path(pdf_path).resolve()}", "--no-pdf-header-footer",
-           Path(html_path).resolve().as_uri()]
+    cmd = [
+        exe,
+        "--headless",
+        "--no-sandbox",
+        "--disable-gpu",
+        "--disable-background-networking",
+        "--no-first-run",
+        "--run-all-compositor-stages-before-draw",
+        "--virtual-time-budget=10000",
+        f"--print-to-pdf={Path(pdf_path).resolve()}",
+        "--no-pdf-header-footer",
+        Path(html_path).resolve().as_uri(),
+    ]
     res = subprocess.run(cmd, capture_output=True, text=True, timeout=timeout_s, check=False)
     if res.returncode != 0 or not Path(pdf_path).exists():
-        raise RuntimeError(f"chromium could not print the PDF (exit {res.returncode}): {res.stderr.strip()[-300:]}")
+        raise RuntimeError(
+            f"chromium could not print the PDF (exit {res.returncode}): {res.stderr.strip()[-300:]}"
+        )
     return Path(pdf_path)

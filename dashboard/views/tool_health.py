@@ -14,8 +14,10 @@ def main() -> None:
         widgets.nothing("No measurements or inspections in the warehouse yet.")
     week = widgets.choice("Week", weeks, key="week", default=weeks[0])
     _, h = data.weekly_health(week)
-    st.caption(f"{h.week.start:%Y-%m-%d} to {h.week.end:%Y-%m-%d} (UTC, end exclusive); compared with "
-               f"{h.previous.label}.")
+    st.caption(
+        f"{h.week.start:%Y-%m-%d} to {h.week.end:%Y-%m-%d} (UTC, end exclusive); compared with "
+        f"{h.previous.label}."
+    )
     for text in h.cautions:
         st.caption(":warning: " + text)
     st.subheader("Needs a look")
@@ -37,21 +39,34 @@ def main() -> None:
         st.plotly_chart(health_charts.shrink_figure(h.repeat_means), key="shrink_fig")
         st.plotly_chart(health_charts.accuracy_figure(h.accuracy_pairs), key="accuracy_fig")
     with ins:
-        st.dataframe(report.scorecard_frame(h.inspection, report.INSPECTION_COLUMNS), hide_index=True,
-                     key="inspection_card")
+        st.dataframe(
+            report.scorecard_frame(h.inspection, report.INSPECTION_COLUMNS),
+            hide_index=True,
+            key="inspection_card",
+        )
         st.plotly_chart(health_charts.capture_trend_figure(h.capture_trend), key="capture_fig")
     with proc:
-        st.dataframe(report.scorecard_frame(h.process, report.PROCESS_COLUMNS), hide_index=True, key="process_card")
+        st.dataframe(
+            report.scorecard_frame(h.process, report.PROCESS_COLUMNS), hide_index=True, key="process_card"
+        )
         st.plotly_chart(health_charts.ooc_rate_figure(h.process), key="ooc_fig")
     with changes:
         st.caption(f"Control limits frozen this week: {h.limit_changes.height}")
-        st.dataframe(report.scorecard_frame(h.limit_changes, report.LIMIT_COLUMNS), hide_index=True, key="limits")
+        st.dataframe(
+            report.scorecard_frame(h.limit_changes, report.LIMIT_COLUMNS), hide_index=True, key="limits"
+        )
         st.caption(f"New excursions: {h.new_excursions.height}")
-        st.dataframe(report.scorecard_frame(h.new_excursions, report.NEW_EXCURSION_COLUMNS), hide_index=True,
-                     key="new_exc")
+        st.dataframe(
+            report.scorecard_frame(h.new_excursions, report.NEW_EXCURSION_COLUMNS),
+            hide_index=True,
+            key="new_exc",
+        )
         st.caption(f"Dispositions closed: {h.closed_dispositions.height}")
-        st.dataframe(report.scorecard_frame(h.closed_dispositions, report.CLOSED_COLUMNS), hide_index=True,
-                     key="closed")
+        st.dataframe(
+            report.scorecard_frame(h.closed_dispositions, report.CLOSED_COLUMNS),
+            hide_index=True,
+            key="closed",
+        )
 
 
 main()
