@@ -18,6 +18,7 @@ from pathlib import Path
 import numpy as np
 import polars as pl
 
+from tests.canonical_rows import insert_frame
 from warehouse import evaluate, plan, schema, store
 
 START = dt.datetime(2026, 3, 2)
@@ -142,26 +143,6 @@ def _measurements(lot, wafer_i, site_i, x, y, layer, value, when, tool, kind, *,
         "repeat": pl.Series(np.ones(len(lot), dtype=np.int64) if repeat is None else repeat, dtype=pl.Int64),
         "sample_kind": kind,
     })  # fmt: skip
-
-
-def insert_frame(con, table: schema.Table, frame: pl.DataFrame, *, file_id: int) -> None:
-    """Insert canonical rows with lineage (test-only writer; identifiers from the schema, values as Arrow)."""
-    types = schema.polars_schema(table)
-    f = frame.with_columns(
-        pl.lit(file_id, pl.Int64).alias(schema.C_SOURCE_FILE_ID),
-        pl.int_range(1, frame.height + 1, dtype=pl.Int64).alias(schema.C_SOURCE_LINE),
-        pl.lit(None, pl.Int64).alias(schema.C_SUPERSEDED_BY),
-    )
-    for name, dtype in types.items():
-        if name not in f.columns:
-            f = f.with_columns(pl.lit(None, dtype).alias(name))
-    f = f.select(table.names).cast(types)
-    cols = ", ".join(f'"{c}"' for c in table.names)
-    con.register("_rows", f.to_arrow())
-    try:
-        con.execute(f'INSERT INTO "{table.name}" ({cols}) SELECT {cols} FROM _rows')
-    finally:
-        con.unregister("_rows")
 
 
 def build_fixture_warehouse(path: Path, *, seed: int = 11) -> None:
