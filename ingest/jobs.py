@@ -316,7 +316,7 @@ def _load_content(con, path: Path, fmt: str, *, profiles: list[Profile], forced:
     small_file = path.stat().st_size <= chunk_bytes
     stage = None if small_file else tempfile.TemporaryDirectory(prefix="lotline-load-")
     stage_dir = Path(stage.name) if stage else None
-    affected: set[tuple[str, str | None, str | None, str | None]] = set()
+    affected: dict[str, list[pl.DataFrame]] = {}  # per table: distinct (lot_id, layer, parameter) of each chunk
     hashes: dict[str, list[pl.DataFrame]] = {}
 
     tables_seen: dict[str, None] = {}
@@ -334,6 +334,23 @@ def _load_content(con, path: Path, fmt: str, *, profiles: list[Profile], forced:
             extra[table] = (h, frame.select(keys).unique() if frame.height else None)
         return frames, rejects, extra
 
+    pending: dict[str, list[pl.DataFrame]] = {}  # rows held back until they fill whole row groups
+
+    def store_rows(table: str, frame: pl.DataFrame, *, final: bool = False) -> None:
+        """Insert a chunk; chunks of a row group or more go in as whole row groups (see load.ROW_GROUP_ROWS)."""
+        held = pending.pop(table, [])
+        if not held and not final and frame.height < load.ROW_GROUP_ROWS:
+            load.load_chunk(con, table, frame, file_id=file_id, counts=counts, series_order=small_file,
+                            stage_dir=stage_dir)
+            return
+        rows = pl.concat([*held, frame], rechunk=False) if held else frame
+        n = rows.height if final else load.whole_row_groups(rows.height)
+        if n:
+            load.load_chunk(con, table, rows.slice(0, n), file_id=file_id, counts=counts,
+                            series_order=small_file, stage_dir=stage_dir)
+        if n < rows.height:
+            pending[table] = [rows.slice(n)]
+
     def take(frames: dict[str, pl.DataFrame], rejects: pl.DataFrame, extra: dict | None = None) -> None:
         if extra is None:
             frames, rejects, extra = prepare(frames, rejects)
@@ -343,16 +360,12 @@ def _load_content(con, path: Path, fmt: str, *, profiles: list[Profile], forced:
             if frame.height == 0:
                 continue
             tables_seen[table] = None
-            load.load_chunk(con, table, frame, file_id=file_id, counts=counts, series_order=small_file,
-                            stage_dir=stage_dir)
+            store_rows(table, frame)
             h, keys_frame = extra[table]
             if h is not None:
                 hashes.setdefault(table, []).append(h)
             if keys_frame is not None:
-                names = keys_frame.columns
-                for row in keys_frame.iter_rows():
-                    d = dict(zip(names, row, strict=True))
-                    affected.add((table, d.get("lot_id"), d.get("layer"), d.get("parameter")))
+                affected.setdefault(table, []).append(keys_frame)
 
     try:
         head = reader.read()
@@ -426,6 +439,8 @@ def _load_content(con, path: Path, fmt: str, *, profiles: list[Profile], forced:
                 raise IngestError("file has a header but no data rows", path=shown, line=prof.header_line + 1,
                                   column=1, found="end of file", expected="at least one data row",
                                   fix="re-export the file; nothing was loaded")
+        for table in list(pending):
+            store_rows(table, pl.DataFrame(schema=pending[table][0].schema), final=True)
     finally:
         reader.close()
         if stage is not None:
@@ -441,10 +456,25 @@ def _load_content(con, path: Path, fmt: str, *, profiles: list[Profile], forced:
             dup = load.reject_in_file_duplicates(con, table, cand, file_id=file_id, counts=counts)
             if dup.height:
                 counts.reject_frames.append(dup)
-    return [
-        {k: v for k, v in zip(("table", "lot_id", "layer", "parameter"), a, strict=True) if v is not None}
-        for a in sorted(affected, key=lambda a: tuple(x or "" for x in a))
-    ]
+    return _affected_list(affected)
+
+
+def _affected_list(affected: dict[str, list[pl.DataFrame]]) -> list[dict[str, str]]:
+    """Distinct (table, lot_id, layer, parameter) as dicts without the absent keys, sorted (None as "")."""
+    out: list[dict[str, str]] = []
+    for table in sorted(affected):
+        keys = pl.concat(affected[table], how="vertical_relaxed").unique()
+        cols = keys.columns
+        keys = keys.sort([pl.col(c).fill_null("") for c in cols])
+        nullable = [c for c in cols if keys[c].null_count()]
+        rows = keys.select(pl.lit(table).alias("table"), *cols).to_dicts()
+        if nullable:
+            for d in rows:
+                for c in nullable:
+                    if d[c] is None:
+                        del d[c]
+        out.extend(rows)
+    return out
 
 
 def _chunks(reader: _Reader, head: bytes, chunker: LineChunker) -> Iterator[tuple[int, bytes]]:

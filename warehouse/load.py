@@ -47,6 +47,18 @@ SERIES_ORDER: dict[str, tuple[str, ...]] = {
 }
 """Rows of a file are stored in this order, so one chart's series sits together on disk (DESIGN: layout)."""
 
+ROW_GROUP_ROWS = 122_880
+"""DuckDB's row group size. The chunks of a multi-chunk file are inserted in whole row groups (the caller
+carries the rest over to the next chunk): measured with DuckDB 2.0.1 on 1M rows in one transaction, six
+inserts of 166,667 rows cost 4.6 s CPU (1.6 s of it in the checkpoint that merges their partial row groups),
+inserts of whole row groups 2.5 s."""
+
+
+def whole_row_groups(rows: int) -> int:
+    """The largest multiple of :data:`ROW_GROUP_ROWS` not above ``rows``."""
+    return rows - rows % ROW_GROUP_ROWS
+
+
 INGEST_MEMORY_LIMIT = "512MB"
 """DuckDB's share of an ingest's memory (issue 2: peak RSS <= 2 GB for a 10M-row file); it spills beyond."""
 
