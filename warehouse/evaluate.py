@@ -48,6 +48,12 @@ WITHDRAWN_SUPERSEDED = "point's data superseded or moved (corrected re-export or
 WITHDRAWN_CHANGED = "point's value changed (corrected re-export)"
 WITHDRAWN_CHART_REMOVED = "chart removed from the monitoring plan"
 WITHDRAWN_NOT_FOUND = "not found on re-evaluation (limits re-frozen, or earlier points changed the chart statistic)"
+CHART_POINTS_RUN = "chart_points_run"
+"""meta key: the evaluation run whose points ``chart_points`` holds. A warehouse whose last run predates the
+table (migration 4) has none, and its next run is a full one, which fills the table."""
+CHART_POINT_COLUMNS = ("seq", "point_key", "lot_id", "wafer_id", "point_at", "value", "n", "center", "sigma", "lcl",
+                       "ucl", "limit_version")
+"""Columns of :func:`series_points` (queries.series_points)."""
 
 
 @dataclass
@@ -110,7 +116,7 @@ def evaluate_connection(con, *, full: bool = False, user: str = "unknown") -> Ru
         "SELECT watermark_file_id, plan_version FROM evaluation_runs ORDER BY run_id DESC LIMIT 1"
     ).fetchall()
     wm_new = int(con.execute("SELECT coalesce(max(file_id), 0) FROM source_files").fetchall()[0][0])
-    full = full or not last or int(last[0][1]) != version
+    full = full or not last or int(last[0][1]) != version or not _chart_points_written(con)
     wm_old = 0 if not last else int(last[0][0])
     started = _now()
     s = RunSummary("full" if full else "incremental", version, wm_new)
@@ -133,8 +139,14 @@ def evaluate_connection(con, *, full: bool = False, user: str = "unknown") -> Ru
         [run_id, started, _now(), s.mode, version, wm_new, s.series, s.points, s.signals_new, s.signals_withdrawn,
          user],
     )
+    con.execute("DELETE FROM meta WHERE key = ?", [CHART_POINTS_RUN])
+    con.execute("INSERT INTO meta VALUES (?, ?)", [CHART_POINTS_RUN, str(run_id)])
     s.seconds = round(time.perf_counter() - t0, 3)
     return s
+
+
+def _chart_points_written(con) -> bool:
+    return bool(con.execute("SELECT 1 FROM meta WHERE key = ?", [CHART_POINTS_RUN]).fetchall())
 
 
 class _Context:
@@ -144,6 +156,8 @@ class _Context:
         self.changes: dict[str, pl.DataFrame] = {}
         self.pending_state: list[pl.DataFrame] = []
         self.pending_signals: list[pl.DataFrame] = []
+        self.pending_points: list[pl.DataFrame] = []  # chart_points rows, written by _flush
+        self.replaced_points: set[int] = set()  # series whose stored points _flush deletes first
         self.limits = lim_mod.current_limits(con)
         rows = con.execute("SELECT series_id, chart, layer, parameter, split_json FROM chart_series").fetchall()
         self.series = {(r[1], r[2], r[3], r[4]): r[0] for r in rows}
@@ -165,6 +179,7 @@ def _withdraw_removed_charts(ctx: _Context, names: list[str]) -> None:
     finally:
         ctx.con.unregister("gone")
     withdrawn = int(n[0][0]) if n else 0
+    ctx.replaced_points.update(gone)
     if withdrawn:
         ctx.s.signals_withdrawn += withdrawn
         ctx.touched.update(gone)
@@ -384,6 +399,8 @@ def _recompute(ctx: _Context, e: PlanEntry, pts: pl.DataFrame, series: list[int]
     pts = _with_limits(ctx, e, pts)
     sig, ew, cu = _signals(e, pts, state=None, context=None)
     _write_state(ctx, e, pts, series, ew, cu, base_state=None)
+    ctx.replaced_points.update(series)
+    ctx.pending_points.append(_chart_point_rows(ctx, e, pts))
     _reconcile(ctx, e, sig, pts, series, recompute=True)
     ctx.s.series_recomputed += len(series)
     ctx.s.points += pts.height
@@ -413,6 +430,7 @@ def _append(ctx: _Context, e: PlanEntry, pts: pl.DataFrame, series: list[int]) -
                                              "center": pl.Float64, "sigma": pl.Float64}) if ctx_rows else None
     sig, ew, cu = _signals(e, pts, state=state, context=context)
     _write_state(ctx, e, pts, series, ew, cu, base_state=ctx.state, context=context)
+    ctx.pending_points.append(_chart_point_rows(ctx, e, pts))
     _reconcile(ctx, e, sig, pts, series, recompute=False)
     ctx.s.series_appended += len(series)
     ctx.s.points += pts.height
@@ -464,9 +482,47 @@ def _write_state(ctx, e, pts, series, ew, cu, *, base_state, context=None) -> No
         ctx.state[r["series_id"]] = r
 
 
+def _chart_point_rows(ctx: _Context, e: PlanEntry, pts: pl.DataFrame) -> pl.DataFrame:
+    """chart_points rows of evaluated points: limits per point exactly as :func:`series_points` computes them
+    (``limits.point_sigma``: on u charts sigma varies with the inspected area), vectorised over series."""
+    sids = pts["series_id"].unique().to_list()
+    lim = pl.DataFrame(
+        [(sid, ctx.limits[sid]["version"], ctx.limits[sid]["center"], ctx.limits[sid]["sigma"],
+          ctx.limits[sid]["k_sigma"], ctx.limits[sid]["n_ref"], ctx.limits[sid]["overdispersion"])
+         for sid in sids if sid in ctx.limits],
+        schema={"series_id": pl.Int64, "limit_version": pl.Int64, "center": pl.Float64, "_sigma": pl.Float64,
+                "_k": pl.Float64, "_n_ref": pl.Float64, "_sz": pl.Float64}, orient="row")
+    out = pts.select("series_id", "seq", "point_key", "lot_id", "wafer_id", "point_at", "value", "n", "area_cm2")
+    out = out.join(lim, on="series_id", how="left", maintain_order="left")
+    sigma = pl.col("_sigma")
+    if e.chart in ("u", "laney_u"):
+        sz = pl.when(pl.col("_sz").is_null() | (pl.col("_sz") == 0)).then(1.0).otherwise(pl.col("_sz"))
+        area = pl.col("area_cm2").cast(pl.Float64)
+        sigma = pl.when(pl.col("_n_ref").is_not_null()).then((pl.col("center") / area).sqrt() * sz).otherwise(sigma)
+    out = out.with_columns(sigma.alias("sigma")).with_columns(
+        (pl.col("center") - pl.col("_k") * pl.col("sigma")).alias("lcl"),
+        (pl.col("center") + pl.col("_k") * pl.col("sigma")).alias("ucl"),
+    )
+    types = schema.polars_schema(schema.CHART_POINTS)
+    return out.select(pl.col(c).cast(t) for c, t in types.items())
+
+
 def _flush(ctx: _Context) -> None:
-    """Write the run's series states and appended signals in one statement each."""
+    """Write the run's series states, appended signals and chart points in one statement each."""
     con = ctx.con
+    if ctx.replaced_points:
+        gone = pl.DataFrame({"series_id": sorted(ctx.replaced_points)}, schema={"series_id": pl.Int64})
+        con.register("replaced_series", gone)
+        try:
+            con.execute("DELETE FROM chart_points WHERE series_id IN (SELECT series_id FROM replaced_series)")
+        finally:
+            con.unregister("replaced_series")
+    if ctx.pending_points:
+        con.register("new_points", pl.concat(ctx.pending_points))
+        try:  # in series order, so that one chart's read is a range scan over few row groups
+            con.execute("INSERT INTO chart_points BY NAME SELECT * FROM new_points ORDER BY series_id, seq")
+        finally:
+            con.unregister("new_points")
     if ctx.pending_state:
         con.register("new_state", pl.concat(ctx.pending_state))
         try:
@@ -488,6 +544,7 @@ FROM cand c ORDER BY c.series_id, c.point_seq, c.rule""",
         finally:
             con.unregister("cand")
     ctx.pending_state, ctx.pending_signals = [], []
+    ctx.pending_points, ctx.replaced_points = [], set()
 
 
 def _reconcile(ctx: _Context, e: PlanEntry, sig: pl.DataFrame, pts: pl.DataFrame, series: list[int], *,
@@ -556,12 +613,56 @@ ORDER BY c.series_id, c.point_seq, c.rule""",
 
 
 def series_points(con, *, series_id: int) -> pl.DataFrame:
-    """Points of one series with the limits in force (for queries.series_points)."""
+    """Points of one series with the limits in force (for queries.series_points).
+
+    Read from ``chart_points`` when it holds the state of the warehouse now (the last evaluation wrote it,
+    covered every loaded file and the plan in force, and the series' limit version is still the one in
+    force); otherwise computed from the facts (:func:`series_points_from_facts`), with the same result.
+    """
     row = con.execute(
         "SELECT chart, layer, parameter, split_json FROM chart_series WHERE series_id = ?", [series_id]
     ).fetchall()
-    cols = ["seq", "point_key", "lot_id", "wafer_id", "point_at", "value", "n", "center", "sigma", "lcl", "ucl",
-            "limit_version"]
+    plan = current_plan(con)
+    if not row or plan is None:
+        return pl.DataFrame(schema={c: pl.Float64 for c in CHART_POINT_COLUMNS})
+    e = plan.entry(row[0][0])
+    stored = _stored_points(con, e, series_id=series_id)
+    return stored if stored is not None else series_points_from_facts(con, series_id=series_id)
+
+
+def _stored_points(con, e: PlanEntry, *, series_id: int) -> pl.DataFrame | None:
+    """The series' chart_points rows, or None when the table may be behind the warehouse."""
+    run = con.execute(
+        """SELECT r.plan_version,
+       r.watermark_file_id >= (SELECT coalesce(max(file_id), 0) FROM source_files WHERE status = 'loaded'),
+       (SELECT value FROM meta WHERE key = ?) = r.run_id::VARCHAR
+FROM evaluation_runs r ORDER BY r.run_id DESC LIMIT 1""",
+        [CHART_POINTS_RUN],
+    ).fetchall()
+    if not run or run[0][0] != current_plan_version(con) or not run[0][1] or not run[0][2]:
+        return None
+    cur = con.cursor()
+    try:
+        pts = cur.sql(
+            f"SELECT {', '.join(CHART_POINT_COLUMNS)} FROM chart_points WHERE series_id = $sid ORDER BY seq",
+            params={"sid": series_id},
+        ).pl()
+        version = cur.execute("SELECT max(version) FROM control_limits WHERE series_id = ?", [series_id]).fetchall()
+    finally:
+        cur.close()
+    if pts.height and set(pts["limit_version"].unique().to_list()) != {version[0][0]}:
+        return None  # limits frozen again since the last evaluation
+    if e.statistic == "lot_mean" or (e.statistic == "defect_density" and e.parameter != "total"):
+        pts = pts.with_columns(pl.col("n").cast(pl.Int128))  # the facts query sums counts (HUGEINT)
+    return pts
+
+
+def series_points_from_facts(con, *, series_id: int) -> pl.DataFrame:
+    """Points of one series with the limits in force, computed from the facts (one points query)."""
+    row = con.execute(
+        "SELECT chart, layer, parameter, split_json FROM chart_series WHERE series_id = ?", [series_id]
+    ).fetchall()
+    cols = list(CHART_POINT_COLUMNS)
     plan = current_plan(con)
     if not row or plan is None:
         return pl.DataFrame(schema={c: pl.Float64 for c in cols})

@@ -291,6 +291,11 @@ def finish_file(con: duckdb.DuckDBPyConnection, *, file_id: int, path: str, sha2
             "INSERT INTO supersessions VALUES (?, ?, ?, ?, ?, (get_current_timestamp() AT TIME ZONE 'UTC'), ?)",
             [file_id, old_id, table, lot, n, user],
         )
+    # --- derived table tool_days (data freshness): the tool-days this file wrote or superseded, recomputed
+    from warehouse import tool_days
+
+    tool_days.refresh_for_file(con, file_id=file_id, superseded_files=sorted({o for o, _, _ in counts.supersessions}))
+    # --- end tool_days
     return bump_data_version(con)
 
 

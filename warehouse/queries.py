@@ -380,6 +380,11 @@ def tool_freshness(con: Con, *, now: datetime | None = None, stale_after_h: floa
     """
     at = _ts(now) or datetime.now(UTC).replace(tzinfo=None)
     day_ago = at - timedelta(days=1)
+    from warehouse import tool_days
+
+    if tool_days.is_current(con):  # the per-tool-day table, kept by ingest (no scan of every fact row)
+        return con.sql(tool_days.freshness_sql(),
+                       params=tool_days.freshness_params(at=at, day_ago=day_ago, stale_after_h=stale_after_h)).pl()
     sql = """
 WITH seen AS (
     SELECT metrology_tool AS tool, 'metrology' AS tool_kind, max(measured_at) AS last_seen,

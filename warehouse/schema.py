@@ -566,6 +566,44 @@ LOT_FIRST_FILES = Table(
     ),
 )
 
+CHART_POINTS = Table(
+    "chart_points",
+    "The evaluated points of every series with the limits they were evaluated under, written by evaluation in "
+    "the same transaction as its signals and stored in series order (one chart's read is a range scan).",
+    (
+        Column("series_id", INT64, nullable=False, doc="Series (chart_series.series_id)"),
+        Column("seq", INT64, nullable=False, doc="1-based position of the point in its series (chart order)"),
+        Column("point_key", STRING, nullable=False, doc="Key of the point within its series"),
+        Column("lot_id", STRING, doc="Lot of the point"),
+        Column("wafer_id", STRING, doc="Wafer of the point (NULL for a lot-mean point)"),
+        Column("point_at", TIMESTAMP, doc="Time of the point's first measurement or its inspection (UTC)"),
+        Column("value", FLOAT64, doc="Charted value (unit of the parameter, or defects per cm²)"),
+        Column("n", INT64, doc="Rows, sites or defects behind the point"),
+        Column("center", FLOAT64, doc="Centre line of the limit version in force (NULL before a freeze)"),
+        Column("sigma", FLOAT64, doc="Sigma of this point under that version (varies with area on u charts)"),
+        Column("lcl", FLOAT64, doc="Lower control limit of this point (center - k sigma)"),
+        Column("ucl", FLOAT64, doc="Upper control limit of this point (center + k sigma)"),
+        Column("limit_version", INT64, doc="Limit version the point was evaluated with (NULL before a freeze)"),
+    ),
+)
+
+TOOL_DAYS = Table(
+    "tool_days",
+    "Per tool and UTC day, the current fact rows and the newest time seen; refreshed inside each file's "
+    "ingest transaction for the tool-days it wrote or superseded (data freshness reads it).",
+    (
+        Column("tool", STRING, nullable=False, doc="Metrology, inspection or process tool"),
+        Column("tool_kind", STRING, nullable=False, doc="metrology, inspection or process"),
+        Column("day", TIMESTAMP, nullable=False, doc="UTC day (midnight) of measured_at, inspected_at or started_at"),
+        Column("n_rows", INT64, nullable=False, doc="Current (not superseded) rows of the tool on that day"),
+        Column("last_seen", TIMESTAMP, nullable=False,
+               doc="Newest measured_at, inspected_at or coalesce(ended_at, started_at) of those rows (UTC)"),
+    ),
+)
+
+DERIVED_TABLES: tuple[Table, ...] = (CHART_POINTS, TOOL_DAYS)
+"""Tables derived from the others and kept up to date by evaluation and ingest (created by migration 4)."""
+
 MONITORING_TABLES: tuple[Table, ...] = (
     PLANS,
     CHART_PLAN,
@@ -579,7 +617,7 @@ MONITORING_TABLES: tuple[Table, ...] = (
     LOT_FIRST_FILES,
 )
 
-TABLES: tuple[Table, ...] = FACT_TABLES + OPERATION_TABLES + MONITORING_TABLES
+TABLES: tuple[Table, ...] = FACT_TABLES + OPERATION_TABLES + MONITORING_TABLES + DERIVED_TABLES
 """Every table of the warehouse, in creation order."""
 
 

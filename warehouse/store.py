@@ -91,10 +91,22 @@ def _m3_lot_first_files(con: duckdb.DuckDBPyConnection) -> None:
     con.execute(create_table_sql(schema.LOT_FIRST_FILES))
 
 
+def _m4_derived_tables(con: duckdb.DuckDBPyConnection) -> None:
+    # chart_points starts empty: evaluation runs full once when the last run did not write it
+    # (warehouse.evaluate.CHART_POINTS_RUN); until then charts are computed from the facts.
+    # tool_days is one group-by over the facts, cheap enough to fill here (about 1 s at 30M rows).
+    from warehouse import tool_days
+
+    for t in schema.DERIVED_TABLES:
+        con.execute(create_table_sql(t))
+    tool_days.rebuild(con)
+
+
 MIGRATIONS: list[Migration] = [
     (1, "canonical fact and operation tables", _m1_core),
     (2, "monitoring plan, series, control limits, signals, excursions, audit, evaluation state", _m2_monitoring),
     (3, "lot first-file index for incremental evaluation", _m3_lot_first_files),
+    (4, "derived tables: evaluated chart points, rows and last seen per tool and day", _m4_derived_tables),
 ]
 
 
