@@ -6,10 +6,10 @@ STAMP := $(VENV)/.installed
 
 .PHONY: demo test bench bench-quick lint serve clean
 
-$(STAMP): pyproject.toml
+$(STAMP): pyproject.toml Makefile
 	test -x $(BIN)/python || $(PY) -m venv $(VENV)
 	$(BIN)/python -m pip install --quiet --upgrade pip
-	$(BIN)/python -m pip install --quiet -e '.[test]'
+	$(BIN)/python -m pip install --quiet -e '.[test,spark]'
 	touch $(STAMP)
 
 demo: $(STAMP)
