@@ -12,8 +12,9 @@ Sigma of the charted statistic (the level that is plotted), all computed by ``sp
     * site values, wafer means, lot means: nested variance components of the baseline's site values
       (``spc.variance.nested_components``, lot > wafer > site) and the sigma recommended for the charted
       level (``sigma_for``: σ²_lot + σ²_wafer + σ²_site/n for a wafer mean). Within-wafer sigma alone would
-      make the limits far too tight (the nested-variance trap, notes/domain.md). When the baseline design
-      is unbalanced or has one wafer per lot, the components cannot be separated by ANOVA and the sample
+      make the limits far too tight (the nested-variance trap, notes/domain.md). Balanced baselines use
+      ANOVA, unbalanced ones (missing sites or wafers) REML with typical (harmonic-mean) group sizes. When
+      every lot has one wafer (lot and wafer confounded) or the components cannot be separated, the sample
       SD of the baseline points is used: it estimates the same total variance of one point
       (``sigma_source = baseline_points_sd``).
     * wafer SD / range: individuals chart of the statistic (``spc.shewhart.individuals_limits``:
@@ -104,12 +105,12 @@ def _nested_sigma(e: PlanEntry, v: np.ndarray, sites: pl.DataFrame | None) -> di
     if sites is None or sites.height == 0:
         return fallback
     wafers_per_lot = sites.group_by("lot_id").agg(pl.col("wafer_id").n_unique())["wafer_id"]
-    if wafers_per_lot.min() < 2:
+    if wafers_per_lot.max() < 2:
         return fallback  # one wafer per lot: lot and wafer components are confounded
     try:
         vc = nested_components(sites, ["lot_id", "wafer_id"], "value", residual="site")
     except (ValueError, ZeroDivisionError):
-        return fallback  # unbalanced design (missing sites or wafers)
+        return fallback  # components not identifiable (e.g. one site per wafer everywhere)
     key = {"site_value": "value", "wafer_mean": "wafer_id", "lot_mean": "lot_id"}[e.statistic]
     return {"sigma": float(vc.sigma_for[key]), "sigma_source": "variance_components"}
 
