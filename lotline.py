@@ -651,7 +651,9 @@ def limits_freeze_cmd(db, chart, series_id, window, first, reason, user):
         try:
             win = (datetime.fromisoformat(a), datetime.fromisoformat(b))
         except ValueError:
-            raise click.BadParameter("expected FROM..TO with ISO dates, e.g. 2026-09-01..2026-09-14", param_hint="--window")
+            raise click.BadParameter(
+                "expected FROM..TO with ISO dates, e.g. 2026-09-01..2026-09-14", param_hint="--window"
+            ) from None
     try:
         rows = evaluate.freeze_limits(store.resolve_db_path(db), chart=chart, reason=reason, user=user or _user_name(),
                                       first=first, window=win, series_id=series_id)
@@ -729,7 +731,7 @@ def excursions_list_cmd(db, open_only: bool, since, as_json: bool):
     try:
         t = datetime.fromisoformat(since) if since else None
     except ValueError:
-        raise click.BadParameter("expected an ISO date such as 2026-09-01", param_hint="--since")
+        raise click.BadParameter("expected an ISO date such as 2026-09-01", param_hint="--since") from None
     try:
         with store.open_warehouse(store.resolve_db_path(db), read_only=True) as con:
             df = queries.list_excursions(con, open_only=open_only, since=t)
