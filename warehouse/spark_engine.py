@@ -70,8 +70,11 @@ def _quiet() -> Iterator[None]:
         yield
 
 
-def spark_session(master: str = DEFAULT_MASTER, *, shuffle_partitions: int = 4):
+def spark_session(master: str = DEFAULT_MASTER, *, shuffle_partitions: int | None = None):
     """A SparkSession for lake evaluation (bound to 127.0.0.1 and without UI for local masters).
+
+    ``shuffle_partitions``: default one per core of a ``local[N]`` master (the data of one machine is small
+    per query; Spark's default of 200 tasks per shuffle costs more than it spreads), Spark's own otherwise.
 
     The Python workers run this interpreter (``sys.executable``, not resolved: a venv's symlink is what
     makes the venv's packages visible) unless ``PYSPARK_PYTHON`` is already set.
@@ -91,9 +94,12 @@ def spark_session(master: str = DEFAULT_MASTER, *, shuffle_partitions: int = 4):
         builder.config("spark.ui.enabled", "false")
         .config("spark.ui.showConsoleProgress", "false")
         .config("spark.sql.session.timeZone", "UTC")
-        .config("spark.sql.shuffle.partitions", str(shuffle_partitions))
         .config("spark.sql.sources.partitionColumnTypeInference.enabled", "false")
     )
+    if shuffle_partitions is None and master.startswith("local[") and master[6:-1].isdigit():
+        shuffle_partitions = int(master[6:-1])
+    if shuffle_partitions is not None:
+        builder = builder.config("spark.sql.shuffle.partitions", str(shuffle_partitions))
     with _quiet():
         spark = builder.getOrCreate()
     spark.sparkContext.setLogLevel("ERROR")
@@ -279,12 +285,17 @@ GROUP BY f.layer, c.defect_class, f.inspection_tool, f.lot_id, f.wafer_id, f.ins
 
 
 def plan_points(spark, lake, entries):
-    """One Spark DataFrame of every entry's points with series ids and the frozen limits in force."""
+    """One Spark DataFrame of every entry's points with series ids and the frozen limits in force, and the
+    cached fact frames it reads (unpersist them when done)."""
     from pyspark.sql import Window
     from pyspark.sql import functions as F
 
+    cached = []
     for t in FACT_TABLES:
-        read_current(spark, lake, t).createOrReplaceTempView(t)
+        # read once, used by every entry's query (else each query re-reads and re-filters the files)
+        df = read_current(spark, lake, t).cache()
+        df.createOrReplaceTempView(t)
+        cached.append(df)
     parts = []
     for i, e in enumerate(entries):
         sql, args = points_sql(e, i)
@@ -309,7 +320,7 @@ def plan_points(spark, lake, entries):
         pts = pts.select("*", *[F.lit(None).cast(t).alias(c) for c, t in (
             ("limit_version", "bigint"), ("center", "double"), ("lim_sigma", "double"), ("n_ref", "double"),
             ("overdispersion", "double"))])
-    return pts
+    return pts, cached
 
 
 # ------------------------------------------------------------------------------------------ per series
@@ -403,7 +414,8 @@ def _run(spark, lake: Path, plan) -> dict:
     from pyspark.sql import functions as F
 
     entries = {e.name: e for e in plan.entries}
-    pts = plan_points(spark, lake, plan.entries).persist()
+    pts, cached = plan_points(spark, lake, plan.entries)
+    pts = pts.persist()
     try:
         counts = pts.agg(F.count(F.lit(1)).alias("points"),
                          F.count_distinct(*[F.coalesce(F.col(c).cast("string"), F.lit("\x00")) for c in GROUP_COLUMNS])
@@ -417,6 +429,8 @@ def _run(spark, lake: Path, plan) -> dict:
             .write.mode("errorifexists").partitionBy("month").parquet(str(out_dir)))
     finally:
         pts.unpersist()
+        for df in cached:
+            df.unpersist()
     files = sorted(str(f) for f in out_dir.rglob("*.parquet"))
     rows = _rows(files)
     lake_mod.register_snapshot(lake, OUTPUT_TABLE, files, rows, seq)
