@@ -3,7 +3,7 @@
 A profile names the canonical table it fills, the file format, the text dialect (delimiter, decimal mark,
 encoding, header line), which source column feeds each canonical column (with accepted aliases and units),
 value mappings, constants, timestamp format and zone, long or wide layout, nested records (JSON lines) and
-physical range limits. The format is documented in ``docs/ingest.md``. lotline's native format (canonical
+physical range limits. The format is documented in the README ("Export profiles users write"). lotline's native format (canonical
 column names and units) needs no file: :func:`native_profiles` builds one profile per fact table.
 
 Pure: parsing and detection take text and return values; only :func:`load_profiles` reads files.
@@ -84,7 +84,7 @@ class Nested:
 
 @dataclass(frozen=True)
 class Profile:
-    """One export dialect. Build with :func:`parse_profile`; see docs/ingest.md for the TOML keys."""
+    """One export dialect. Build with :func:`parse_profile`; see the README ("Profile reference") for the TOML keys."""
 
     name: str
     kind: str
@@ -395,7 +395,7 @@ def detect_profile(header: list[str] | Callable[[Profile], list[str]], profiles:
         "header matches no export profile", path=path, line=line,
         details=f"Found: {shown}\n  Closest {fmt} profiles: {cands}",
         fix="write a profile for this export and pass its folder with --profiles DIR, "
-            "or export in lotline's native format (docs/ingest.md)",
+            "or export in lotline's native format (README: \"lotline's native format\")",
     )
 
 

@@ -75,7 +75,7 @@ FILE_FAILURES = [
      "native:process_history (lacks lot_id, step, process_tool, started_at; unknown when, where, what); "
      "native:spec_limits (lacks product, layer, parameter, unit, effective_from; unknown when, where, what)\n"
      "  Fix: write a profile for this export and pass its folder with --profiles DIR, or export in lotline's "
-     "native format (docs/ingest.md)."),
+     "native format (README: \"lotline's native format\")."),
     ("missing required column", "m.csv", (LONG_HEADER.replace(",Tool", "") + "\n").encode() + b"x\n",
      "{p}:1: header lacks required column \"Tool\" of profile cdsem_long_v2.\n  Found: "
      + LONG_HEADER.replace(",Tool", "") + "\n  Fix: export the column, or mark it optional in {profiles}/cdsem_long_v2.toml."),
