@@ -86,13 +86,26 @@ def init_cmd(db):
 def _ingest_table(results) -> list[str]:
     """The per-file summary table of ``lotline ingest`` and ``lotline watch``."""
     head = ("file", "profile", "loaded", "rejected", "superseded", "skipped", "status")
-    rows = [(r.path, r.profile or "-", str(r.rows_loaded), str(r.rows_rejected), str(r.rows_superseded),
-             str(r.rows_skipped), r.status) for r in results]
+    rows = [
+        (
+            r.path,
+            r.profile or "-",
+            str(r.rows_loaded),
+            str(r.rows_rejected),
+            str(r.rows_superseded),
+            str(r.rows_skipped),
+            r.status,
+        )
+        for r in results
+    ]
     widths = [max(len(h), *(len(row[i]) for row in rows)) if rows else len(h) for i, h in enumerate(head)]
     right = {2, 3, 4, 5}
 
     def fmt(cells) -> str:
-        return "  ".join(c.rjust(w) if i in right else c.ljust(w) for i, (c, w) in enumerate(zip(cells, widths, strict=True)))
+        return "  ".join(
+            c.rjust(w) if i in right else c.ljust(w)
+            for i, (c, w) in enumerate(zip(cells, widths, strict=True))
+        )
 
     return [fmt(head).rstrip(), *(fmt(r).rstrip() for r in rows)]
 
@@ -100,14 +113,31 @@ def _ingest_table(results) -> list[str]:
 @cli.command("ingest")
 @click.argument("paths", nargs=-1, required=True, type=click.Path())
 @db_option
-@click.option("--profiles", "profile_dirs", multiple=True, type=click.Path(file_okay=False),
-              help="Extra folder of export profiles (*.toml); repeatable.")
-@click.option("--profile", "profile", default=None, help="Use this profile instead of detecting it from the header.")
+@click.option(
+    "--profiles",
+    "profile_dirs",
+    multiple=True,
+    type=click.Path(file_okay=False),
+    help="Extra folder of export profiles (*.toml); repeatable.",
+)
+@click.option(
+    "--profile", "profile", default=None, help="Use this profile instead of detecting it from the header."
+)
 @click.option("--json", "as_json", is_flag=True, help="Print the per-file results as JSON.")
-@click.option("--wait", "wait_s", type=float, default=60.0, show_default=True,
-              help="Seconds to wait while another process holds the warehouse.")
-@click.option("--evaluate", "run_evaluate", is_flag=True,
-              help="Evaluate the monitoring plan after loading (incremental; see `lotline evaluate`).")
+@click.option(
+    "--wait",
+    "wait_s",
+    type=float,
+    default=60.0,
+    show_default=True,
+    help="Seconds to wait while another process holds the warehouse.",
+)
+@click.option(
+    "--evaluate",
+    "run_evaluate",
+    is_flag=True,
+    help="Evaluate the monitoring plan after loading (incremental; see `lotline evaluate`).",
+)
 def ingest_cmd(paths, db, profile_dirs, profile, as_json: bool, wait_s: float, run_evaluate: bool = False):
     """Load exports (files or folders, recursive; CSV, Parquet, JSON lines, optionally .gz) into the warehouse.
 
@@ -125,8 +155,9 @@ def ingest_cmd(paths, db, profile_dirs, profile, as_json: bool, wait_s: float, r
         if not Path(p).exists():
             raise click.BadParameter(f"{p}: no such file or folder.", param_hint="PATH")
     try:
-        report = ingest_paths(paths, db=db, profile_dirs=profile_dirs, profile=profile, wait_s=wait_s,
-                              progress=not as_json)
+        report = ingest_paths(
+            paths, db=db, profile_dirs=profile_dirs, profile=profile, wait_s=wait_s, progress=not as_json
+        )
     except LotlineError as exc:
         fail(exc, 2 if "profile" in type(exc).__name__.lower() else 1)
     if as_json:
@@ -147,14 +178,25 @@ def ingest_cmd(paths, db, profile_dirs, profile, as_json: bool, wait_s: float, r
 @cli.command("watch")
 @click.argument("folder", type=click.Path(exists=True, file_okay=False))
 @db_option
-@click.option("--profiles", "profile_dirs", multiple=True, type=click.Path(file_okay=False),
-              help="Extra folder of export profiles (*.toml); repeatable.")
+@click.option(
+    "--profiles",
+    "profile_dirs",
+    multiple=True,
+    type=click.Path(file_okay=False),
+    help="Extra folder of export profiles (*.toml); repeatable.",
+)
 @click.option("--interval", type=float, default=5.0, show_default=True, help="Seconds between polls.")
 @click.option("--once", is_flag=True, help="Ingest what is ready now and stop (for scripts and tests).")
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object per ingested file.")
-@click.option("--evaluate", "run_evaluate", is_flag=True,
-              help="Evaluate the monitoring plan after each loaded file (incremental).")
-def watch_cmd(folder, db, profile_dirs, interval: float, once: bool, as_json: bool, run_evaluate: bool = False):
+@click.option(
+    "--evaluate",
+    "run_evaluate",
+    is_flag=True,
+    help="Evaluate the monitoring plan after each loaded file (incremental).",
+)
+def watch_cmd(
+    folder, db, profile_dirs, interval: float, once: bool, as_json: bool, run_evaluate: bool = False
+):
     """Poll a drop folder and ingest each new or changed file once, after its size stops changing.
 
     Never moves or deletes files. Ctrl-C stops.
@@ -175,8 +217,9 @@ def watch_cmd(folder, db, profile_dirs, interval: float, once: bool, as_json: bo
             _evaluate_after_ingest(db, to_stderr=as_json)
 
     try:
-        results = watch_folder(folder, db=db, profile_dirs=profile_dirs, interval_s=interval, once=once,
-                               on_file=show)
+        results = watch_folder(
+            folder, db=db, profile_dirs=profile_dirs, interval_s=interval, once=once, on_file=show
+        )
     except KeyboardInterrupt:
         sys.exit(0)
     except LotlineError as exc:
@@ -261,10 +304,16 @@ def arl_group():
 
 
 @arl_group.command("shewhart")
-@click.option("--rules", default="we1", show_default=True, help="Comma-separated rule ids (we1-we4, nelson1-nelson8).")
+@click.option(
+    "--rules", default="we1", show_default=True, help="Comma-separated rule ids (we1-we4, nelson1-nelson8)."
+)
 @click.option("--shift", multiple=True, help="Mean shift(s) in sigma; repeat or separate by commas.")
-@click.option("--target-arl", type=float, default=None, help="Solve the beyond-limits width for this in-control ARL.")
-@click.option("--seed", type=int, default=0, show_default=True, help="Seed for rule sets that must be simulated.")
+@click.option(
+    "--target-arl", type=float, default=None, help="Solve the beyond-limits width for this in-control ARL."
+)
+@click.option(
+    "--seed", type=int, default=0, show_default=True, help="Seed for rule sets that must be simulated."
+)
 @click.option("--json", "as_json", is_flag=True, help='Print [{"shift": S, "arl": A}, ...].')
 def arl_shewhart_cmd(rules: str, shift, target_arl, seed: int, as_json: bool):
     """ARL of a Shewhart chart with run rules (exact Markov chain; nelson3/nelson4 are simulated).
@@ -347,18 +396,44 @@ def arl_cusum_cmd(k: float, h, shift, target_arl, as_json: bool):
 @click.argument("file", type=click.Path(exists=True, dir_okay=False))
 @click.option("--value", "value_col", required=True, help="Column holding the plotted values.")
 @click.option("--series", "series_col", default=None, help="Column that splits the file into series.")
-@click.option("--order", "order_col", default=None, help="Column giving the order within a series (default: file order).")
+@click.option(
+    "--order",
+    "order_col",
+    default=None,
+    help="Column giving the order within a series (default: file order).",
+)
 @click.option("--center", type=float, required=True, help="Centre line, in data units.")
 @click.option("--sigma", type=float, required=True, help="Sigma of the plotted value, in data units.")
-@click.option("--rules", default=None, help="Comma-separated rule ids (default we1 unless --ewma/--cusum given).")
+@click.option(
+    "--rules", default=None, help="Comma-separated rule ids (default we1 unless --ewma/--cusum given)."
+)
 @click.option("--ewma", "ewma_opt", default=None, metavar="LAMBDA,L", help="Add an EWMA chart.")
-@click.option("--cusum", "cusum_opt", default=None, metavar="K,H", help="Add a tabular CUSUM (k, h in sigma).")
-@click.option("--ewma-limits", type=click.Choice(["exact", "asymptotic"]), default="exact", show_default=True,
-              help="EWMA limits: exact time-varying, or steady state.")
+@click.option(
+    "--cusum", "cusum_opt", default=None, metavar="K,H", help="Add a tabular CUSUM (k, h in sigma)."
+)
+@click.option(
+    "--ewma-limits",
+    type=click.Choice(["exact", "asymptotic"]),
+    default="exact",
+    show_default=True,
+    help="EWMA limits: exact time-varying, or steady state.",
+)
 @click.option("--json", "as_json", is_flag=True, help="Print signals as a JSON list.")
 @click.option("--csv", "as_csv", is_flag=True, help="Print signals as CSV.")
-def flag_cmd(file, value_col, series_col, order_col, center, sigma, rules, ewma_opt, cusum_opt, ewma_limits,
-             as_json, as_csv):
+def flag_cmd(
+    file,
+    value_col,
+    series_col,
+    order_col,
+    center,
+    sigma,
+    rules,
+    ewma_opt,
+    cusum_opt,
+    ewma_limits,
+    as_json,
+    as_csv,
+):
     """Check a CSV of points against run rules, EWMA and CUSUM; print one row per signal.
 
     Prints series, index (1-based within the series), order, rule and statistic (the value for run
@@ -401,8 +476,13 @@ def flag_cmd(file, value_col, series_col, order_col, center, sigma, rules, ewma_
     except IngestError as exc:
         fail(exc)
     out = evaluate_signals(points, rule_list, ewma=ewma, cusum=cusum, passthrough=["_index", "_order"])
-    out = out.select(pl.col("series"), pl.col("_index").alias("index"), pl.col("_order").alias("order"),
-                     pl.col("rule"), pl.col("value").alias("statistic"))
+    out = out.select(
+        pl.col("series"),
+        pl.col("_index").alias("index"),
+        pl.col("_order").alias("order"),
+        pl.col("rule"),
+        pl.col("value").alias("statistic"),
+    )
     if as_json:
         click.echo(json.dumps(out.to_dicts()))
     elif as_csv:
@@ -422,29 +502,49 @@ def _spc_read_points(path, value_col, series_col, order_col, center, sigma):
     try:
         header = pl.read_csv(path, n_rows=0, infer_schema=False).columns
     except (pl.exceptions.PolarsError, OSError) as exc:
-        raise IngestError("cannot read the file as CSV", path=path, details=str(exc).splitlines()[0],
-                          fix="check that it is a comma-separated text file with a header row") from None
+        raise IngestError(
+            "cannot read the file as CSV",
+            path=path,
+            details=str(exc).splitlines()[0],
+            fix="check that it is a comma-separated text file with a header row",
+        ) from None
     wanted = [c for c in (value_col, series_col, order_col) if c is not None]
     for c in wanted:
         if c not in header:
-            raise IngestError(f'header lacks column "{c}"', path=path, line=1,
-                              details=f"Found: {', '.join(header)}", fix="name an existing column")
+            raise IngestError(
+                f'header lacks column "{c}"',
+                path=path,
+                line=1,
+                details=f"Found: {', '.join(header)}",
+                fix="name an existing column",
+            )
     try:
         raw = pl.read_csv(path, columns=list(dict.fromkeys(wanted)), infer_schema=False)
     except pl.exceptions.PolarsError as exc:
-        raise IngestError("cannot read the file as CSV", path=path, details=str(exc).splitlines()[0],
-                          fix="check the quoting and the number of fields per line") from None
+        raise IngestError(
+            "cannot read the file as CSV",
+            path=path,
+            details=str(exc).splitlines()[0],
+            fix="check the quoting and the number of fields per line",
+        ) from None
     raw = raw.with_row_index("_line", offset=2)  # line 1 is the header
     value = raw[value_col].str.strip_chars().cast(pl.Float64, strict=False)
     bad = raw.filter(value.is_null() | ~value.is_finite())
     if bad.height:
         line, text = bad["_line"][0], bad[value_col][0]
-        raise IngestError(f'column "{value_col}" is not a number', path=path, line=int(line),
-                          column=header.index(value_col) + 1, found=text if text is not None else "",
-                          expected="a finite number", fix=f"correct the value, or remove the line ({bad.height} bad in all)")
+        raise IngestError(
+            f'column "{value_col}" is not a number',
+            path=path,
+            line=int(line),
+            column=header.index(value_col) + 1,
+            found=text if text is not None else "",
+            expected="a finite number",
+            fix=f"correct the value, or remove the line ({bad.height} bad in all)",
+        )
     frame = raw.select(
         pl.col(series_col).fill_null("") if series_col else pl.lit("all").alias("series"),
-        value.alias("value"), pl.col("_line"),
+        value.alias("value"),
+        pl.col("_line"),
         (pl.col(order_col) if order_col else pl.col("_line") - 1).cast(pl.String).alias("_order"),
     ).rename({series_col: "series"} if series_col and series_col != "series" else {})
     if order_col:
@@ -453,13 +553,20 @@ def _spc_read_points(path, value_col, series_col, order_col, center, sigma):
         frame = frame.with_columns(key.alias("_key")).sort(["series", "_key"], maintain_order=True)
         dup = frame.filter(pl.struct("series", "_key").is_duplicated())
         if dup.height:
-            raise IngestError(f'column "{order_col}" repeats an order value within series "{dup["series"][0]}"',
-                              path=path, line=int(dup["_line"].min()), column=header.index(order_col) + 1,
-                              found=dup["_order"][0], expected="unique values per series",
-                              fix="drop the duplicate line or split the series with --series")
+            raise IngestError(
+                f'column "{order_col}" repeats an order value within series "{dup["series"][0]}"',
+                path=path,
+                line=int(dup["_line"].min()),
+                column=header.index(order_col) + 1,
+                found=dup["_order"][0],
+                expected="unique values per series",
+                fix="drop the duplicate line or split the series with --series",
+            )
     frame = frame.with_columns(
-        (pl.int_range(pl.len()).over("series") + 1).alias("_index"), pl.lit(center).alias("center"),
-        pl.lit(sigma).alias("sigma"))
+        (pl.int_range(pl.len()).over("series") + 1).alias("_index"),
+        pl.lit(center).alias("center"),
+        pl.lit(sigma).alias("sigma"),
+    )
     return frame.with_columns(pl.col("_index").alias("seq"))
 
 
@@ -476,13 +583,21 @@ def _evaluate_after_ingest(db, *, to_stderr: bool = False) -> None:
     except LotlineError as exc:
         fail(exc)
     if s is None:
-        click.echo("notice: no monitoring plan loaded; nothing evaluated (lotline plan load PLAN.toml)", err=True)
+        click.echo(
+            "notice: no monitoring plan loaded; nothing evaluated (lotline plan load PLAN.toml)", err=True
+        )
         return
-    click.echo(f"evaluated: {s.series} series, {s.signals_new} new signals, {s.signals_withdrawn} withdrawn, "
-               f"{s.excursions_opened} excursions opened", err=to_stderr)
+    click.echo(
+        f"evaluated: {s.series} series, {s.signals_new} new signals, {s.signals_withdrawn} withdrawn, "
+        f"{s.excursions_opened} excursions opened",
+        err=to_stderr,
+    )
 
-MONITORING_CAUTION = ("Signals advise; they do not decide. The fab's out-of-control action plan (OCAP) and a "
-                      "qualified engineer decide holds, releases, rework and tool downs.")
+
+MONITORING_CAUTION = (
+    "Signals advise; they do not decide. The fab's out-of-control action plan (OCAP) and a "
+    "qualified engineer decide holds, releases, rework and tool downs."
+)
 
 
 def _user_name() -> str:
@@ -525,7 +640,9 @@ def plan_load_cmd(file, db, check: bool):
             store.bump_data_version(con)
     except LotlineError as exc:
         fail(exc)
-    click.echo(f"loaded plan {plan.name!r} from {file} as plan version {version}: {len(plan.entries)} chart(s)")
+    click.echo(
+        f"loaded plan {plan.name!r} from {file} as plan version {version}: {len(plan.entries)} chart(s)"
+    )
 
 
 @plan_group.command("show")
@@ -593,8 +710,11 @@ def limits_show_cmd(db, chart, as_json: bool):
         echo_json(rows)
         return
     for r in rows:
-        lim = ("not frozen" if r["limit_version"] is None else
-               f"v{r['limit_version']} center {r['center']:.4g} sigma {r['sigma']:.4g} LCL {r['lcl']:.4g} UCL {r['ucl']:.4g}")
+        lim = (
+            "not frozen"
+            if r["limit_version"] is None
+            else f"v{r['limit_version']} center {r['center']:.4g} sigma {r['sigma']:.4g} LCL {r['lcl']:.4g} UCL {r['ucl']:.4g}"
+        )
         click.echo(f"{r['series_id']:>6} {r['chart']} {r['layer']}/{r['parameter']} {r['split_json']}: {lim}")
 
 
@@ -631,7 +751,9 @@ def limits_history_cmd(db, chart, as_json: bool):
 @db_option
 @click.option("--chart", required=True, help="Plan entry whose series get a new limit version.")
 @click.option("--series", "series_id", type=int, default=None, help="Only this series id.")
-@click.option("--window", default=None, metavar="FROM..TO", help="Baseline window of point times (ISO dates).")
+@click.option(
+    "--window", default=None, metavar="FROM..TO", help="Baseline window of point times (ISO dates)."
+)
 @click.option("--first", type=int, default=None, help="Baseline = the first N points of each series.")
 @click.option("--reason", required=True, help="Why the limits are (re)frozen; kept in the history.")
 @click.option("--by", "user", default=None, help="Engineer freezing them (default: login name).")
@@ -655,28 +777,49 @@ def limits_freeze_cmd(db, chart, series_id, window, first, reason, user):
                 "expected FROM..TO with ISO dates, e.g. 2026-09-01..2026-09-14", param_hint="--window"
             ) from None
     try:
-        rows = evaluate.freeze_limits(store.resolve_db_path(db), chart=chart, reason=reason, user=user or _user_name(),
-                                      first=first, window=win, series_id=series_id)
+        rows = evaluate.freeze_limits(
+            store.resolve_db_path(db),
+            chart=chart,
+            reason=reason,
+            user=user or _user_name(),
+            first=first,
+            window=win,
+            series_id=series_id,
+        )
     except LotlineError as exc:
         fail(exc)
     for r in rows:
         if "skipped" in r:
             click.echo(f"series {r['series_id']}: skipped, {r['skipped']}")
         else:
-            click.echo(f"series {r['series_id']}: v{r['version']} center {r['center']:.4g} sigma {r['sigma']:.4g} "
-                       f"(n={r['baseline_n']})")
+            click.echo(
+                f"series {r['series_id']}: v{r['version']} center {r['center']:.4g} sigma {r['sigma']:.4g} "
+                f"(n={r['baseline_n']})"
+            )
 
 
 @cli.command("evaluate")
 @db_option
 @click.option("--full", is_flag=True, help="Recompute every series from its first point.")
 @click.option("--json", "as_json", is_flag=True, help="Print the run summary as JSON.")
-@click.option("--engine", type=click.Choice(["local", "spark"]), default="local", show_default=True,
-              help="local: the warehouse file; spark: a Parquet lake (see `lotline lake export`).")
-@click.option("--lake", "lake_dir", type=click.Path(file_okay=False), default=None,
-              help="Lake folder to evaluate (--engine spark).")
+@click.option(
+    "--engine",
+    type=click.Choice(["local", "spark"]),
+    default="local",
+    show_default=True,
+    help="local: the warehouse file; spark: a Parquet lake (see `lotline lake export`).",
+)
+@click.option(
+    "--lake",
+    "lake_dir",
+    type=click.Path(file_okay=False),
+    default=None,
+    help="Lake folder to evaluate (--engine spark).",
+)
 @click.option("--master", default="local[2]", show_default=True, help="Spark master URL (--engine spark).")
-def evaluate_cmd(db, full: bool, as_json: bool, engine: str = "local", lake_dir=None, master: str = "local[2]"):
+def evaluate_cmd(
+    db, full: bool, as_json: bool, engine: str = "local", lake_dir=None, master: str = "local[2]"
+):
     """Evaluate every chart of the plan: new signals, withdrawn ones, excursions (incremental by default).
 
     Example: lotline evaluate --db lotline.duckdb
@@ -738,10 +881,20 @@ def excursions_list_cmd(db, open_only: bool, since, as_json: bool):
     except LotlineError as exc:
         fail(exc)
     rows = [
-        {"id": r["excursion_id"], "state": r["state"], "severity": r["severity"], "chart": r["chart"],
-         "layer": r["layer"], "parameter": r["parameter"], "split": json.loads(r["split_json"]),
-         "rules": json.loads(r["rules_json"]), "first_at": r["first_at"], "last_at": r["last_at"],
-         "lots": json.loads(r["lots_json"]), "signals": r["n_signals"]}
+        {
+            "id": r["excursion_id"],
+            "state": r["state"],
+            "severity": r["severity"],
+            "chart": r["chart"],
+            "layer": r["layer"],
+            "parameter": r["parameter"],
+            "split": json.loads(r["split_json"]),
+            "rules": json.loads(r["rules_json"]),
+            "first_at": r["first_at"],
+            "last_at": r["last_at"],
+            "lots": json.loads(r["lots_json"]),
+            "signals": r["n_signals"],
+        }
         for r in df.to_dicts()
     ]
     if as_json:
@@ -749,19 +902,27 @@ def excursions_list_cmd(db, open_only: bool, since, as_json: bool):
         return
     for r in rows:
         split = ",".join(f"{k}={v}" for k, v in r["split"].items()) or "(pooled)"
-        click.echo(f"#{r['id']} {r['state']} {r['severity']} {r['chart']} {r['layer']}/{r['parameter']} {split} "
-                   f"rules {','.join(r['rules'])} {r['first_at']:%Y-%m-%d %H:%M}..{r['last_at']:%Y-%m-%d %H:%M} "
-                   f"lots {','.join(r['lots'])}")
+        click.echo(
+            f"#{r['id']} {r['state']} {r['severity']} {r['chart']} {r['layer']}/{r['parameter']} {split} "
+            f"rules {','.join(r['rules'])} {r['first_at']:%Y-%m-%d %H:%M}..{r['last_at']:%Y-%m-%d %H:%M} "
+            f"lots {','.join(r['lots'])}"
+        )
     click.echo(MONITORING_CAUTION)
 
 
 @excursions_group.command("set")
 @click.argument("excursion_id", type=int)
 @db_option
-@click.option("--state", type=click.Choice(["open", "acknowledged", "closed"]), required=True, help="New state.")
+@click.option(
+    "--state", type=click.Choice(["open", "acknowledged", "closed"]), required=True, help="New state."
+)
 @click.option("--by", "user", required=True, help="Engineer who decided (kept in the audit trail).")
-@click.option("--classification", type=click.Choice(["real", "measurement", "false_alarm"]), default=None,
-              help="What the excursion was.")
+@click.option(
+    "--classification",
+    type=click.Choice(["real", "measurement", "false_alarm"]),
+    default=None,
+    help="What the excursion was.",
+)
 @click.option("--cause", default=None, help="Cause category, e.g. process_tool, metrology, material.")
 @click.option("--action", default=None, help="Action taken under the fab's OCAP.")
 @click.option("--lots", default=None, help="Comma-separated lots the disposition covers.")
@@ -776,13 +937,20 @@ def excursions_set_cmd(excursion_id, db, state, user, classification, cause, act
 
     try:
         row = excursions.record_disposition(
-            store.resolve_db_path(db), excursion_id, user=user, state=state, classification=classification,
-            cause=cause, action=action, lots=[x for x in (lots or "").split(",") if x] or None, comment=comment)
+            store.resolve_db_path(db),
+            excursion_id,
+            user=user,
+            state=state,
+            classification=classification,
+            cause=cause,
+            action=action,
+            lots=[x for x in (lots or "").split(",") if x] or None,
+            comment=comment,
+        )
     except LotlineError as exc:
         fail(exc)
     click.echo(f"excursion #{excursion_id}: {row['from_state']} -> {row['to_state']} by {row['changed_by']}")
     click.echo(MONITORING_CAUTION)
-
 
 
 # --- drill-down commands ---
@@ -807,8 +975,10 @@ def _explain_lines(ex, top: int) -> list[str]:
     if ex.commonality is None or ex.commonality.height == 0:
         lines.append("  (nothing to rank)")
     else:
-        lines.append(f"  {'rank':>4}  {'step':<12} {'kind':<8} {'candidate':<16} {'affected':>8} {'lots':>5} "
-                     f"{'q':>9}  flags")
+        lines.append(
+            f"  {'rank':>4}  {'step':<12} {'kind':<8} {'candidate':<16} {'affected':>8} {'lots':>5} "
+            f"{'q':>9}  flags"
+        )
         for r in ex.commonality.head(top).iter_rows(named=True):
             flags = []
             if r["ran_most_lots"]:
@@ -817,12 +987,17 @@ def _explain_lines(ex, top: int) -> list[str]:
                 flags.append(f"aliased with {len(r['aliases'])}")
             q = r["q_best"]
             qtxt = "n/a" if q is None or q != q else f"{q:.2g}"
-            lines.append(f"  {r['rank']:>4}  {r['step']:<12} {r['kind']:<8} {r['candidate']:<16} "
-                         f"{r['n_affected']:>8} {r['n_lots']:>5} {qtxt:>9}  {'; '.join(flags)}")
+            lines.append(
+                f"  {r['rank']:>4}  {r['step']:<12} {r['kind']:<8} {r['candidate']:<16} "
+                f"{r['n_affected']:>8} {r['n_lots']:>5} {qtxt:>9}  {'; '.join(flags)}"
+            )
             lines.append(f"        {r['reason']}")
     if ex.signatures is not None and ex.signatures.height:
         counts = ex.signatures.group_by("label").len().sort(["len", "label"], descending=[True, False])
-        lines += ["", f"Wafer signatures ({ex.signatures.height} affected wafers vs the chart's baseline wafers):"]
+        lines += [
+            "",
+            f"Wafer signatures ({ex.signatures.height} affected wafers vs the chart's baseline wafers):",
+        ]
         lines += [f"  {r['label']}: {r['len']} wafer(s)" for r in counts.iter_rows(named=True)]
         emc = ex.signatures["edge_minus_centre"].drop_nulls()
         if emc.len():
@@ -830,13 +1005,17 @@ def _explain_lines(ex, top: int) -> list[str]:
     if ex.defect_clusters is not None:
         lines += ["", f"Defect clusters on the affected wafers: {ex.defect_clusters.height}"]
         for r in ex.defect_clusters.iter_rows(named=True):
-            lines.append(f"  {r['wafer_id']}: {r['kind']} of {r['n_defects']} defects, {r['length_mm']:.0f} mm long "
-                         f"at ({r['centroid_x_mm']:.0f}, {r['centroid_y_mm']:.0f}) mm")
+            lines.append(
+                f"  {r['wafer_id']}: {r['kind']} of {r['n_defects']} defects, {r['length_mm']:.0f} mm long "
+                f"at ({r['centroid_x_mm']:.0f}, {r['centroid_y_mm']:.0f}) mm"
+            )
     lines += ["", f"Process or metrology: {ex.verdict}"]
     if ex.attribution is not None:
         ev = ex.evidence
-        lines.append(f"  measuring tool {ev.metrology_tool}, shift {ev.shift_nm:+.2f} nm "
-                     f"(votes: process {ex.attribution.process_votes}, metrology {ex.attribution.metrology_votes})")
+        lines.append(
+            f"  measuring tool {ev.metrology_tool}, shift {ev.shift_nm:+.2f} nm "
+            f"(votes: process {ex.attribution.process_votes}, metrology {ex.attribution.metrology_votes})"
+        )
         lines += [f"  - {t}" for t in ex.attribution.evidence]
     for n in ex.notes:
         lines.append(f"note: {n}")
@@ -881,10 +1060,20 @@ def report_group():
 
 @report_group.command("weekly")
 @click.option("--week", default=None, help="ISO week YYYY-Www (default: the latest week with data).")
-@click.option("--out", "out", type=click.Path(dir_okay=False), default=None,
-              help="HTML file to write (default: tool_health_<week>.html).")
-@click.option("--pdf", "pdf", type=click.Path(dir_okay=False), default=None,
-              help="Also print the report to this PDF with headless Chromium.")
+@click.option(
+    "--out",
+    "out",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="HTML file to write (default: tool_health_<week>.html).",
+)
+@click.option(
+    "--pdf",
+    "pdf",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="Also print the report to this PDF with headless Chromium.",
+)
 @click.option("--json", "as_json", is_flag=True, help="Print the scorecards as JSON instead of a summary.")
 @db_option
 def report_weekly_cmd(week, out, pdf, as_json: bool, db):
@@ -915,7 +1104,10 @@ def report_weekly_cmd(week, out, pdf, as_json: bool, db):
     if as_json:
         echo_json({**h.to_dict(), "html": str(path), "pdf": pdf})
         return
-    click.echo(f"Week {h.week.label}: wrote {path} ({path.stat().st_size / 1e6:.1f} MB)" + (f" and {pdf}" if pdf else ""))
+    click.echo(
+        f"Week {h.week.label}: wrote {path} ({path.stat().st_size / 1e6:.1f} MB)"
+        + (f" and {pdf}" if pdf else "")
+    )
     for line in h.attention or ["No tool flagged this week."]:
         click.echo(f"  {line}")
     click.echo("Signals advise; the fab's OCAP and qualified engineers decide.")
@@ -923,18 +1115,44 @@ def report_weekly_cmd(week, out, pdf, as_json: bool, db):
 
 @cli.command("capacity")
 @click.option("--beams", type=click.IntRange(min=1), required=True, help="Parallel beams.")
-@click.option("--current-density", "current_density", type=click.FloatRange(min=0, min_open=True), required=True,
-              help="Beam current density J at the sample (A/cm²).")
-@click.option("--contrast", type=click.FloatRange(0, 1, min_open=True), required=True,
-              help="Defect contrast C (0..1].")
-@click.option("--pixel-nm", "pixel_nm", type=click.FloatRange(min=0, min_open=True), required=True,
-              help="Pixel size (nm), set by the smallest defect to catch.")
-@click.option("--care-area-cm2", "care_area", type=click.FloatRange(min=0, min_open=True), required=True,
-              help="Area inspected per wafer (cm²).")
-@click.option("--overhead-s", "overhead_s", type=click.FloatRange(min=0), default=0.0, show_default=True,
-              help="Load and align time per wafer (s).")
-@click.option("--reference", default=None, metavar="BEAMS,J,C,PIXEL_NM,CM2_PER_H",
-              help="A measured operating point of your tool that calibrates the rate constant.")
+@click.option(
+    "--current-density",
+    "current_density",
+    type=click.FloatRange(min=0, min_open=True),
+    required=True,
+    help="Beam current density J at the sample (A/cm²).",
+)
+@click.option(
+    "--contrast", type=click.FloatRange(0, 1, min_open=True), required=True, help="Defect contrast C (0..1]."
+)
+@click.option(
+    "--pixel-nm",
+    "pixel_nm",
+    type=click.FloatRange(min=0, min_open=True),
+    required=True,
+    help="Pixel size (nm), set by the smallest defect to catch.",
+)
+@click.option(
+    "--care-area-cm2",
+    "care_area",
+    type=click.FloatRange(min=0, min_open=True),
+    required=True,
+    help="Area inspected per wafer (cm²).",
+)
+@click.option(
+    "--overhead-s",
+    "overhead_s",
+    type=click.FloatRange(min=0),
+    default=0.0,
+    show_default=True,
+    help="Load and align time per wafer (s).",
+)
+@click.option(
+    "--reference",
+    default=None,
+    metavar="BEAMS,J,C,PIXEL_NM,CM2_PER_H",
+    help="A measured operating point of your tool that calibrates the rate constant.",
+)
 @click.option("--json", "as_json", is_flag=True, help="Print the plan as JSON.")
 def capacity_cmd(beams, current_density, contrast, pixel_nm, care_area, overhead_s, reference, as_json: bool):
     """E-beam inspection capacity: time per wafer, wafers per hour, and the cost of halving the defect size.
@@ -950,29 +1168,53 @@ def capacity_cmd(beams, current_density, contrast, pixel_nm, care_area, overhead
     from spc import inspection
 
     slowdown = float(inspection.defect_size_slowdown(0.5))
-    out: dict = {"beams": beams, "current_density_a_per_cm2": current_density, "contrast": contrast,
-                 "pixel_nm": pixel_nm, "care_area_cm2": care_area, "overhead_s": overhead_s,
-                 "halving_defect_size_slowdown": slowdown}
+    out: dict = {
+        "beams": beams,
+        "current_density_a_per_cm2": current_density,
+        "contrast": contrast,
+        "pixel_nm": pixel_nm,
+        "care_area_cm2": care_area,
+        "overhead_s": overhead_s,
+        "halving_defect_size_slowdown": slowdown,
+    }
     if reference:
         b, j, c, p, rate = _spc_floats(reference, "--reference", 5)
         k = inspection.calibrate_area_rate_constant(inspection.BeamSetup(int(b), j, c, p), rate)
-        opts = pl.DataFrame({"beams": [beams, beams], "current_density_a_per_cm2": current_density,
-                             "contrast": contrast, "pixel_nm": [pixel_nm, pixel_nm / 2.0],
-                             "care_area_cm2": care_area, "overhead_s": overhead_s})
+        opts = pl.DataFrame(
+            {
+                "beams": [beams, beams],
+                "current_density_a_per_cm2": current_density,
+                "contrast": contrast,
+                "pixel_nm": [pixel_nm, pixel_nm / 2.0],
+                "care_area_cm2": care_area,
+                "overhead_s": overhead_s,
+            }
+        )
         plan = inspection.plan_inspection_capacity(opts, rate_constant=k).to_dicts()
-        out.update(rate_constant=k, area_rate_cm2_per_h=plan[0]["area_rate_cm2_per_h"],
-                   s_per_wafer=plan[0]["total_s_per_wafer"], wafers_per_hour=plan[0]["wafers_per_hour"],
-                   half_size_s_per_wafer=plan[1]["total_s_per_wafer"], half_size_wafers_per_hour=plan[1]["wafers_per_hour"])
+        out.update(
+            rate_constant=k,
+            area_rate_cm2_per_h=plan[0]["area_rate_cm2_per_h"],
+            s_per_wafer=plan[0]["total_s_per_wafer"],
+            wafers_per_hour=plan[0]["wafers_per_hour"],
+            half_size_s_per_wafer=plan[1]["total_s_per_wafer"],
+            half_size_wafers_per_hour=plan[1]["wafers_per_hour"],
+        )
     if as_json:
         echo_json(out)
         return
     if reference:
-        click.echo(f"area rate {out['area_rate_cm2_per_h']:.4g} cm²/h: {out['s_per_wafer']:.4g} s per wafer, "
-                   f"{out['wafers_per_hour']:.4g} wafers/hour")
-        click.echo(f"half the defect size (pixel {pixel_nm / 2:g} nm): {out['half_size_s_per_wafer']:.4g} s per wafer, "
-                   f"{out['half_size_wafers_per_hour']:.4g} wafers/hour ({slowdown:g}x the scan time)")
+        click.echo(
+            f"area rate {out['area_rate_cm2_per_h']:.4g} cm²/h: {out['s_per_wafer']:.4g} s per wafer, "
+            f"{out['wafers_per_hour']:.4g} wafers/hour"
+        )
+        click.echo(
+            f"half the defect size (pixel {pixel_nm / 2:g} nm): {out['half_size_s_per_wafer']:.4g} s per wafer, "
+            f"{out['half_size_wafers_per_hour']:.4g} wafers/hour ({slowdown:g}x the scan time)"
+        )
     else:
-        click.echo(f"half the defect size: {slowdown:g}x the scan time (rate ∝ pixel⁴ at fixed current density).")
+        click.echo(
+            f"half the defect size: {slowdown:g}x the scan time (rate ∝ pixel⁴ at fixed current density)."
+        )
         click.echo("Pass --reference BEAMS,J,C,PIXEL_NM,CM2_PER_H measured on your tool for times per wafer.")
 
 
@@ -1003,7 +1245,11 @@ def serve_cmd(db, port: int, address: str, user_header: str | None):
 
     path = resolve_db_path(db)
     if not path.exists():
-        fail(FileNotFoundError(f"{path}: warehouse not found. Fix: run `lotline demo` or `lotline ingest PATH` first, or pass --db."))
+        fail(
+            FileNotFoundError(
+                f"{path}: warehouse not found. Fix: run `lotline demo` or `lotline ingest PATH` first, or pass --db."
+            )
+        )
     click.echo(f"Serving {path} at http://{address}:{port} (Ctrl-C stops)")
     sys.exit(run_server(path, port=port, address=address, user_header=user_header))
 
@@ -1013,7 +1259,7 @@ def serve_cmd(db, port: int, address: str, user_header: str | None):
 
 @cli.group("lake")
 def lake_group():
-    """Parquet lake: export the warehouse for a distributed engine (see docs/scaling.md).
+    """Parquet lake: export the warehouse for a distributed engine (see the README, "Scaling").
 
     Example: lotline lake export lake/ --db lotline.duckdb
     """
@@ -1051,7 +1297,12 @@ def _lake_evaluate(lake_dir, master: str, as_json: bool) -> None:
     from warehouse.errors import ConfigError, LotlineError
 
     if not lake_dir:
-        fail(ConfigError("--engine spark needs a lake", fix="pass --lake DIR (made by `lotline lake export DIR`)"), 2)
+        fail(
+            ConfigError(
+                "--engine spark needs a lake", fix="pass --lake DIR (made by `lotline lake export DIR`)"
+            ),
+            2,
+        )
     try:
         from warehouse import spark_engine
 
@@ -1075,13 +1326,24 @@ def _lake_evaluate(lake_dir, master: str, as_json: bool) -> None:
 
 
 @cli.command("demo")
-@click.option("--dir", "out_dir", type=click.Path(file_okay=False), default="demo_run", show_default=True,
-              help="Where the demo writes: DIR/exports/, DIR/lotline.duckdb, DIR/truth.json.")
-@click.option("--days", type=click.IntRange(5, 400), default=60, show_default=True, help="Days of fab history.")
+@click.option(
+    "--dir",
+    "out_dir",
+    type=click.Path(file_okay=False),
+    default="demo_run",
+    show_default=True,
+    help="Where the demo writes: DIR/exports/, DIR/lotline.duckdb, DIR/truth.json.",
+)
+@click.option(
+    "--days", type=click.IntRange(5, 400), default=60, show_default=True, help="Days of fab history."
+)
 @click.option("--seed", type=int, default=7, show_default=True, help="Seed of the generator (deterministic).")
 @click.option("--no-serve", is_flag=True, help="Stop after the summary instead of serving the dashboard.")
-@click.option("--score", is_flag=True, help="Score the existing warehouse in --dir against its truth.json "
-              "(does not regenerate).")
+@click.option(
+    "--score",
+    is_flag=True,
+    help="Score the existing warehouse in --dir against its truth.json (does not regenerate).",
+)
 @click.option("--port", type=int, default=8501, show_default=True, help="Dashboard port.")
 @click.option("--json", "as_json", is_flag=True, help="Print the summary (or score) as JSON.")
 def demo_cmd(out_dir, days: int, seed: int, no_serve: bool, score: bool, port: int, as_json: bool):
@@ -1100,7 +1362,12 @@ def demo_cmd(out_dir, days: int, seed: int, no_serve: bool, score: bool, port: i
         from demo_fab.score import render_score, score_demo
 
         if not (Path(out_dir) / "truth.json").exists():
-            fail(FileNotFoundError(f"{out_dir}/truth.json not found. Fix: run `lotline demo --dir {out_dir}` first."), 2)
+            fail(
+                FileNotFoundError(
+                    f"{out_dir}/truth.json not found. Fix: run `lotline demo --dir {out_dir}` first."
+                ),
+                2,
+            )
         try:
             result = score_demo(out_dir)
         except LotlineError as exc:

@@ -75,9 +75,13 @@ def _generate_sql(rows: int) -> list[tuple[str, list]]:
     param_list = "[" + ", ".join(f"'{v}'" for v in PARAMS) + "]"
     t0 = "TIMESTAMP '2026-01-01 00:00:00'"
     return [
-        ("INSERT INTO source_files VALUES (1, 'bench/generated.csv', repeat('0', 64), 0, 'measurements', 'cdsem_long_v2', "
-         "'loaded', ?, 0, 0, 0, now()::TIMESTAMP, 'bench', NULL)", [rows]),  # fmt: skip
-        (f"""
+        (
+            "INSERT INTO source_files VALUES (1, 'bench/generated.csv', repeat('0', 64), 0, 'measurements', 'cdsem_long_v2', "
+            "'loaded', ?, 0, 0, 0, now()::TIMESTAMP, 'bench', NULL)",
+            [rows],
+        ),  # fmt: skip
+        (
+            f"""
 INSERT INTO measurements
 SELECT 'B' || lpad(CAST(i // 135 AS VARCHAR), 7, '0') AS lot_id,
        'B' || lpad(CAST(i // 135 AS VARCHAR), 7, '0') || '.W' || CAST((i // 45) % 3 + 1 AS VARCHAR) AS wafer_id,
@@ -92,8 +96,11 @@ SELECT 'B' || lpad(CAST(i // 135 AS VARCHAR), 7, '0') AS lot_id,
        'nm' AS unit, {t0} + to_seconds(CAST(i // 135 AS BIGINT) * 600 + (i % 135)) AS measured_at,
        'SEM' || CAST((i // 135) % 6 + 1 AS VARCHAR) AS metrology_tool, 'R1' AS recipe, 1 AS repeat,
        'production' AS sample_kind, 1 AS _source_file_id, i + 1 AS _source_line, NULL::BIGINT AS _superseded_by
-FROM range(?) t(i)""", [rows]),  # fmt: skip
-        (f"""
+FROM range(?) t(i)""",
+            [rows],
+        ),  # fmt: skip
+        (
+            f"""
 INSERT INTO process_history
 SELECT 'B' || lpad(CAST(l AS VARCHAR), 7, '0'), NULL, 'P' || CAST(l % 3 AS VARCHAR),
        {layer_list}[(l % 4) + 1] || '_' || s.step, s.seq,
@@ -101,26 +108,39 @@ SELECT 'B' || lpad(CAST(l AS VARCHAR), 7, '0'), NULL, 'P' || CAST(l % 3 AS VARCH
        CASE s.step WHEN 'EXPOSE' THEN NULL ELSE ['A', 'B'][(l % 2) + 1] END, 'RCP_' || s.step,
        {t0} + to_seconds(l * 600 - 3600 + s.seq * 600), {t0} + to_seconds(l * 600 - 3000 + s.seq * 600),
        1, l + 1, NULL
-FROM range(?) t(l), (VALUES ('EXPOSE', 1), ('ETCH', 2)) s(step, seq)""", [n_lots]),  # fmt: skip
-        (f"""
+FROM range(?) t(l), (VALUES ('EXPOSE', 1), ('ETCH', 2)) s(step, seq)""",
+            [n_lots],
+        ),  # fmt: skip
+        (
+            f"""
 INSERT INTO inspections
 SELECT 'B' || lpad(CAST(l AS VARCHAR), 7, '0'), 'B' || lpad(CAST(l AS VARCHAR), 7, '0') || '.W1', 'P0', 'M1',
        'INSP1', 'I1', {t0} + to_seconds(l * 600 + 300), 679.0, 40, NULL, 'production', 1, l + 1, NULL
-FROM range(0, ?, 50) t(l)""", [n_lots]),  # fmt: skip
-        (f"""
+FROM range(0, ?, 50) t(l)""",
+            [n_lots],
+        ),  # fmt: skip
+        (
+            f"""
 INSERT INTO defects
 SELECT 'B' || lpad(CAST(l AS VARCHAR), 7, '0'), 'B' || lpad(CAST(l AS VARCHAR), 7, '0') || '.W1', 'M1', 'INSP1',
        {t0} + to_seconds(l * 600 + 300), d, 140 * cos(d * 0.7), 140 * sin(d * 1.3) * 0.9, 60 + d,
        ['particle', 'scratch', 'residue'][(d % 3) + 1], 1, l * 40 + d, NULL
-FROM range(0, ?, 50) t(l), range(40) u(d)""", [n_lots]),  # fmt: skip
-        ("""
+FROM range(0, ?, 50) t(l), range(40) u(d)""",
+            [n_lots],
+        ),  # fmt: skip
+        (
+            """
 INSERT INTO spec_limits
 SELECT '*', l.layer, p.parameter, p.target - greatest(0.1 * p.target, 1.0), p.target,
        p.target + greatest(0.1 * p.target, 1.0), 'nm', TIMESTAMP '2025-01-01', NULL, 1, 1, NULL
 FROM (VALUES ('M1'), ('V1'), ('M2'), ('PO')) l(layer),
      (VALUES ('cd_mid', 45.0), ('cd_top', 43.0), ('cd_bot', 47.0), ('lwr', 3.0), ('pitch', 90.0)) p(parameter, target)""",
-         []),  # fmt: skip
-        ("INSERT INTO rejects SELECT 1, 1000000 + r, 'Value_nm', 'n/a', 'expected a number' FROM range(200) t(r)", []),
+            [],
+        ),  # fmt: skip
+        (
+            "INSERT INTO rejects SELECT 1, 1000000 + r, 'Value_nm', 'n/a', 'expected a number' FROM range(200) t(r)",
+            [],
+        ),
     ]
 
 
@@ -168,7 +188,11 @@ class _Recorder:
 
     def execute(self, sql, parameters=None, *a, **k):
         self._log.append(("execute", sql, _params(parameters)))
-        return self._target.execute(sql, parameters, *a, **k) if parameters is not None else self._target.execute(sql)
+        return (
+            self._target.execute(sql, parameters, *a, **k)
+            if parameters is not None
+            else self._target.execute(sql)
+        )
 
     def sql(self, sql, *a, params=None, **k):
         self._log.append(("execute", sql, _params(params)))
@@ -226,7 +250,10 @@ def page_calls(con) -> dict[str, list[tuple[str, dict]]]:
         "overview": [
             ("data_time_range", {}),
             ("open_excursions_by_severity", {}),
-            ("ooc_by_tool_layer", {"start": start, "end": last + timedelta(seconds=1), "tool_key": "process_tool"}),
+            (
+                "ooc_by_tool_layer",
+                {"start": start, "end": last + timedelta(seconds=1), "tool_key": "process_tool"},
+            ),
             ("newest_signals", {"limit": 50, "since": start}),
             ("tool_freshness", {"now": last, "stale_after_h": 24.0}),
         ],

@@ -172,7 +172,9 @@ print(json.dumps({"seconds": sec, "peak_rss_mb": rss, **s.as_dict()}))
 
 def _evaluate_child(path: Path, mode: str) -> dict:
     root = Path(__file__).resolve().parents[1]
-    out = subprocess.run([sys.executable, "-c", _CHILD, str(path), mode], cwd=root, capture_output=True, text=True)
+    out = subprocess.run(
+        [sys.executable, "-c", _CHILD, str(path), mode], cwd=root, capture_output=True, text=True
+    )
     if out.returncode:
         raise RuntimeError(out.stderr)
     return json.loads(out.stdout.strip().splitlines()[-1])
@@ -190,17 +192,38 @@ def run(size: int, *, days: int = 60) -> list[dict]:
     inc = _evaluate_child(path, "incremental")
     full = _evaluate_child(path, "full")
     ratio = inc["seconds"] / full["seconds"] if full["seconds"] else None
-    common = {"size": size, "lots": info["lots"], "target": f"<= {TARGET_RATIO:.0%} of full", "build_seconds": round(build_s, 1),
-              "day_rows": added, "series": full["series"], "points": full["points"]}
+    common = {
+        "size": size,
+        "lots": info["lots"],
+        "target": f"<= {TARGET_RATIO:.0%} of full",
+        "build_seconds": round(build_s, 1),
+        "day_rows": added,
+        "series": full["series"],
+        "points": full["points"],
+    }
     rows = [
-        {"name": "evaluate: incremental (one day) vs full", "seconds": round(inc["seconds"], 3),
-         "baseline_seconds": round(full["seconds"], 3), "ratio": None if ratio is None else round(ratio, 4),
-         "ok": ratio is not None and ratio <= TARGET_RATIO, "peak_rss_mb": round(inc["peak_rss_mb"]),
-         "baseline_peak_rss_mb": round(full["peak_rss_mb"]), "incremental_points": inc["points"],
-         "incremental_series": inc["series"], **common},
-        {"name": "evaluate: first evaluation (auto-freeze, all signals)", "seconds": round(first["seconds"], 3),
-         "baseline_seconds": round(full["seconds"], 3), "ratio": round(first["seconds"] / full["seconds"], 3),
-         "ok": True, "peak_rss_mb": round(first["peak_rss_mb"]), "signals": first["signals_new"], **common},
+        {
+            "name": "evaluate: incremental (one day) vs full",
+            "seconds": round(inc["seconds"], 3),
+            "baseline_seconds": round(full["seconds"], 3),
+            "ratio": None if ratio is None else round(ratio, 4),
+            "ok": ratio is not None and ratio <= TARGET_RATIO,
+            "peak_rss_mb": round(inc["peak_rss_mb"]),
+            "baseline_peak_rss_mb": round(full["peak_rss_mb"]),
+            "incremental_points": inc["points"],
+            "incremental_series": inc["series"],
+            **common,
+        },
+        {
+            "name": "evaluate: first evaluation (auto-freeze, all signals)",
+            "seconds": round(first["seconds"], 3),
+            "baseline_seconds": round(full["seconds"], 3),
+            "ratio": round(first["seconds"] / full["seconds"], 3),
+            "ok": True,
+            "peak_rss_mb": round(first["peak_rss_mb"]),
+            "signals": first["signals_new"],
+            **common,
+        },
     ]
     shutil.rmtree(path.with_suffix(".duckdb.wal"), ignore_errors=True)
     return rows

@@ -93,8 +93,13 @@ def _run_child(code: str, *args: str) -> tuple[float, list[str], float, float]:
         "print(json.dumps({'out': p.stdout, 'err': p.stderr, 'rc': p.returncode, 'rss_kb': ru.ru_maxrss,"
         " 'cpu_s': ru.ru_utime + ru.ru_stime}))"
     )
-    res = subprocess.run([sys.executable, "-c", wrapper, *cmd], capture_output=True, text=True,
-                         cwd=Path(__file__).resolve().parent.parent, check=True)
+    res = subprocess.run(
+        [sys.executable, "-c", wrapper, *cmd],
+        capture_output=True,
+        text=True,
+        cwd=Path(__file__).resolve().parent.parent,
+        check=True,
+    )
     info = json.loads(res.stdout)
     if info["rc"] != 0:
         raise RuntimeError(info["err"][-2000:])
@@ -120,13 +125,24 @@ def run(size: int) -> list[dict]:
     loaded = int(lot_out[0])
     ratio = lot_s / base_s
     ok = ratio <= TARGET_RATIO and lot_rss <= TARGET_RSS_MB and loaded == size
-    return [{
-        "name": "ingest_long_csv", "size": size, "seconds": round(lot_s, 3), "baseline_seconds": round(base_s, 3),
-        "ratio": round(ratio, 3), "target": TARGET_RATIO, "ok": ok,
-        "rows_per_s": round(size / lot_s), "peak_rss_mb": round(lot_rss), "baseline_peak_rss_mb": round(base_rss),
-        "rows_loaded": loaded, "file_mb": round(csv.stat().st_size / 2**20, 1),
-        "cpu_seconds": round(lot_cpu, 2), "baseline_cpu_seconds": round(base_cpu, 2),
-    }]
+    return [
+        {
+            "name": "ingest_long_csv",
+            "size": size,
+            "seconds": round(lot_s, 3),
+            "baseline_seconds": round(base_s, 3),
+            "ratio": round(ratio, 3),
+            "target": TARGET_RATIO,
+            "ok": ok,
+            "rows_per_s": round(size / lot_s),
+            "peak_rss_mb": round(lot_rss),
+            "baseline_peak_rss_mb": round(base_rss),
+            "rows_loaded": loaded,
+            "file_mb": round(csv.stat().st_size / 2**20, 1),
+            "cpu_seconds": round(lot_cpu, 2),
+            "baseline_cpu_seconds": round(base_cpu, 2),
+        }
+    ]
 
 
 def main() -> None:
@@ -135,12 +151,18 @@ def main() -> None:
     args = ap.parse_args()
     for r in run(args.rows):
         print(f"rows              {r['size']:,} ({r['file_mb']} MB CSV)")
-        print(f"lotline ingest    {r['seconds']:.2f} s  ({r['rows_per_s']:,} rows/s, peak RSS {r['peak_rss_mb']} MB)")
+        print(
+            f"lotline ingest    {r['seconds']:.2f} s  ({r['rows_per_s']:,} rows/s, peak RSS {r['peak_rss_mb']} MB)"
+        )
         print(f"bare read_csv     {r['baseline_seconds']:.2f} s  (peak RSS {r['baseline_peak_rss_mb']} MB)")
-        print(f"CPU time          lotline {r['cpu_seconds']:.1f} s, read_csv {r['baseline_cpu_seconds']:.1f} s "
-              f"(ratio {r['cpu_seconds'] / r['baseline_cpu_seconds']:.2f}; wall times suffer when other work shares the cores)")
-        print(f"ratio             {r['ratio']:.2f}  (target <= {r['target']}, RSS <= {TARGET_RSS_MB} MB): "
-              f"{'ok' if r['ok'] else 'NOT MET'}")
+        print(
+            f"CPU time          lotline {r['cpu_seconds']:.1f} s, read_csv {r['baseline_cpu_seconds']:.1f} s "
+            f"(ratio {r['cpu_seconds'] / r['baseline_cpu_seconds']:.2f}; wall times suffer when other work shares the cores)"
+        )
+        print(
+            f"ratio             {r['ratio']:.2f}  (target <= {r['target']}, RSS <= {TARGET_RSS_MB} MB): "
+            f"{'ok' if r['ok'] else 'NOT MET'}"
+        )
 
 
 if __name__ == "__main__":

@@ -36,13 +36,15 @@ def make_points(size: int, seed: int = 0) -> pl.DataFrame:
     length = size // n_series
     rng = np.random.default_rng(seed)
     names = pl.Series([f"S{i:06d}" for i in range(n_series)])
-    return pl.DataFrame({
-        "series": names.gather(np.repeat(np.arange(n_series), length)),
-        "seq": np.tile(np.arange(1, length + 1, dtype=np.int64), n_series),
-        "value": rng.standard_normal(n_series * length) * 2.0 + 10.0,
-        "center": 10.0,
-        "sigma": 2.0,
-    })
+    return pl.DataFrame(
+        {
+            "series": names.gather(np.repeat(np.arange(n_series), length)),
+            "seq": np.tile(np.arange(1, length + 1, dtype=np.int64), n_series),
+            "value": rng.standard_normal(n_series * length) * 2.0 + 10.0,
+            "center": 10.0,
+            "sigma": 2.0,
+        }
+    )
 
 
 # ----------------------------------------------------------------- naive per-point loop (pandas group-by)
@@ -61,23 +63,25 @@ def naive_loop(points) -> int:
             count += abs(z) > 3  # we1, nelson1
             count += abs(z) > 3
             for m, win, k in ((2, 3, 2.0), (4, 5, 1.0)):  # we2/nelson5, we3/nelson6
-                seg = zs[max(0, i - win + 1): i + 1]
+                seg = zs[max(0, i - win + 1) : i + 1]
                 hit = (z > k and sum(v > k for v in seg) >= m) or (z < -k and sum(v < -k for v in seg) >= m)
                 count += 2 * hit
             for L in (8, 9):  # we4, nelson2
-                seg = zs[i - L + 1: i + 1] if i >= L - 1 else []
+                seg = zs[i - L + 1 : i + 1] if i >= L - 1 else []
                 count += bool(seg) and (all(v > 0 for v in seg) or all(v < 0 for v in seg))
             if i >= 5:  # nelson3
-                seg = x[i - 5: i + 1]
-                count += all(b > a for a, b in zip(seg, seg[1:], strict=False)) or all(b < a for a, b in zip(seg, seg[1:], strict=False))
+                seg = x[i - 5 : i + 1]
+                count += all(b > a for a, b in zip(seg, seg[1:], strict=False)) or all(
+                    b < a for a, b in zip(seg, seg[1:], strict=False)
+                )
             if i >= 13:  # nelson4
-                seg = x[i - 13: i + 1]
+                seg = x[i - 13 : i + 1]
                 d = [b - a for a, b in zip(seg, seg[1:], strict=False)]
                 count += all(p * q < 0 for p, q in zip(d, d[1:], strict=False))
             if i >= 14:  # nelson7
-                count += all(abs(v) < 1 for v in zs[i - 14: i + 1])
+                count += all(abs(v) < 1 for v in zs[i - 14 : i + 1])
             if i >= 7:  # nelson8
-                count += all(abs(v) > 1 for v in zs[i - 7: i + 1])
+                count += all(abs(v) > 1 for v in zs[i - 7 : i + 1])
             w = w + EWMA_P.lam * (z - w)
             lim = EWMA_P.L * (EWMA_P.lam / (2 - EWMA_P.lam) * (1 - (1 - EWMA_P.lam) ** (2 * (i + 1)))) ** 0.5
             count += abs(w) > lim
@@ -95,7 +99,7 @@ def naive_loop(points) -> int:
 def _runs(cond: np.ndarray, length: int) -> np.ndarray:
     out = np.zeros(cond.size, dtype=bool)
     if cond.size >= length:
-        out[length - 1:] = sliding_window_view(cond, length).all(axis=1)
+        out[length - 1 :] = sliding_window_view(cond, length).all(axis=1)
     return out
 
 
@@ -172,14 +176,40 @@ def run(size: int) -> list[dict]:
     n_lot_sub = lotline(subset)
     assert n_naive == n_lot_small, f"naive loop found {n_naive} signals, lotline {n_lot_small}"
     assert n_np == n_lot_sub, f"NumPy baseline found {n_np} signals, lotline {n_lot_sub}"
-    common = {"size": points.height, "series": n_series, "signals": n_lot, "peak_rss_mb": round(rss_gb * 1024)}
+    common = {
+        "size": points.height,
+        "series": n_series,
+        "signals": n_lot,
+        "peak_rss_mb": round(rss_gb * 1024),
+    }
     return [
-        {"name": "rules+ewma+cusum vs naive loop", "seconds": t_lot, "baseline_seconds": t_naive,
-         "ratio": t_naive / t_lot, "target": 50.0, "ok": t_naive / t_lot >= 50.0, **common},
-        {"name": "rules+ewma+cusum vs numpy per series", "seconds": t_lot, "baseline_seconds": t_np,
-         "ratio": t_np / t_lot, "target": 1.0, "ok": t_np / t_lot >= 1.0, **common},
-        {"name": "rules+ewma+cusum peak memory (GB)", "seconds": t_lot, "baseline_seconds": None,
-         "ratio": rss_gb, "target": 3.0, "ok": rss_gb <= 3.0, **common},
+        {
+            "name": "rules+ewma+cusum vs naive loop",
+            "seconds": t_lot,
+            "baseline_seconds": t_naive,
+            "ratio": t_naive / t_lot,
+            "target": 50.0,
+            "ok": t_naive / t_lot >= 50.0,
+            **common,
+        },
+        {
+            "name": "rules+ewma+cusum vs numpy per series",
+            "seconds": t_lot,
+            "baseline_seconds": t_np,
+            "ratio": t_np / t_lot,
+            "target": 1.0,
+            "ok": t_np / t_lot >= 1.0,
+            **common,
+        },
+        {
+            "name": "rules+ewma+cusum peak memory (GB)",
+            "seconds": t_lot,
+            "baseline_seconds": None,
+            "ratio": rss_gb,
+            "target": 3.0,
+            "ok": rss_gb <= 3.0,
+            **common,
+        },
     ]
 
 
@@ -190,11 +220,15 @@ def main() -> None:
     args = ap.parse_args()
     size = args.size or (1_000_000 if args.quick else 10_000_000)
     rows = run(size)
-    print(f"{'benchmark':<40} {'points':>11} {'lotline s':>10} {'baseline s':>11} {'ratio':>8} {'target':>7} ok")
+    print(
+        f"{'benchmark':<40} {'points':>11} {'lotline s':>10} {'baseline s':>11} {'ratio':>8} {'target':>7} ok"
+    )
     for r in rows:
         base = f"{r['baseline_seconds']:.2f}" if r["baseline_seconds"] is not None else "-"
-        print(f"{r['name']:<40} {r['size']:>11,} {r['seconds']:>10.2f} {base:>11} {r['ratio']:>8.2f} "
-              f"{r['target']:>7.1f} {'yes' if r['ok'] else 'NO'}")
+        print(
+            f"{r['name']:<40} {r['size']:>11,} {r['seconds']:>10.2f} {base:>11} {r['ratio']:>8.2f} "
+            f"{r['target']:>7.1f} {'yes' if r['ok'] else 'NO'}"
+        )
 
 
 if __name__ == "__main__":

@@ -47,31 +47,63 @@ def build_truth(data: DemoData, res: ExportResult) -> dict[str, object]:
     for f in data.faults:
         start, end = data.fault_times.get(f.id, (f.start, f.end))
         rec: dict[str, object] = {
-            "id": f.id, "kind": f.kind, "layer": f.layer, "parameter": f.parameter,
-            "start": _iso(start), "end": _iso(end), "magnitude": f.magnitude, "unit": f.unit,
-            "responsible": {"process_tool": f.process_tool, "chamber": f.chamber,
-                            "metrology_tool": f.metrology_tool, "inspection_tool": f.inspection_tool},
+            "id": f.id,
+            "kind": f.kind,
+            "layer": f.layer,
+            "parameter": f.parameter,
+            "start": _iso(start),
+            "end": _iso(end),
+            "magnitude": f.magnitude,
+            "unit": f.unit,
+            "responsible": {
+                "process_tool": f.process_tool,
+                "chamber": f.chamber,
+                "metrology_tool": f.metrology_tool,
+                "inspection_tool": f.inspection_tool,
+            },
             "lots": data.fault_lots.get(f.id, []),
-            "series_hint": f.series_hint, "description": f.description,
+            "series_hint": f.series_hint,
+            "description": f.description,
         }
         if f.kind == "corrected_reexport":
             rec["reexport"] = res.corrected_reexport
         faults.append(rec)
     studies = {
-        "monitor": {"lot": "HCMON-G1", "wafer": "HCMON-G1-01", "layer": "GATE_ETCH", "feature": "MON-L45",
-                    "true_cd_nm": cfg.monitor_cd_nm, "sites": cfg.monitor_sites, "repeats": cfg.monitor_repeats,
-                    "day_sigma_nm": cfg.monitor_day_sigma_nm},
-        "beam_shrink": {"lot": "HCRPT-R1", "layer": "GATE_DEV", "feature": "RPT-L48",
-                        "amplitude_nm": cfg.shrink_amplitude_nm, "tau_repeats": cfg.shrink_tau,
-                        "model": "shrink(k) = amplitude * (1 - exp(-(k - 1) / tau))"},
-        "reference": {"lot": "HCREF-A1", "slope": 1.0 + cfg.reference_slope,
-                      "model": "cdsem = true + tool offset + slope_excess * (true - 50 nm) + noise",
-                      "tem_sigma_nm": cfg.tem_sigma_nm, "afm_sigma_nm": cfg.afm_sigma_nm},
-        "standard_defect": {"lot": "HCSTD-01", "layer": "STD_CHECK",
-                            "placed_per_bin": cfg.standard_defects_per_bin,
-                            "capture_by_bin": list(cfg.standard_capture_by_bin)},
-        "cdsems": {s.tool: {"offset_nm": s.offset_nm, "precision_nm": s.precision_nm, "dialect": s.dialect}
-                   for s in cfg.fab.cdsems},
+        "monitor": {
+            "lot": "HCMON-G1",
+            "wafer": "HCMON-G1-01",
+            "layer": "GATE_ETCH",
+            "feature": "MON-L45",
+            "true_cd_nm": cfg.monitor_cd_nm,
+            "sites": cfg.monitor_sites,
+            "repeats": cfg.monitor_repeats,
+            "day_sigma_nm": cfg.monitor_day_sigma_nm,
+        },
+        "beam_shrink": {
+            "lot": "HCRPT-R1",
+            "layer": "GATE_DEV",
+            "feature": "RPT-L48",
+            "amplitude_nm": cfg.shrink_amplitude_nm,
+            "tau_repeats": cfg.shrink_tau,
+            "model": "shrink(k) = amplitude * (1 - exp(-(k - 1) / tau))",
+        },
+        "reference": {
+            "lot": "HCREF-A1",
+            "slope": 1.0 + cfg.reference_slope,
+            "model": "cdsem = true + tool offset + slope_excess * (true - 50 nm) + noise",
+            "tem_sigma_nm": cfg.tem_sigma_nm,
+            "afm_sigma_nm": cfg.afm_sigma_nm,
+        },
+        "standard_defect": {
+            "lot": "HCSTD-01",
+            "layer": "STD_CHECK",
+            "placed_per_bin": cfg.standard_defects_per_bin,
+            "capture_by_bin": list(cfg.standard_capture_by_bin),
+        },
+        "cdsems": {
+            s.tool: {"offset_nm": s.offset_nm, "precision_nm": s.precision_nm, "dialect": s.dialect}
+            for s in cfg.fab.cdsems
+        },
     }
     return {
         "version": TRUTH_VERSION,
@@ -111,13 +143,24 @@ def generate_demo(out_dir: Path, *, days: int = 60, seed: int = 7) -> DemoSummar
     truth_path.write_text(json.dumps(truth, indent=1) + "\n", encoding="utf-8")
     written = sum((out_dir / p).stat().st_size for v in res.files.values() for p in v)
     rows = {
-        "measurements": data.measurements.height, "inspections": data.inspections.height,
-        "defect_counts": data.defect_counts.height, "defects": data.defects.height,
-        "process_history": data.process_history.height, "tool_events": data.tool_events.height,
-        "spec_limits": data.spec_limits.height, "reference_values": data.reference_values.height,
+        "measurements": data.measurements.height,
+        "inspections": data.inspections.height,
+        "defect_counts": data.defect_counts.height,
+        "defects": data.defects.height,
+        "process_history": data.process_history.height,
+        "tool_events": data.tool_events.height,
+        "spec_limits": data.spec_limits.height,
+        "reference_values": data.reference_values.height,
     }
     return DemoSummary(
-        out_dir=out_dir, truth_path=truth_path, days=days, seed=seed,
-        files={k: len(v) for k, v in res.files.items()}, rows=rows, expected_rows=dict(res.expected_rows),
-        bytes_written=written, seconds=time.perf_counter() - t0, faults=tuple(f.id for f in data.faults),
+        out_dir=out_dir,
+        truth_path=truth_path,
+        days=days,
+        seed=seed,
+        files={k: len(v) for k, v in res.files.items()},
+        rows=rows,
+        expected_rows=dict(res.expected_rows),
+        bytes_written=written,
+        seconds=time.perf_counter() - t0,
+        faults=tuple(f.id for f in data.faults),
     )

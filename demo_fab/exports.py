@@ -16,19 +16,39 @@ import polars as pl
 from demo_fab import fab as fabmod
 from demo_fab.generate import DemoData
 
-LONG_HEADER = ("LotID,WaferID,Slot,Site,X_mm,Y_mm,Product,Layer,Stage,Parameter,Feature,Value_nm,MeasTime,Tool,"
-               "Recipe,Repeat,SampleType")
-WIDE_HEADER = "Lot;Wafer;Slot;SiteNo;PosX_um;PosY_um;Device;Level;CD_MID_um;CD_TOP_um;LWR_um;MeasDate;Equipment;Recipe"
+LONG_HEADER = (
+    "LotID,WaferID,Slot,Site,X_mm,Y_mm,Product,Layer,Stage,Parameter,Feature,Value_nm,MeasTime,Tool,"
+    "Recipe,Repeat,SampleType"
+)
+WIDE_HEADER = (
+    "Lot;Wafer;Slot;SiteNo;PosX_um;PosY_um;Device;Level;CD_MID_um;CD_TOP_um;LWR_um;MeasDate;Equipment;Recipe"
+)
 HISTORY_HEADER = "lot,wafer,product,step,seq,tool,chamber,recipe,track_in,track_out"
 REFERENCE_HEADER = "feature_id,layer,parameter,ref_value_A,ref_sigma_A,method,measured"
 SPEC_HEADER = "product,layer,parameter,lsl,target,usl,unit,effective_from,effective_to"
 EVENTS_HEADER = "tool,chamber,event_at,event_kind,note"
-PARQUET_COLUMNS = ("LOT", "WAFER", "PRODUCT", "LAYER", "TOOL", "RECIPE", "INSPECT_TIME", "AREA_CM2", "COUNT",
-                   "ADDERS", "KIND")
+PARQUET_COLUMNS = (
+    "LOT",
+    "WAFER",
+    "PRODUCT",
+    "LAYER",
+    "TOOL",
+    "RECIPE",
+    "INSPECT_TIME",
+    "AREA_CM2",
+    "COUNT",
+    "ADDERS",
+    "KIND",
+)
 
 STAGE_CODE = {"develop": "DEV", "etch": "ETCH"}
-KIND_CODE = {"production": "PROD", "monitor": "MON", "repeat_study": "REPEAT", "reference_feature": "REF",
-             "standard_defect": "STD"}
+KIND_CODE = {
+    "production": "PROD",
+    "monitor": "MON",
+    "repeat_study": "REPEAT",
+    "reference_feature": "REF",
+    "standard_defect": "STD",
+}
 METHOD_CODE = {"xsem_tem": "TEM", "afm": "AFM"}
 ISO_Z = "%Y-%m-%dT%H:%M:%SZ"
 ISO_OFFSET = "%Y-%m-%dT%H:%M:%S%:z"
@@ -55,7 +75,7 @@ def _write(root: Path, rel: str, data: bytes) -> None:
 
 
 def _local(col: str, fmt: str) -> pl.Expr:
-    return (pl.col(col).dt.replace_time_zone("UTC").dt.convert_time_zone(fabmod.LOCAL_TZ).dt.strftime(fmt))
+    return pl.col(col).dt.replace_time_zone("UTC").dt.convert_time_zone(fabmod.LOCAL_TZ).dt.strftime(fmt)
 
 
 # ------------------------------------------------------------------------------------------- CD-SEM
@@ -63,12 +83,22 @@ def _local(col: str, fmt: str) -> pl.Expr:
 
 def _long_frame(m: pl.DataFrame) -> pl.DataFrame:
     return m.select(
-        LotID=pl.col("lot_id"), WaferID=pl.col("wafer_id"), Slot=pl.col("slot"), Site=pl.col("site_id"),
-        X_mm=pl.col("x_mm").round(1), Y_mm=pl.col("y_mm").round(1), Product=pl.col("product"),
-        Layer=pl.col("layer"), Stage=pl.col("stage").replace_strict(STAGE_CODE),
-        Parameter=pl.col("parameter").str.to_uppercase(), Feature=pl.col("feature"),
-        Value_nm=pl.col("value").round(3).cast(pl.String), MeasTime=pl.col("measured_at").dt.strftime(ISO_Z),
-        Tool=pl.col("metrology_tool"), Recipe=pl.col("recipe"), Repeat=pl.col("repeat"),
+        LotID=pl.col("lot_id"),
+        WaferID=pl.col("wafer_id"),
+        Slot=pl.col("slot"),
+        Site=pl.col("site_id"),
+        X_mm=pl.col("x_mm").round(1),
+        Y_mm=pl.col("y_mm").round(1),
+        Product=pl.col("product"),
+        Layer=pl.col("layer"),
+        Stage=pl.col("stage").replace_strict(STAGE_CODE),
+        Parameter=pl.col("parameter").str.to_uppercase(),
+        Feature=pl.col("feature"),
+        Value_nm=pl.col("value").round(3).cast(pl.String),
+        MeasTime=pl.col("measured_at").dt.strftime(ISO_Z),
+        Tool=pl.col("metrology_tool"),
+        Recipe=pl.col("recipe"),
+        Repeat=pl.col("repeat"),
         SampleType=pl.col("sample_kind").replace_strict(KIND_CODE),
     )
 
@@ -88,15 +118,20 @@ def write_cdsem(root: Path, data: DemoData, res: ExportResult) -> None:
     # a production lot-layer measurement goes into the file of the day it started, whole: a lot split over two
     # daily files would look like a corrected re-export of its first part
     event = ["lot_id", "layer", "metrology_tool", "sample_kind"]
-    started = pl.when(pl.col("sample_kind") == "production").then(
-        pl.col("measured_at").min().over(event)).otherwise(pl.col("measured_at"))
+    started = (
+        pl.when(pl.col("sample_kind") == "production")
+        .then(pl.col("measured_at").min().over(event))
+        .otherwise(pl.col("measured_at"))
+    )
     long_m = m.filter(~is_wide).with_columns(_day=started.dt.strftime("%Y%m%d"))
     wide_m = m.filter(is_wide).with_columns(_start=pl.col("measured_at").min().over(event))
 
     rx = data.reexport
     rx_mask = (
-        (pl.col("lot_id") == rx.get("lot_id", "")) & (pl.col("layer") == rx.get("layer", ""))
-        & (pl.col("metrology_tool") == rx.get("metrology_tool", "")) & (pl.col("sample_kind") == "production")
+        (pl.col("lot_id") == rx.get("lot_id", ""))
+        & (pl.col("layer") == rx.get("layer", ""))
+        & (pl.col("metrology_tool") == rx.get("metrology_tool", ""))
+        & (pl.col("sample_kind") == "production")
     )
     # planned bad rows: (tool, day fraction) -> list of (production row index, kind)
     days = cfg.days
@@ -120,8 +155,13 @@ def write_cdsem(root: Path, data: DemoData, res: ExportResult) -> None:
             _write(root, crel, _long_bytes(fixed))
             res.add("cdsem_long_v2", crel)
             res.corrected_reexport = {
-                "lot": rx["lot_id"], "layer": rx["layer"], "metrology_tool": tool, "original_file": rel,
-                "corrected_file": crel, "rows": fixed.height, "wrong_offset_nm": rx["offset_nm"],
+                "lot": rx["lot_id"],
+                "layer": rx["layer"],
+                "metrology_tool": tool,
+                "original_file": rel,
+                "corrected_file": crel,
+                "rows": fixed.height,
+                "wrong_offset_nm": rx["offset_nm"],
             }
         key = next((k for k in plan if k[0] == tool and day_names[k] == day), None)
         if key is not None:
@@ -130,26 +170,52 @@ def write_cdsem(root: Path, data: DemoData, res: ExportResult) -> None:
             corrupted += sum(1 for r in rejects if r["kind"] != "duplicate_row")
         _write(root, rel, _long_bytes(frame))
         res.add("cdsem_long_v2", rel)
-    missing = [k for k in plan if not any(r["file"].endswith(f"{k[0]}_{day_names[k]}.csv") for r in res.planned_rejects)]
+    missing = [
+        k
+        for k in plan
+        if not any(r["file"].endswith(f"{k[0]}_{day_names[k]}.csv") for r in res.planned_rejects)
+    ]
     if missing:
         raise RuntimeError(f"planned bad rows found no file for {missing}; lengthen the window")
 
     wide = (
-        wide_m.pivot(on="parameter", index=["lot_id", "wafer_id", "slot", "site_id", "x_mm", "y_mm", "product",
-                                            "layer", "measured_at", "metrology_tool", "recipe", "_start"],
-                     values="value")
+        wide_m.pivot(
+            on="parameter",
+            index=[
+                "lot_id",
+                "wafer_id",
+                "slot",
+                "site_id",
+                "x_mm",
+                "y_mm",
+                "product",
+                "layer",
+                "measured_at",
+                "metrology_tool",
+                "recipe",
+                "_start",
+            ],
+            values="value",
+        )
         .sort("measured_at", "metrology_tool", "lot_id", "wafer_id", "site_id")
         .with_columns(_day=_local("_start", "%Y%m%d"))
     )
     wide_all = wide.select(
-        Lot=pl.col("lot_id"), Wafer=pl.col("wafer_id"), Slot=pl.col("slot"),
+        Lot=pl.col("lot_id"),
+        Wafer=pl.col("wafer_id"),
+        Slot=pl.col("slot"),
         SiteNo=pl.col("site_id").cast(pl.Int64),
         PosX_um=(pl.col("x_mm") * 1000).round(0).cast(pl.Int64),
         PosY_um=(pl.col("y_mm") * 1000).round(0).cast(pl.Int64),
-        Device=pl.col("product"), Level=pl.col("layer"),
-        CD_MID_um=pl.col("cd_mid") / 1000, CD_TOP_um=pl.col("cd_top") / 1000, LWR_um=pl.col("lwr") / 1000,
-        MeasDate=_local("measured_at", "%d.%m.%Y %H:%M:%S"), Equipment=pl.col("metrology_tool"),
-        Recipe=pl.col("recipe"), _day=pl.col("_day"),
+        Device=pl.col("product"),
+        Level=pl.col("layer"),
+        CD_MID_um=pl.col("cd_mid") / 1000,
+        CD_TOP_um=pl.col("cd_top") / 1000,
+        LWR_um=pl.col("lwr") / 1000,
+        MeasDate=_local("measured_at", "%d.%m.%Y %H:%M:%S"),
+        Equipment=pl.col("metrology_tool"),
+        Recipe=pl.col("recipe"),
+        _day=pl.col("_day"),
     )
     wparts = wide_all.partition_by(["Equipment", "_day"], maintain_order=True, include_key=True, as_dict=True)
     for (tool, day), frame in wparts.items():
@@ -195,8 +261,16 @@ def _plant_bad_rows(frame: pl.DataFrame, plan: list[tuple[int, str]], rel: str) 
     planned = []
     for i, col, reason, value, kind in rejects:
         line = line_of[i] + (1 if kind == "duplicate_row" else 0)
-        planned.append({"file": rel, "line": line, "column": col, "value": value, "reason_contains": reason,
-                        "kind": kind})
+        planned.append(
+            {
+                "file": rel,
+                "line": line,
+                "column": col,
+                "value": value,
+                "reason_contains": reason,
+                "kind": kind,
+            }
+        )
     planned.sort(key=lambda r: r["line"])
     return pl.DataFrame(out, schema=frame.schema, orient="row"), planned
 
@@ -214,13 +288,22 @@ def write_inspections(root: Path, data: DemoData, res: ExportResult) -> None:
     classes = (
         data.defect_counts.filter(pl.col("inspection_tool").is_in(jsonl_tools))
         .group_by(keys, maintain_order=True)
-        .agg(classes=pl.struct(pl.col("defect_class").alias("class"), pl.col("size_bin").alias("bin"),
-                               pl.col("count").alias("n")))
+        .agg(
+            classes=pl.struct(
+                pl.col("defect_class").alias("class"),
+                pl.col("size_bin").alias("bin"),
+                pl.col("count").alias("n"),
+            )
+        )
     )
     defects = data.defects.group_by(keys, maintain_order=True).agg(
-        defects=pl.struct(pl.col("defect_id").alias("id"), (pl.col("x_mm") * 1000).round(1).alias("x_um"),
-                          (pl.col("y_mm") * 1000).round(1).alias("y_um"), pl.col("size_nm"),
-                          pl.col("defect_class").alias("class"))
+        defects=pl.struct(
+            pl.col("defect_id").alias("id"),
+            (pl.col("x_mm") * 1000).round(1).alias("x_um"),
+            (pl.col("y_mm") * 1000).round(1).alias("y_um"),
+            pl.col("size_nm"),
+            pl.col("defect_class").alias("class"),
+        )
     )
     j = (
         insp.filter(pl.col("inspection_tool").is_in(jsonl_tools))
@@ -228,10 +311,16 @@ def write_inspections(root: Path, data: DemoData, res: ExportResult) -> None:
         .join(defects, on=keys, how="left", maintain_order="left")
     )
     common = [
-        pl.col("lot_id").alias("lot"), pl.col("wafer_id").alias("wafer"), pl.col("product"),
-        pl.col("layer").alias("step"), pl.col("inspection_tool").alias("tool"), pl.col("recipe"),
-        _local("inspected_at", ISO_OFFSET).alias("time"), (pl.col("inspected_area_cm2") * 100).round(1).alias("area_mm2"),
-        pl.col("defect_count").alias("total"), pl.col("adder_count").alias("adders"),
+        pl.col("lot_id").alias("lot"),
+        pl.col("wafer_id").alias("wafer"),
+        pl.col("product"),
+        pl.col("layer").alias("step"),
+        pl.col("inspection_tool").alias("tool"),
+        pl.col("recipe"),
+        _local("inspected_at", ISO_OFFSET).alias("time"),
+        (pl.col("inspected_area_cm2") * 100).round(1).alias("area_mm2"),
+        pl.col("defect_count").alias("total"),
+        pl.col("adder_count").alias("adders"),
         pl.col("sample_kind").replace_strict(KIND_CODE).alias("kind"),
         pl.col("classes").fill_null(pl.lit([], dtype=classes.schema["classes"])),
     ]
@@ -256,9 +345,16 @@ def write_inspections(root: Path, data: DemoData, res: ExportResult) -> None:
     for (tool, day), part in pq.group_by(["inspection_tool", "_day"], maintain_order=True):
         rel = f"exports/inspection_parquet/{tool}_{day}.parquet"
         frame = part.select(
-            LOT=pl.col("lot_id"), WAFER=pl.col("wafer_id"), PRODUCT=pl.col("product"), LAYER=pl.col("layer"),
-            TOOL=pl.col("inspection_tool"), RECIPE=pl.col("recipe"), INSPECT_TIME=pl.col("inspected_at"),
-            AREA_CM2=pl.col("inspected_area_cm2"), COUNT=pl.col("defect_count"), ADDERS=pl.col("adder_count"),
+            LOT=pl.col("lot_id"),
+            WAFER=pl.col("wafer_id"),
+            PRODUCT=pl.col("product"),
+            LAYER=pl.col("layer"),
+            TOOL=pl.col("inspection_tool"),
+            RECIPE=pl.col("recipe"),
+            INSPECT_TIME=pl.col("inspected_at"),
+            AREA_CM2=pl.col("inspected_area_cm2"),
+            COUNT=pl.col("defect_count"),
+            ADDERS=pl.col("adder_count"),
             KIND=pl.col("sample_kind").replace_strict(KIND_CODE),
         )
         path = root / rel
@@ -268,7 +364,9 @@ def write_inspections(root: Path, data: DemoData, res: ExportResult) -> None:
             # a transfer cut this file short: a bad file the ingest must fail as a whole
             raw = path.read_bytes()
             path.write_bytes(raw[: len(raw) // 2])
-            res.planned_failed_files.append({"file": rel, "reason_contains": "parquet", "rows_lost": frame.height})
+            res.planned_failed_files.append(
+                {"file": rel, "reason_contains": "parquet", "rows_lost": frame.height}
+            )
             lost += frame.height
         res.add("inspection_parquet", rel)
     if not res.planned_failed_files:
@@ -285,9 +383,15 @@ def write_lot_history(root: Path, data: DemoData, res: ExportResult) -> None:
     for (week,), part in h.group_by(["_week"], maintain_order=True):
         rel = f"exports/lot_history/lot_history_{week}.csv"
         frame = part.select(
-            lot=pl.col("lot_id"), wafer=pl.col("wafer_id"), product=pl.col("product"), step=pl.col("step"),
-            seq=pl.col("step_seq"), tool=pl.col("process_tool"), chamber=pl.col("chamber"),
-            recipe=pl.col("recipe"), track_in=_local("started_at", ISO_OFFSET),
+            lot=pl.col("lot_id"),
+            wafer=pl.col("wafer_id"),
+            product=pl.col("product"),
+            step=pl.col("step"),
+            seq=pl.col("step_seq"),
+            tool=pl.col("process_tool"),
+            chamber=pl.col("chamber"),
+            recipe=pl.col("recipe"),
+            track_in=_local("started_at", ISO_OFFSET),
             track_out=_local("ended_at", ISO_OFFSET),
         )
         text = frame.write_csv(null_value="")
@@ -300,7 +404,8 @@ def write_lot_history(root: Path, data: DemoData, res: ExportResult) -> None:
 def write_native(root: Path, data: DemoData, res: ExportResult) -> None:
     """lotline-native CSV files: spec limits and tool events (canonical names, units, UTC)."""
     spec = data.spec_limits.with_columns(
-        effective_from=pl.col("effective_from").dt.strftime(ISO_Z), effective_to=pl.col("effective_to").dt.strftime(ISO_Z)
+        effective_from=pl.col("effective_from").dt.strftime(ISO_Z),
+        effective_to=pl.col("effective_to").dt.strftime(ISO_Z),
     )
     text = spec.write_csv(null_value="")
     assert text.startswith(SPEC_HEADER + "\n")
@@ -318,9 +423,13 @@ def write_native(root: Path, data: DemoData, res: ExportResult) -> None:
 def write_reference(root: Path, data: DemoData, res: ExportResult) -> None:
     """Reference (TEM / AFM) values in ångström."""
     ref = data.reference_values.select(
-        feature_id=pl.col("feature"), layer=pl.col("layer"), parameter=pl.col("parameter"),
-        ref_value_A=(pl.col("reference_value") * 10).round(1), ref_sigma_A=(pl.col("reference_uncertainty") * 10).round(1),
-        method=pl.col("reference_method").replace_strict(METHOD_CODE), measured=pl.col("measured_at").dt.strftime(ISO_Z),
+        feature_id=pl.col("feature"),
+        layer=pl.col("layer"),
+        parameter=pl.col("parameter"),
+        ref_value_A=(pl.col("reference_value") * 10).round(1),
+        ref_sigma_A=(pl.col("reference_uncertainty") * 10).round(1),
+        method=pl.col("reference_method").replace_strict(METHOD_CODE),
+        measured=pl.col("measured_at").dt.strftime(ISO_Z),
     )
     text = ref.write_csv(float_precision=1)
     assert text.startswith(REFERENCE_HEADER + "\n")

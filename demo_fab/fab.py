@@ -97,14 +97,20 @@ PRODUCTS: dict[str, float] = {"AX14": 0.6, "BX22": 0.4}
 
 ROUTE: tuple[Step, ...] = (
     Step("STI_DEP", "STI", "dep", ("DEP-1", "DEP-2"), ("CH1", "CH2", "CH3")),
-    Step("STI_LITHO", "STI", "litho", ("TRACK-1", "TRACK-2", "TRACK-3"), ("PEB-1", "PEB-2", "PEB-3", "PEB-4")),
+    Step(
+        "STI_LITHO", "STI", "litho", ("TRACK-1", "TRACK-2", "TRACK-3"), ("PEB-1", "PEB-2", "PEB-3", "PEB-4")
+    ),
     Step("STI_ETCH", "STI", "etch", ("ETCH-A", "ETCH-B"), ("CH1", "CH2", "CH3", "CH4")),
     Step("STI_CMP", "STI", "cmp", ("CMP-1", "CMP-2"), ("P1", "P2", "P3")),
     Step("GATE_DEP", "GATE", "dep", ("DEP-1", "DEP-2"), ("CH1", "CH2", "CH3")),
-    Step("GATE_LITHO", "GATE", "litho", ("TRACK-1", "TRACK-2", "TRACK-3"), ("PEB-1", "PEB-2", "PEB-3", "PEB-4")),
+    Step(
+        "GATE_LITHO", "GATE", "litho", ("TRACK-1", "TRACK-2", "TRACK-3"), ("PEB-1", "PEB-2", "PEB-3", "PEB-4")
+    ),
     Step("GATE_ETCH", "GATE", "etch", ("ETCH-A", "ETCH-B"), ("CH1", "CH2", "CH3", "CH4")),
     Step("CONT_DEP", "CONT", "dep", ("DEP-3",), ("CH1", "CH2")),
-    Step("CONT_LITHO", "CONT", "litho", ("TRACK-1", "TRACK-2", "TRACK-3"), ("PEB-1", "PEB-2", "PEB-3", "PEB-4")),
+    Step(
+        "CONT_LITHO", "CONT", "litho", ("TRACK-1", "TRACK-2", "TRACK-3"), ("PEB-1", "PEB-2", "PEB-3", "PEB-4")
+    ),
     Step("CONT_ETCH", "CONT", "etch", ("ETCH-C", "ETCH-D"), ("CH1", "CH2", "CH3", "CH4")),
     Step("M1_DEP", "M1", "dep", ("DEP-3",), ("CH1", "CH2")),
     Step("M1_LITHO", "M1", "litho", ("TRACK-1", "TRACK-2", "TRACK-3"), ("PEB-1", "PEB-2", "PEB-3", "PEB-4")),
@@ -116,38 +122,141 @@ ROUTE: tuple[Step, ...] = (
 
 CHAMBER_OFFSETS_NM: dict[tuple[str, str], float] = {
     # etch chambers: CD offset of everything they etch (configured, so tests can read it)
-    ("ETCH-A", "CH1"): 0.0, ("ETCH-A", "CH2"): 0.3, ("ETCH-A", "CH3"): -0.2, ("ETCH-A", "CH4"): 0.1,
-    ("ETCH-B", "CH1"): -0.3, ("ETCH-B", "CH2"): 0.2, ("ETCH-B", "CH3"): 0.0, ("ETCH-B", "CH4"): -0.1,
-    ("ETCH-C", "CH1"): 0.2, ("ETCH-C", "CH2"): -0.2, ("ETCH-C", "CH3"): 0.0, ("ETCH-C", "CH4"): 0.3,
-    ("ETCH-D", "CH1"): -0.1, ("ETCH-D", "CH2"): 0.1, ("ETCH-D", "CH3"): -0.3, ("ETCH-D", "CH4"): 0.2,
+    ("ETCH-A", "CH1"): 0.0,
+    ("ETCH-A", "CH2"): 0.3,
+    ("ETCH-A", "CH3"): -0.2,
+    ("ETCH-A", "CH4"): 0.1,
+    ("ETCH-B", "CH1"): -0.3,
+    ("ETCH-B", "CH2"): 0.2,
+    ("ETCH-B", "CH3"): 0.0,
+    ("ETCH-B", "CH4"): -0.1,
+    ("ETCH-C", "CH1"): 0.2,
+    ("ETCH-C", "CH2"): -0.2,
+    ("ETCH-C", "CH3"): 0.0,
+    ("ETCH-C", "CH4"): 0.3,
+    ("ETCH-D", "CH1"): -0.1,
+    ("ETCH-D", "CH2"): 0.1,
+    ("ETCH-D", "CH3"): -0.3,
+    ("ETCH-D", "CH4"): 0.2,
     # track bake plates: CD offset of the resist they bake
-    ("TRACK-1", "PEB-1"): 0.0, ("TRACK-1", "PEB-2"): 0.2, ("TRACK-1", "PEB-3"): -0.1, ("TRACK-1", "PEB-4"): 0.1,
-    ("TRACK-2", "PEB-1"): -0.2, ("TRACK-2", "PEB-2"): 0.1, ("TRACK-2", "PEB-3"): 0.0, ("TRACK-2", "PEB-4"): 0.2,
-    ("TRACK-3", "PEB-1"): 0.1, ("TRACK-3", "PEB-2"): -0.1, ("TRACK-3", "PEB-3"): 0.2, ("TRACK-3", "PEB-4"): 0.0,
+    ("TRACK-1", "PEB-1"): 0.0,
+    ("TRACK-1", "PEB-2"): 0.2,
+    ("TRACK-1", "PEB-3"): -0.1,
+    ("TRACK-1", "PEB-4"): 0.1,
+    ("TRACK-2", "PEB-1"): -0.2,
+    ("TRACK-2", "PEB-2"): 0.1,
+    ("TRACK-2", "PEB-3"): 0.0,
+    ("TRACK-2", "PEB-4"): 0.2,
+    ("TRACK-3", "PEB-1"): 0.1,
+    ("TRACK-3", "PEB-2"): -0.1,
+    ("TRACK-3", "PEB-3"): 0.2,
+    ("TRACK-3", "PEB-4"): 0.0,
 }
 """Configured CD offset of each process chamber (nm); tools not listed add nothing to CD."""
 
 MEASURED_LAYERS: tuple[MeasuredLayer, ...] = (
-    MeasuredLayer("STI_DEV", "STI_LITHO", "develop", ("cd_mid", "cd_top", "lwr"),
-                  {"AX14": 60.0, "BX22": 60.0}, 0.7, 0.35, 0.6, 0.8, lwr_median_nm=3.4),
-    MeasuredLayer("STI_ETCH", "STI_ETCH", "etch", ("cd_mid",),
-                  {"AX14": 52.0, "BX22": 52.0}, 0.8, 0.4, 0.7, -1.2),
-    MeasuredLayer("GATE_DEV", "GATE_LITHO", "develop", ("cd_mid", "cd_top", "lwr"),
-                  {"AX14": 48.0, "BX22": 50.0}, 0.6, 0.3, 0.5, 0.6, lwr_median_nm=3.0),
-    MeasuredLayer("GATE_ETCH", "GATE_ETCH", "etch", ("cd_mid", "lwr"),
-                  {"AX14": 45.0, "BX22": 47.0}, 0.6, 0.3, 0.5, -0.9, lwr_median_nm=2.6),
-    MeasuredLayer("CONT_DEV", "CONT_LITHO", "develop", ("cd_mid", "cd_top", "lwr"),
-                  {"AX14": 70.0, "BX22": 70.0}, 0.9, 0.4, 0.8, 1.0, lwr_median_nm=3.8),
-    MeasuredLayer("CONT_ETCH", "CONT_ETCH", "etch", ("cd_mid", "cd_bot"),
-                  {"AX14": 62.0, "BX22": 62.0}, 0.9, 0.45, 0.8, -1.4, taper_nm=4.0),
-    MeasuredLayer("M1_DEV", "M1_LITHO", "develop", ("cd_mid", "cd_top", "lwr"),
-                  {"AX14": 60.0, "BX22": 66.0}, 0.8, 0.4, 0.7, 0.7, lwr_median_nm=3.5),
-    MeasuredLayer("M1_ETCH", "M1_ETCH", "etch", ("cd_mid", "pitch"),
-                  {"AX14": 56.0, "BX22": 62.0}, 0.8, 0.4, 0.7, -1.0, pitch_nm=112.0),
-    MeasuredLayer("V1_DEV", "V1_LITHO", "develop", ("cd_mid", "cd_top", "lwr"),
-                  {"AX14": 64.0, "BX22": 64.0}, 0.9, 0.45, 0.8, 0.9, lwr_median_nm=3.9),
-    MeasuredLayer("V1_ETCH", "V1_ETCH", "etch", ("cd_mid",),
-                  {"AX14": 58.0, "BX22": 58.0}, 0.9, 0.45, 0.8, -1.1),
+    MeasuredLayer(
+        "STI_DEV",
+        "STI_LITHO",
+        "develop",
+        ("cd_mid", "cd_top", "lwr"),
+        {"AX14": 60.0, "BX22": 60.0},
+        0.7,
+        0.35,
+        0.6,
+        0.8,
+        lwr_median_nm=3.4,
+    ),
+    MeasuredLayer(
+        "STI_ETCH", "STI_ETCH", "etch", ("cd_mid",), {"AX14": 52.0, "BX22": 52.0}, 0.8, 0.4, 0.7, -1.2
+    ),
+    MeasuredLayer(
+        "GATE_DEV",
+        "GATE_LITHO",
+        "develop",
+        ("cd_mid", "cd_top", "lwr"),
+        {"AX14": 48.0, "BX22": 50.0},
+        0.6,
+        0.3,
+        0.5,
+        0.6,
+        lwr_median_nm=3.0,
+    ),
+    MeasuredLayer(
+        "GATE_ETCH",
+        "GATE_ETCH",
+        "etch",
+        ("cd_mid", "lwr"),
+        {"AX14": 45.0, "BX22": 47.0},
+        0.6,
+        0.3,
+        0.5,
+        -0.9,
+        lwr_median_nm=2.6,
+    ),
+    MeasuredLayer(
+        "CONT_DEV",
+        "CONT_LITHO",
+        "develop",
+        ("cd_mid", "cd_top", "lwr"),
+        {"AX14": 70.0, "BX22": 70.0},
+        0.9,
+        0.4,
+        0.8,
+        1.0,
+        lwr_median_nm=3.8,
+    ),
+    MeasuredLayer(
+        "CONT_ETCH",
+        "CONT_ETCH",
+        "etch",
+        ("cd_mid", "cd_bot"),
+        {"AX14": 62.0, "BX22": 62.0},
+        0.9,
+        0.45,
+        0.8,
+        -1.4,
+        taper_nm=4.0,
+    ),
+    MeasuredLayer(
+        "M1_DEV",
+        "M1_LITHO",
+        "develop",
+        ("cd_mid", "cd_top", "lwr"),
+        {"AX14": 60.0, "BX22": 66.0},
+        0.8,
+        0.4,
+        0.7,
+        0.7,
+        lwr_median_nm=3.5,
+    ),
+    MeasuredLayer(
+        "M1_ETCH",
+        "M1_ETCH",
+        "etch",
+        ("cd_mid", "pitch"),
+        {"AX14": 56.0, "BX22": 62.0},
+        0.8,
+        0.4,
+        0.7,
+        -1.0,
+        pitch_nm=112.0,
+    ),
+    MeasuredLayer(
+        "V1_DEV",
+        "V1_LITHO",
+        "develop",
+        ("cd_mid", "cd_top", "lwr"),
+        {"AX14": 64.0, "BX22": 64.0},
+        0.9,
+        0.45,
+        0.8,
+        0.9,
+        lwr_median_nm=3.9,
+    ),
+    MeasuredLayer(
+        "V1_ETCH", "V1_ETCH", "etch", ("cd_mid",), {"AX14": 58.0, "BX22": 58.0}, 0.9, 0.45, 0.8, -1.1
+    ),
 )
 
 INSPECTION_STEPS: tuple[InspectionStep, ...] = (
@@ -157,14 +266,23 @@ INSPECTION_STEPS: tuple[InspectionStep, ...] = (
     InspectionStep("M1_CMP_INSP", "M1_CMP", 0.10, 1.0, "M1C_STD"),
 )
 
-DEFECT_CLASSES: dict[str, float] = {"particle": 0.55, "residue": 0.2, "pit": 0.1, "bridge": 0.08, "scratch": 0.07}
+DEFECT_CLASSES: dict[str, float] = {
+    "particle": 0.55,
+    "residue": 0.2,
+    "pit": 0.1,
+    "bridge": 0.08,
+    "scratch": 0.07,
+}
 """Defect classes and their share of the baseline population (invented)."""
 
 SIZE_BINS: dict[str, float] = {"<50nm": 0.5, "50-100nm": 0.35, ">100nm": 0.15}
 """Size bins and their share; sizes inside a bin are drawn uniformly (invented)."""
 
-SIZE_BIN_RANGES_NM: dict[str, tuple[float, float]] = {"<50nm": (30.0, 50.0), "50-100nm": (50.0, 100.0),
-                                                      ">100nm": (100.0, 300.0)}
+SIZE_BIN_RANGES_NM: dict[str, tuple[float, float]] = {
+    "<50nm": (30.0, 50.0),
+    "50-100nm": (50.0, 100.0),
+    ">100nm": (100.0, 300.0),
+}
 
 CDSEMS: tuple[CdSem, ...] = (
     CdSem("SEM-01", "cdsem_long_v2", "etch", 0.00, 0.25),
@@ -191,7 +309,11 @@ class Site:
 
 def _ring(first: int, radius: float, angles_deg: tuple[float, ...]) -> tuple[Site, ...]:
     return tuple(
-        Site(first + i, round(radius * math.cos(math.radians(a)), 1), round(radius * math.sin(math.radians(a)), 1))
+        Site(
+            first + i,
+            round(radius * math.cos(math.radians(a)), 1),
+            round(radius * math.sin(math.radians(a)), 1),
+        )
         for i, a in enumerate(angles_deg)
     )
 

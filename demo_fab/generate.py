@@ -29,8 +29,24 @@ MONITOR_LOT, REPEAT_LOT, REFERENCE_LOT, STANDARD_LOT = "HCMON-G1", "HCRPT-R1", "
 STANDARD_LAYER = "STD_CHECK"
 
 MEASUREMENT_COLUMNS = (
-    "lot_id", "wafer_id", "slot", "site_id", "x_mm", "y_mm", "product", "layer", "stage", "parameter",
-    "feature", "value", "unit", "measured_at", "metrology_tool", "recipe", "repeat", "sample_kind",
+    "lot_id",
+    "wafer_id",
+    "slot",
+    "site_id",
+    "x_mm",
+    "y_mm",
+    "product",
+    "layer",
+    "stage",
+    "parameter",
+    "feature",
+    "value",
+    "unit",
+    "measured_at",
+    "metrology_tool",
+    "recipe",
+    "repeat",
+    "sample_kind",
 )
 
 
@@ -143,7 +159,9 @@ def _simulate_lots(cfg: DemoConfig, rng: np.random.Generator) -> _Lots:
     for k, s in enumerate(route):
         tool[:, k] = np.array(s.tools, dtype=object)[rng.integers(0, len(s.tools), size=n)]
         chamber[:, k] = np.array(s.chambers, dtype=object)[rng.integers(0, len(s.chambers), size=n)]
-    wafers = np.sort(rng.random((n, fabmod.WAFERS_PER_LOT)).argsort(axis=1)[:, : cfg.wafers_sampled] + 1, axis=1)
+    wafers = np.sort(
+        rng.random((n, fabmod.WAFERS_PER_LOT)).argsort(axis=1)[:, : cfg.wafers_sampled] + 1, axis=1
+    )
     shift = np.where(rng.random(n) < cfg.sorter_fraction, rng.integers(1, fabmod.WAFERS_PER_LOT, size=n), 0)
     slots = (wafers - 1 + shift[:, None]) % fabmod.WAFERS_PER_LOT + 1
     return _Lots(ids, product, qual, start_s, track_in, track_out, tool, chamber, wafers, slots)
@@ -185,12 +203,24 @@ _SITE_Y = np.array([s.y_mm for s in fabmod.SITES_13])
 
 def _frame(cols: dict[str, object]) -> pl.DataFrame:
     return pl.DataFrame(cols).select(
-        pl.col("lot_id").cast(pl.String), pl.col("wafer_id").cast(pl.String), pl.col("slot").cast(pl.Int64),
-        pl.col("site_id").cast(pl.String), pl.col("x_mm").cast(pl.Float64), pl.col("y_mm").cast(pl.Float64),
-        pl.col("product").cast(pl.String), pl.col("layer").cast(pl.String), pl.col("stage").cast(pl.String),
-        pl.col("parameter").cast(pl.String), pl.col("feature").cast(pl.String), pl.col("value").cast(pl.Float64),
-        pl.col("unit").cast(pl.String), pl.col("measured_at"), pl.col("metrology_tool").cast(pl.String),
-        pl.col("recipe").cast(pl.String), pl.col("repeat").cast(pl.Int64), pl.col("sample_kind").cast(pl.String),
+        pl.col("lot_id").cast(pl.String),
+        pl.col("wafer_id").cast(pl.String),
+        pl.col("slot").cast(pl.Int64),
+        pl.col("site_id").cast(pl.String),
+        pl.col("x_mm").cast(pl.Float64),
+        pl.col("y_mm").cast(pl.Float64),
+        pl.col("product").cast(pl.String),
+        pl.col("layer").cast(pl.String),
+        pl.col("stage").cast(pl.String),
+        pl.col("parameter").cast(pl.String),
+        pl.col("feature").cast(pl.String),
+        pl.col("value").cast(pl.Float64),
+        pl.col("unit").cast(pl.String),
+        pl.col("measured_at"),
+        pl.col("metrology_tool").cast(pl.String),
+        pl.col("recipe").cast(pl.String),
+        pl.col("repeat").cast(pl.Int64),
+        pl.col("sample_kind").cast(pl.String),
     )
 
 
@@ -199,12 +229,15 @@ def _sem_index(cfg: DemoConfig, tool: str | None) -> int:
     return names.index(tool) if tool in names else -1
 
 
-def _metrology_bias(cfg: DemoConfig, faults: tuple[Fault, ...], tool_i: np.ndarray, t_s: np.ndarray) -> np.ndarray:
+def _metrology_bias(
+    cfg: DemoConfig, faults: tuple[Fault, ...], tool_i: np.ndarray, t_s: np.ndarray
+) -> np.ndarray:
     """Offset + drift + fault offset of the CD-SEM (index into ``fab.cdsems``) that read each row (CD)."""
     bias = np.array([c.offset_nm for c in cfg.fab.cdsems])[tool_i]
     f4 = _fault(faults, "metrology_offset")
-    bias = bias + np.where((tool_i == _sem_index(cfg, f4.metrology_tool)) & (t_s >= _secs(cfg, f4.start)),
-                           f4.magnitude, 0.0)
+    bias = bias + np.where(
+        (tool_i == _sem_index(cfg, f4.metrology_tool)) & (t_s >= _secs(cfg, f4.start)), f4.magnitude, 0.0
+    )
     f5 = _fault(faults, "metrology_drift")
     frac = np.clip(t_s / (cfg.days * DAY_S), 0.0, 1.0)
     return bias + np.where(tool_i == _sem_index(cfg, f5.metrology_tool), f5.magnitude * frac, 0.0)
@@ -219,8 +252,12 @@ def _names(cfg: DemoConfig, tool_i: np.ndarray) -> pl.Series:
 
 
 def _layer_measurements(
-    cfg: DemoConfig, rng: np.random.Generator, lots: _Lots, layer: fabmod.MeasuredLayer,
-    faults: tuple[Fault, ...], fault_lots: dict[str, set[str]],
+    cfg: DemoConfig,
+    rng: np.random.Generator,
+    lots: _Lots,
+    layer: fabmod.MeasuredLayer,
+    faults: tuple[Fault, ...],
+    fault_lots: dict[str, set[str]],
 ) -> tuple[pl.DataFrame, dict[str, np.ndarray]]:
     fab = cfg.fab
     k = fab.step_index(layer.step)
@@ -255,7 +292,12 @@ def _layer_measurements(
     for f in faults:
         if f.layer != layer.name or f.process_tool is None:
             continue
-        hit_ll = (ptool == f.process_tool) & (pch == f.chamber) & (tp >= _secs(cfg, f.start)) & (tp < _secs(cfg, f.end))
+        hit_ll = (
+            (ptool == f.process_tool)
+            & (pch == f.chamber)
+            & (tp >= _secs(cfg, f.start))
+            & (tp < _secs(cfg, f.end))
+        )
         if f.kind == "chamber_shift":
             true = true + np.where(hit_ll[ll_s], f.magnitude, 0.0)
         elif f.kind == "slow_drift":
@@ -314,11 +356,22 @@ def _layer_measurements(
     wafer_no = pl.Series(lots.wafers[lot_r, wafer_in_lot]).cast(pl.String).str.zfill(2)
     lot_s = pl.Series(lots.ids).gather(lot_r)
     base = {
-        "lot_id": lot_s, "wafer_id": lot_s + "-" + wafer_no, "slot": lots.slots[lot_r, wafer_in_lot],
-        "site_id": pl.Series(site_pos[srow] + 1).cast(pl.String), "x_mm": x[srow], "y_mm": y[srow],
-        "product": pl.Series(lots.product).gather(lot_r), "layer": layer.name, "stage": layer.stage,
-        "feature": None, "unit": "nm", "measured_at": _us(cfg, t_r), "metrology_tool": _names(cfg, tool_r),
-        "recipe": recipe, "repeat": 1, "sample_kind": "production",
+        "lot_id": lot_s,
+        "wafer_id": lot_s + "-" + wafer_no,
+        "slot": lots.slots[lot_r, wafer_in_lot],
+        "site_id": pl.Series(site_pos[srow] + 1).cast(pl.String),
+        "x_mm": x[srow],
+        "y_mm": y[srow],
+        "product": pl.Series(lots.product).gather(lot_r),
+        "layer": layer.name,
+        "stage": layer.stage,
+        "feature": None,
+        "unit": "nm",
+        "measured_at": _us(cfg, t_r),
+        "metrology_tool": _names(cfg, tool_r),
+        "recipe": recipe,
+        "repeat": 1,
+        "sample_kind": "production",
     }
     base_frame = _frame({**base, "parameter": "", "value": 0.0})
     frames = []
@@ -351,13 +404,28 @@ def _monitor_runs(cfg: DemoConfig, rng: np.random.Generator, faults: tuple[Fault
     tr = tool[run]
     v = cfg.monitor_cd_nm + pattern[site] + repro[run] + _metrology_bias(cfg, faults, tr, t)
     v = v + rng.normal(0.0, 1.0, t.size) * _precision(cfg, tr)
-    return _frame({
-        "lot_id": MONITOR_LOT, "wafer_id": f"{MONITOR_LOT}-01", "slot": 1, "site_id": (site + 1).astype(str),
-        "x_mm": _SITE_X[site], "y_mm": _SITE_Y[site], "product": ENG_PRODUCT, "layer": "GATE_ETCH",
-        "stage": "etch", "parameter": "cd_mid", "feature": "MON-L45", "value": np.round(v, 3), "unit": "nm",
-        "measured_at": _us(cfg, t), "metrology_tool": _names(cfg, tr), "recipe": "MON_GATE_CD", "repeat": rep + 1,
-        "sample_kind": "monitor",
-    })
+    return _frame(
+        {
+            "lot_id": MONITOR_LOT,
+            "wafer_id": f"{MONITOR_LOT}-01",
+            "slot": 1,
+            "site_id": (site + 1).astype(str),
+            "x_mm": _SITE_X[site],
+            "y_mm": _SITE_Y[site],
+            "product": ENG_PRODUCT,
+            "layer": "GATE_ETCH",
+            "stage": "etch",
+            "parameter": "cd_mid",
+            "feature": "MON-L45",
+            "value": np.round(v, 3),
+            "unit": "nm",
+            "measured_at": _us(cfg, t),
+            "metrology_tool": _names(cfg, tr),
+            "recipe": "MON_GATE_CD",
+            "repeat": rep + 1,
+            "sample_kind": "monitor",
+        }
+    )
 
 
 def _repeat_study(cfg: DemoConfig, rng: np.random.Generator, faults: tuple[Fault, ...]) -> pl.DataFrame:
@@ -372,17 +440,39 @@ def _repeat_study(cfg: DemoConfig, rng: np.random.Generator, faults: tuple[Fault
     tr = tools[run]
     shrink = cfg.shrink_amplitude_nm * (1.0 - np.exp(-rep / cfg.shrink_tau))
     true = 48.0 + np.array([0.0, 0.3, -0.2, 0.25, -0.3])[site]
-    v = true - shrink + _metrology_bias(cfg, faults, tr, t) + rng.normal(0.0, 1.0, t.size) * _precision(cfg, tr)
-    return _frame({
-        "lot_id": REPEAT_LOT, "wafer_id": f"{REPEAT_LOT}-01", "slot": 1, "site_id": (site + 1).astype(str),
-        "x_mm": _SITE_X[site], "y_mm": _SITE_Y[site], "product": ENG_PRODUCT, "layer": "GATE_DEV",
-        "stage": "develop", "parameter": "cd_mid", "feature": "RPT-L48", "value": np.round(v, 3), "unit": "nm",
-        "measured_at": _us(cfg, t), "metrology_tool": _names(cfg, tr), "recipe": "RPT_GATE_CD", "repeat": rep + 1,
-        "sample_kind": "repeat_study",
-    })
+    v = (
+        true
+        - shrink
+        + _metrology_bias(cfg, faults, tr, t)
+        + rng.normal(0.0, 1.0, t.size) * _precision(cfg, tr)
+    )
+    return _frame(
+        {
+            "lot_id": REPEAT_LOT,
+            "wafer_id": f"{REPEAT_LOT}-01",
+            "slot": 1,
+            "site_id": (site + 1).astype(str),
+            "x_mm": _SITE_X[site],
+            "y_mm": _SITE_Y[site],
+            "product": ENG_PRODUCT,
+            "layer": "GATE_DEV",
+            "stage": "develop",
+            "parameter": "cd_mid",
+            "feature": "RPT-L48",
+            "value": np.round(v, 3),
+            "unit": "nm",
+            "measured_at": _us(cfg, t),
+            "metrology_tool": _names(cfg, tr),
+            "recipe": "RPT_GATE_CD",
+            "repeat": rep + 1,
+            "sample_kind": "repeat_study",
+        }
+    )
 
 
-def _reference(cfg: DemoConfig, rng: np.random.Generator, faults: tuple[Fault, ...]) -> tuple[pl.DataFrame, pl.DataFrame]:
+def _reference(
+    cfg: DemoConfig, rng: np.random.Generator, faults: tuple[Fault, ...]
+) -> tuple[pl.DataFrame, pl.DataFrame]:
     """Features with TEM / AFM reference values, each measured 3 times on every CD-SEM."""
     nf = cfg.reference_features
     true = np.linspace(32.0, 88.0, nf)
@@ -392,16 +482,20 @@ def _reference(cfg: DemoConfig, rng: np.random.Generator, faults: tuple[Fault, .
     afm_i = np.arange(1, nf, 2)
     afm = np.round((true[afm_i] + rng.normal(0.0, cfg.afm_sigma_nm, afm_i.size)) * 10.0, 1) / 10.0
     when = _us(cfg, np.array([-10.0 * DAY_S, -9.0 * DAY_S]))
-    ref = pl.DataFrame({
-        "feature": np.concatenate([feats, feats[afm_i]]),
-        "layer": np.concatenate([layers, layers[afm_i]]),
-        "parameter": "cd_mid",
-        "reference_value": np.concatenate([tem, afm]),
-        "reference_uncertainty": np.concatenate([np.full(nf, cfg.tem_sigma_nm), np.full(afm_i.size, cfg.afm_sigma_nm)]),
-        "unit": "nm",
-        "reference_method": np.concatenate([np.full(nf, "xsem_tem"), np.full(afm_i.size, "afm")]),
-        "measured_at": pl.concat([pl.Series([when[0]] * nf), pl.Series([when[1]] * afm_i.size)]),
-    })
+    ref = pl.DataFrame(
+        {
+            "feature": np.concatenate([feats, feats[afm_i]]),
+            "layer": np.concatenate([layers, layers[afm_i]]),
+            "parameter": "cd_mid",
+            "reference_value": np.concatenate([tem, afm]),
+            "reference_uncertainty": np.concatenate(
+                [np.full(nf, cfg.tem_sigma_nm), np.full(afm_i.size, cfg.afm_sigma_nm)]
+            ),
+            "unit": "nm",
+            "reference_method": np.concatenate([np.full(nf, "xsem_tem"), np.full(afm_i.size, "afm")]),
+            "measured_at": pl.concat([pl.Series([when[0]] * nf), pl.Series([when[1]] * afm_i.size)]),
+        }
+    )
     tools = np.arange(len(cfg.fab.cdsems))
     nr = 3
     t_run = max(1, round(cfg.days * 0.15)) * DAY_S + 15.0 * HOUR_S + np.arange(tools.size) * HOUR_S
@@ -414,13 +508,28 @@ def _reference(cfg: DemoConfig, rng: np.random.Generator, faults: tuple[Fault, .
     v = v + rng.normal(0.0, 1.0, t.size) * _precision(cfg, tr)
     gx = -60.0 + 40.0 * (fi % 4)
     gy = np.where(fi < 4, -20.0, 20.0)
-    meas = _frame({
-        "lot_id": REFERENCE_LOT, "wafer_id": f"{REFERENCE_LOT}-01", "slot": 1, "site_id": (fi + 1).astype(str),
-        "x_mm": gx, "y_mm": gy, "product": ENG_PRODUCT, "layer": layers[fi], "stage": "etch",
-        "parameter": "cd_mid", "feature": feats[fi], "value": np.round(v, 3), "unit": "nm",
-        "measured_at": _us(cfg, t), "metrology_tool": _names(cfg, tr), "recipe": "REF_CD", "repeat": rep + 1,
-        "sample_kind": "reference_feature",
-    })
+    meas = _frame(
+        {
+            "lot_id": REFERENCE_LOT,
+            "wafer_id": f"{REFERENCE_LOT}-01",
+            "slot": 1,
+            "site_id": (fi + 1).astype(str),
+            "x_mm": gx,
+            "y_mm": gy,
+            "product": ENG_PRODUCT,
+            "layer": layers[fi],
+            "stage": "etch",
+            "parameter": "cd_mid",
+            "feature": feats[fi],
+            "value": np.round(v, 3),
+            "unit": "nm",
+            "measured_at": _us(cfg, t),
+            "metrology_tool": _names(cfg, tr),
+            "recipe": "REF_CD",
+            "repeat": rep + 1,
+            "sample_kind": "reference_feature",
+        }
+    )
     return ref, meas
 
 
@@ -438,8 +547,12 @@ def _split_counts(rng: np.random.Generator, total: np.ndarray, class_p: np.ndarr
 
 
 def _inspections(
-    cfg: DemoConfig, rng: np.random.Generator, lots: _Lots, faults: tuple[Fault, ...],
-    fault_lots: dict[str, set[str]], fault_times: dict[str, tuple[dt.datetime, dt.datetime]],
+    cfg: DemoConfig,
+    rng: np.random.Generator,
+    lots: _Lots,
+    faults: tuple[Fault, ...],
+    fault_lots: dict[str, set[str]],
+    fault_times: dict[str, tuple[dt.datetime, dt.datetime]],
 ) -> tuple[pl.DataFrame, np.ndarray, np.ndarray, np.ndarray, dict[int, np.ndarray]]:
     """Production and standard-wafer inspections: the rows, class x bin counts, and scratch defects."""
     fab = cfg.fab
@@ -449,7 +562,11 @@ def _inspections(
     scratch_c = classes.index("scratch")
     ins_tools = np.array([t.tool for t in fab.inspection_tools])
     end_s = cfg.days * DAY_S
-    burst, scratch, loss = _fault(faults, "defect_burst"), _fault(faults, "scratch"), _fault(faults, "capture_loss")
+    burst, scratch, loss = (
+        _fault(faults, "defect_burst"),
+        _fault(faults, "scratch"),
+        _fault(faults, "capture_loss"),
+    )
     rows: list[dict[str, np.ndarray]] = []
     tables: list[np.ndarray] = []
     scratch_row = None
@@ -467,15 +584,25 @@ def _inspections(
         total = rng.negative_binomial(step.alpha, step.alpha / (step.alpha + mu), size=li.size)
         tab = _split_counts(rng, total, class_p)
         if burst.layer == step.name:
-            hit = ((lots.tool[li, k] == burst.process_tool) & (lots.chamber[li, k] == burst.chamber)
-                   & (t_proc[li] >= _secs(cfg, burst.start)) & (t_proc[li] < _secs(cfg, burst.end)))
-            extra = rng.negative_binomial(step.alpha, step.alpha / (step.alpha + (burst.magnitude - 1.0) * mu),
-                                          size=li.size)
-            tab[:, residue, :] += np.where(hit[:, None], rng.multinomial(extra, list(fabmod.SIZE_BINS.values())), 0)
+            hit = (
+                (lots.tool[li, k] == burst.process_tool)
+                & (lots.chamber[li, k] == burst.chamber)
+                & (t_proc[li] >= _secs(cfg, burst.start))
+                & (t_proc[li] < _secs(cfg, burst.end))
+            )
+            extra = rng.negative_binomial(
+                step.alpha, step.alpha / (step.alpha + (burst.magnitude - 1.0) * mu), size=li.size
+            )
+            tab[:, residue, :] += np.where(
+                hit[:, None], rng.multinomial(extra, list(fabmod.SIZE_BINS.values())), 0
+            )
             fault_lots.setdefault(burst.id, set()).update(np.unique(lots.ids[li[hit]]).tolist())
         if scratch.layer == step.name:
-            cand = np.flatnonzero((lots.tool[li, k] == scratch.process_tool) & (lots.chamber[li, k] == scratch.chamber)
-                                  & (t_proc[li] >= _secs(cfg, scratch.start)))
+            cand = np.flatnonzero(
+                (lots.tool[li, k] == scratch.process_tool)
+                & (lots.chamber[li, k] == scratch.chamber)
+                & (t_proc[li] >= _secs(cfg, scratch.start))
+            )
             if cand.size:
                 s = cand[0]
                 tool[s] = scratch.inspection_tool
@@ -485,7 +612,7 @@ def _inspections(
                 fault_lots.setdefault(scratch.id, set()).add(str(lots.ids[li[s]]))
                 when = cfg.start + dt.timedelta(seconds=float(t[s]))
                 fault_times[scratch.id] = (when, when)
-        adders = (np.full(li.size, -1, dtype=np.int64) if j == 0 else None)
+        adders = np.full(li.size, -1, dtype=np.int64) if j == 0 else None
         rows.append({"li": li, "wk": wk, "tool": tool, "t": t, "step": np.full(li.size, j), "adders": adders})
         tables.append(tab)
     tab = np.concatenate(tables)
@@ -498,46 +625,81 @@ def _inspections(
     scratch_index = None if scratch_row is None else int(offsets[scratch_row[0]] + scratch_row[1])
     # capture loss thins what the degraded tool sees
     ls, le = _secs(cfg, loss.start), _secs(cfg, loss.end)
-    factor = np.where(tool == loss.inspection_tool, 1.0 + loss.magnitude * np.clip((t - ls) / (le - ls), 0.0, 1.0), 1.0)
+    factor = np.where(
+        tool == loss.inspection_tool, 1.0 + loss.magnitude * np.clip((t - ls) / (le - ls), 0.0, 1.0), 1.0
+    )
     tab = rng.binomial(tab, factor[:, None, None])
     total = tab.sum(axis=(1, 2))
     adders = np.where(stepi == 0, -1, rng.binomial(total, 0.7))
     wafer_no = lots.wafers[li, wk]
     steps = np.array([s.name for s in fab.inspections])
     recipes = np.array([s.recipe for s in fab.inspections])
-    prod = pl.DataFrame({
-        "lot_id": lots.ids[li],
-        "wafer_id": np.char.add(np.char.add(lots.ids[li], "-"), np.char.zfill(wafer_no.astype(str), 2)),
-        "product": lots.product[li], "layer": steps[stepi], "inspection_tool": tool, "recipe": recipes[stepi],
-        "t": t, "inspected_area_cm2": round(fabmod.INSPECTED_AREA_CM2, 2), "defect_count": total,
-        "adder_count": adders, "sample_kind": "production",
-    })
+    prod = pl.DataFrame(
+        {
+            "lot_id": lots.ids[li],
+            "wafer_id": np.char.add(np.char.add(lots.ids[li], "-"), np.char.zfill(wafer_no.astype(str), 2)),
+            "product": lots.product[li],
+            "layer": steps[stepi],
+            "inspection_tool": tool,
+            "recipe": recipes[stepi],
+            "t": t,
+            "inspected_area_cm2": round(fabmod.INSPECTED_AREA_CM2, 2),
+            "defect_count": total,
+            "adder_count": adders,
+            "sample_kind": "production",
+        }
+    )
     # standard-defect wafer: known placed defects, inspected daily on every tool
     nb = cfg.standard_defects_per_bin
     day = np.repeat(np.arange(cfg.days), ins_tools.size)
     stool = np.tile(ins_tools, cfg.days)
     st = day * DAY_S + 4.0 * HOUR_S + np.tile(np.arange(ins_tools.size), cfg.days) * 0.5 * HOUR_S
-    sf = np.where(stool == loss.inspection_tool, 1.0 + loss.magnitude * np.clip((st - ls) / (le - ls), 0.0, 1.0), 1.0)
+    sf = np.where(
+        stool == loss.inspection_tool, 1.0 + loss.magnitude * np.clip((st - ls) / (le - ls), 0.0, 1.0), 1.0
+    )
     p_bin = np.array(cfg.standard_capture_by_bin)[None, :] * sf[:, None]
     captured_mask = rng.random((st.size, 3, nb)) < p_bin[:, :, None]  # which placed defects were found
     stab = np.zeros((st.size, len(classes), 3), dtype=np.int64)
     stab[:, classes.index("particle"), :] = captured_mask.sum(axis=2)
     stab[:, classes.index("particle"), 0] += rng.poisson(1.5, st.size)
-    std = pl.DataFrame({
-        "lot_id": STANDARD_LOT, "wafer_id": f"{STANDARD_LOT}-01", "product": ENG_PRODUCT, "layer": STANDARD_LAYER,
-        "inspection_tool": stool, "recipe": "STD_CHECK", "t": st,
-        "inspected_area_cm2": round(fabmod.INSPECTED_AREA_CM2, 2), "defect_count": stab.sum(axis=(1, 2)),
-        "adder_count": np.full(st.size, -1, dtype=np.int64), "sample_kind": "standard_defect",
-    })
-    frame = pl.concat([prod, std]).with_columns(
-        inspected_at=_us(cfg, np.concatenate([t, st])),
-        adder_count=pl.when(pl.col("adder_count") >= 0).then(pl.col("adder_count")).otherwise(None),
-    ).drop("t")
-    return frame, np.concatenate([tab, stab]), captured_mask, np.array([scratch_index if scratch_index is not None else -1]), {}
+    std = pl.DataFrame(
+        {
+            "lot_id": STANDARD_LOT,
+            "wafer_id": f"{STANDARD_LOT}-01",
+            "product": ENG_PRODUCT,
+            "layer": STANDARD_LAYER,
+            "inspection_tool": stool,
+            "recipe": "STD_CHECK",
+            "t": st,
+            "inspected_area_cm2": round(fabmod.INSPECTED_AREA_CM2, 2),
+            "defect_count": stab.sum(axis=(1, 2)),
+            "adder_count": np.full(st.size, -1, dtype=np.int64),
+            "sample_kind": "standard_defect",
+        }
+    )
+    frame = (
+        pl.concat([prod, std])
+        .with_columns(
+            inspected_at=_us(cfg, np.concatenate([t, st])),
+            adder_count=pl.when(pl.col("adder_count") >= 0).then(pl.col("adder_count")).otherwise(None),
+        )
+        .drop("t")
+    )
+    return (
+        frame,
+        np.concatenate([tab, stab]),
+        captured_mask,
+        np.array([scratch_index if scratch_index is not None else -1]),
+        {},
+    )
 
 
 def _defect_rows(
-    cfg: DemoConfig, rng: np.random.Generator, insp: pl.DataFrame, tab: np.ndarray, captured: np.ndarray,
+    cfg: DemoConfig,
+    rng: np.random.Generator,
+    insp: pl.DataFrame,
+    tab: np.ndarray,
+    captured: np.ndarray,
     scratch_index: int,
 ) -> tuple[pl.DataFrame, np.ndarray]:
     """Coordinates for a sample of JSON-lines inspections, the scratch wafer and every standard wafer run."""
@@ -557,7 +719,11 @@ def _defect_rows(
     cnt = tab[chosen].reshape(chosen.size, -1)  # (m, classes*bins)
     nper = cnt.sum(axis=1)
     ins_of = np.repeat(chosen, nper)
-    cb = np.concatenate([np.repeat(np.arange(cnt.shape[1]), row) for row in cnt]) if chosen.size else np.zeros(0, int)
+    cb = (
+        np.concatenate([np.repeat(np.arange(cnt.shape[1]), row) for row in cnt])
+        if chosen.size
+        else np.zeros(0, int)
+    )
     ci, bi = cb // len(bins), cb % len(bins)
     rad = (150.0 - fabmod.EDGE_EXCLUSION_MM) * np.sqrt(rng.random(cb.size))
     ang = rng.uniform(0.0, 2 * math.pi, cb.size)
@@ -581,7 +747,9 @@ def _defect_rows(
     found = captured[pick_std].reshape(sr.size, -1)
     s_ins, s_g = np.nonzero(found)
     s_bin = s_g // captured.shape[2]
-    extra = tab[sr, list(fabmod.DEFECT_CLASSES).index("particle"), 0] - captured[pick_std][:, 0, :].sum(axis=1)
+    extra = tab[sr, list(fabmod.DEFECT_CLASSES).index("particle"), 0] - captured[pick_std][:, 0, :].sum(
+        axis=1
+    )
     e_ins = np.repeat(np.arange(sr.size), extra)
     e_rad = 140.0 * np.sqrt(rng.random(e_ins.size))
     e_ang = rng.uniform(0.0, 2 * math.pi, e_ins.size)
@@ -590,7 +758,7 @@ def _defect_rows(
     std_bin = np.concatenate([s_bin, np.zeros(e_ins.size, dtype=np.int64)])
     std_of = np.concatenate([sr[s_ins], sr[e_ins]])
     std_size = np.where(std_bin == 0, 45.0, np.where(std_bin == 1, 80.0, 150.0))
-    std_size[s_g.size:] = rng.uniform(30.0, 50.0, e_ins.size)
+    std_size[s_g.size :] = rng.uniform(30.0, 50.0, e_ins.size)
     all_of = np.concatenate([ins_of, std_of])
     order = np.argsort(all_of, kind="stable")
     all_of = all_of[order]
@@ -602,7 +770,10 @@ def _defect_rows(
     keys = insp.select("lot_id", "wafer_id", "layer", "inspection_tool", "inspected_at")[all_of]
     defects = keys.with_columns(
         defect_id=pl.Series(np.arange(all_of.size) - first + 1, dtype=pl.Int64),
-        x_mm=pl.Series(xs), y_mm=pl.Series(ys), size_nm=pl.Series(sz), defect_class=pl.Series(cls),
+        x_mm=pl.Series(xs),
+        y_mm=pl.Series(ys),
+        size_nm=pl.Series(sz),
+        defect_class=pl.Series(cls),
     )
     return defects, np.unique(all_of)
 
@@ -614,7 +785,8 @@ def _defect_counts(insp: pl.DataFrame, tab: np.ndarray) -> pl.DataFrame:
     ii, cc, bb = np.nonzero(tab)
     keys = insp.select("lot_id", "wafer_id", "layer", "inspection_tool", "inspected_at")[ii]
     return keys.with_columns(
-        defect_class=pl.Series(np.array(classes)[cc]), size_bin=pl.Series(np.array(bins)[bb]),
+        defect_class=pl.Series(np.array(classes)[cc]),
+        size_bin=pl.Series(np.array(bins)[bb]),
         count=pl.Series(tab[ii, cc, bb].astype(np.int64)),
     )
 
@@ -657,13 +829,32 @@ def _tool_events(cfg: DemoConfig, rng: np.random.Generator, faults: tuple[Fault,
         periodic(s.tool, None, 7.0, "calibration", "magnification and pitch check")
     for it in fab.inspection_tools:
         periodic(it.tool, None, 14.0, "preventive_maintenance", "optics clean")
-    recs.append((shift.process_tool or "", shift.chamber, _secs(cfg, shift.start) - 3 * HOUR_S,
-                 "preventive_maintenance", "wet clean; upper electrode and focus ring replaced"))
-    recs.append((offset.metrology_tool or "", None, _secs(cfg, offset.start) - 2 * HOUR_S, "repair",
-                 "electron source exchanged"))
+    recs.append(
+        (
+            shift.process_tool or "",
+            shift.chamber,
+            _secs(cfg, shift.start) - 3 * HOUR_S,
+            "preventive_maintenance",
+            "wet clean; upper electrode and focus ring replaced",
+        )
+    )
+    recs.append(
+        (
+            offset.metrology_tool or "",
+            None,
+            _secs(cfg, offset.start) - 2 * HOUR_S,
+            "repair",
+            "electron source exchanged",
+        )
+    )
     frame = pl.DataFrame(
-        {"tool": [r[0] for r in recs], "chamber": pl.Series([r[1] for r in recs], dtype=pl.String),
-         "t": [r[2] for r in recs], "event_kind": [r[3] for r in recs], "note": [r[4] for r in recs]}
+        {
+            "tool": [r[0] for r in recs],
+            "chamber": pl.Series([r[1] for r in recs], dtype=pl.String),
+            "t": [r[2] for r in recs],
+            "event_kind": [r[3] for r in recs],
+            "note": [r[4] for r in recs],
+        }
     )
     return (
         frame.with_columns(event_at=_us(cfg, frame["t"].to_numpy()))
@@ -681,25 +872,52 @@ def _spec_limits(cfg: DemoConfig) -> pl.DataFrame:
         for product, cd in layer.target_nm.items():
             for p in layer.parameters:
                 rule = fabmod.SPEC_RULES[p]
-                target = {"cd_mid": cd, "cd_top": cd - layer.taper_nm, "cd_bot": cd + layer.taper_nm,
-                          "pitch": layer.pitch_nm, "lwr": layer.lwr_median_nm}[p]
+                target = {
+                    "cd_mid": cd,
+                    "cd_top": cd - layer.taper_nm,
+                    "cd_bot": cd + layer.taper_nm,
+                    "pitch": layer.pitch_nm,
+                    "lwr": layer.lwr_median_nm,
+                }[p]
                 lsl = None if rule.lower_fraction is None else round(target * (1 - rule.lower_fraction), 3)
                 usl = round(target * (1 + rule.upper_fraction), 3)
                 tgt = None if p == "lwr" else target
                 if layer.name == "GATE_ETCH" and p == "cd_mid" and product == "AX14":
                     # a tightened spec from mid-window: effective dating matters
                     recs.append((product, layer.name, p, lsl, tgt, usl, t0, rev))
-                    recs.append((product, layer.name, p, round(target * 0.92, 3), tgt, round(target * 1.08, 3),
-                                 rev, None))
+                    recs.append(
+                        (
+                            product,
+                            layer.name,
+                            p,
+                            round(target * 0.92, 3),
+                            tgt,
+                            round(target * 1.08, 3),
+                            rev,
+                            None,
+                        )
+                    )
                 else:
                     recs.append((product, layer.name, p, lsl, tgt, usl, t0, None))
-    return pl.DataFrame(
-        recs, orient="row",
-        schema={"product": pl.String, "layer": pl.String, "parameter": pl.String, "lsl": pl.Float64,
-                "target": pl.Float64, "usl": pl.Float64, "effective_from": pl.Datetime("us"),
-                "effective_to": pl.Datetime("us")},
-    ).with_columns(unit=pl.lit("nm")).select(
-        "product", "layer", "parameter", "lsl", "target", "usl", "unit", "effective_from", "effective_to"
+    return (
+        pl.DataFrame(
+            recs,
+            orient="row",
+            schema={
+                "product": pl.String,
+                "layer": pl.String,
+                "parameter": pl.String,
+                "lsl": pl.Float64,
+                "target": pl.Float64,
+                "usl": pl.Float64,
+                "effective_from": pl.Datetime("us"),
+                "effective_to": pl.Datetime("us"),
+            },
+        )
+        .with_columns(unit=pl.lit("nm"))
+        .select(
+            "product", "layer", "parameter", "lsl", "target", "usl", "unit", "effective_from", "effective_to"
+        )
     )
 
 
@@ -734,22 +952,34 @@ def simulate(cfg: DemoConfig | None = None) -> DemoData:
     # the stale CD-SEM: nothing it measured after the stop reaches the exports
     stale = _fault(faults, "tool_stops_reporting")
     gone = (pl.col("metrology_tool") == stale.metrology_tool) & (pl.col("measured_at") >= stale.start)
-    fault_lots[stale.id] = set(meas.filter(gone & (pl.col("sample_kind") == "production"))["lot_id"].unique().to_list())
+    fault_lots[stale.id] = set(
+        meas.filter(gone & (pl.col("sample_kind") == "production"))["lot_id"].unique().to_list()
+    )
     meas = meas.filter(~gone).sort("measured_at", "metrology_tool", maintain_order=True)
 
     # the lot whose first export was wrong (corrected re-export)
     reexp = _fault(faults, "corrected_reexport")
     cand = (
-        meas.filter((pl.col("layer") == reexp.layer) & (pl.col("metrology_tool") == reexp.metrology_tool)
-                    & (pl.col("sample_kind") == "production") & (pl.col("measured_at") >= reexp.start))
-        .group_by("lot_id").agg(pl.col("measured_at").min().alias("t0"), pl.len().alias("n"))
+        meas.filter(
+            (pl.col("layer") == reexp.layer)
+            & (pl.col("metrology_tool") == reexp.metrology_tool)
+            & (pl.col("sample_kind") == "production")
+            & (pl.col("measured_at") >= reexp.start)
+        )
+        .group_by("lot_id")
+        .agg(pl.col("measured_at").min().alias("t0"), pl.len().alias("n"))
         .sort("t0", "lot_id")
     )
     reexport: dict[str, object] = {}
     if cand.height:
         row = cand.row(0, named=True)
-        reexport = {"lot_id": row["lot_id"], "layer": reexp.layer, "metrology_tool": reexp.metrology_tool,
-                    "offset_nm": reexp.magnitude, "measured_at": row["t0"]}
+        reexport = {
+            "lot_id": row["lot_id"],
+            "layer": reexp.layer,
+            "metrology_tool": reexp.metrology_tool,
+            "offset_nm": reexp.magnitude,
+            "measured_at": row["t0"],
+        }
         fault_lots[reexp.id] = {row["lot_id"]}
         fault_times[reexp.id] = (row["t0"], row["t0"] + dt.timedelta(days=2))
 
@@ -768,21 +998,37 @@ def simulate(cfg: DemoConfig | None = None) -> DemoData:
     counts = _defect_counts(insp, tab)
     events = _tool_events(cfg, rng, faults)
     specs = _spec_limits(cfg)
-    lot_frame = pl.DataFrame({"lot_id": lots.ids, "product": lots.product, "qual": lots.qual,
-                              "started_at": _us(cfg, lots.start_s)})
+    lot_frame = pl.DataFrame(
+        {"lot_id": lots.ids, "product": lots.product, "qual": lots.qual, "started_at": _us(cfg, lots.start_s)}
+    )
     keys = insp.select("lot_id", "wafer_id", "layer", "inspection_tool", "inspected_at")[with_coords]
     return DemoData(
-        config=cfg, faults=faults, lots=lot_frame, process_history=history, measurements=meas,
-        inspections=insp, defect_counts=counts, defects=defects, tool_events=events, spec_limits=specs,
+        config=cfg,
+        faults=faults,
+        lots=lot_frame,
+        process_history=history,
+        measurements=meas,
+        inspections=insp,
+        defect_counts=counts,
+        defects=defects,
+        tool_events=events,
+        spec_limits=specs,
         reference_values=ref_values,
-        fault_lots={k: sorted(v) for k, v in fault_lots.items()}, fault_times=fault_times, reexport=reexport,
+        fault_lots={k: sorted(v) for k, v in fault_lots.items()},
+        fault_times=fault_times,
+        reexport=reexport,
         defect_inspections={tuple(r) for r in keys.iter_rows()},
     )
 
 
 def _defect_rows_reordered(
-    cfg: DemoConfig, rng: np.random.Generator, insp: pl.DataFrame, tab: np.ndarray, captured: np.ndarray,
-    scratch_index: int, std_positions: np.ndarray,
+    cfg: DemoConfig,
+    rng: np.random.Generator,
+    insp: pl.DataFrame,
+    tab: np.ndarray,
+    captured: np.ndarray,
+    scratch_index: int,
+    std_positions: np.ndarray,
 ) -> tuple[pl.DataFrame, np.ndarray]:
     """``_defect_rows`` on a time-sorted frame: move the standard-wafer rows to the end, then map back."""
     n = insp.height

@@ -121,11 +121,18 @@ _SEVERITY_ORDER = {"critical": 0, "high": 1, "medium": 2, "low": 3}
 def _top_excursions(frame, n: int) -> list[dict]:
     """The n open excursions an engineer should look at first: by severity, then by signal count."""
     rows = list(frame.iter_rows(named=True))
-    rows.sort(key=lambda r: (_SEVERITY_ORDER.get(r["severity"], 9), -(r["n_signals"] or 0), str(r["first_at"])))
+    rows.sort(
+        key=lambda r: (_SEVERITY_ORDER.get(r["severity"], 9), -(r["n_signals"] or 0), str(r["first_at"]))
+    )
     out = []
     for r in rows[:n]:
-        tool = r.get("chamber") and f"{r.get('process_tool')}/{r.get('chamber')}" or r.get("process_tool") \
-            or r.get("metrology_tool") or "(all tools)"
+        tool = (
+            r.get("chamber")
+            and f"{r.get('process_tool')}/{r.get('chamber')}"
+            or r.get("process_tool")
+            or r.get("metrology_tool")
+            or "(all tools)"
+        )
         out.append(
             {
                 "excursion_id": r["excursion_id"],
@@ -149,13 +156,18 @@ def render_summary(run: DemoRun) -> str:
         f" ({', '.join(f'{k} {v}' for k, v in sorted(run.files.items()))})",
         f"  rows         {run.rows_loaded:,} loaded, {run.rows_rejected:,} rejected, "
         f"{run.rows_superseded:,} superseded by a corrected re-export",
-        f"  failed files {len(run.failed_files)}" + (f" ({', '.join(Path(p).name for p in run.failed_files)})"
-                                                     if run.failed_files else ""),
+        f"  failed files {len(run.failed_files)}"
+        + (f" ({', '.join(Path(p).name for p in run.failed_files)})" if run.failed_files else ""),
         f"  charts       {run.series:,} series, {run.points:,} points, {run.limits_frozen:,} limit versions frozen",
         f"  signals      {run.signals:,}",
         "  open excursions by severity: "
-        + (", ".join(f"{k} {v}" for k, v in sorted(run.open_by_severity.items(),
-                                                    key=lambda kv: _SEVERITY_ORDER.get(kv[0], 9))) or "none"),
+        + (
+            ", ".join(
+                f"{k} {v}"
+                for k, v in sorted(run.open_by_severity.items(), key=lambda kv: _SEVERITY_ORDER.get(kv[0], 9))
+            )
+            or "none"
+        ),
     ]
     if run.top:
         lines.append("  look first at:")
@@ -164,8 +176,6 @@ def render_summary(run: DemoRun) -> str:
                 f"    #{t['excursion_id']:<5} {t['severity']:<8} {t['layer']} {t['parameter']} on {t['tool']}"
                 f" ({t['signals']} signals from {t['first_at'][:16]}; chart {t['chart']})"
             )
-    lines.append(
-        "  timings      " + ", ".join(f"{k} {v:.1f} s" for k, v in run.seconds.items())
-    )
+    lines.append("  timings      " + ", ".join(f"{k} {v:.1f} s" for k, v in run.seconds.items()))
     lines.append("Signals advise; the fab's out-of-control action plan and a qualified engineer decide.")
     return "\n".join(lines)

@@ -37,8 +37,14 @@ from warehouse import queries, store
 from warehouse.drilldown import explain_excursion
 from warehouse.errors import LotlineError
 
-EXCURSION_KINDS = ("chamber_shift", "slow_drift", "bake_plate_edge", "metrology_offset", "metrology_drift",
-                   "defect_burst")
+EXCURSION_KINDS = (
+    "chamber_shift",
+    "slow_drift",
+    "bake_plate_edge",
+    "metrology_offset",
+    "metrology_drift",
+    "defect_burst",
+)
 DEFECT_PARAMETERS = ("defect_density", "defect_count", "adder_density")
 
 
@@ -85,8 +91,16 @@ def _lots(frame: pl.DataFrame) -> pl.DataFrame:
 
 def _score_fault(con, f: dict, exc: pl.DataFrame, fresh: pl.DataFrame, truth: dict) -> tuple[dict, set[int]]:
     resp = f.get("responsible") or {}
-    row = {"id": f["id"], "kind": f["kind"], "layer": f.get("layer"), "detected": False, "delay_lots": None,
-           "delay_hours": None, "attributed": None, "how": ""}
+    row = {
+        "id": f["id"],
+        "kind": f["kind"],
+        "layer": f.get("layer"),
+        "detected": False,
+        "delay_lots": None,
+        "delay_hours": None,
+        "attributed": None,
+        "how": "",
+    }
     start, stop = _ts(f.get("start")), _ts(f.get("end"))
     kind = f["kind"]
     if kind in EXCURSION_KINDS:
@@ -94,9 +108,15 @@ def _score_fault(con, f: dict, exc: pl.DataFrame, fresh: pl.DataFrame, truth: di
     if kind == "scratch":
         lot = f["lots"][0]
         wafer = f.get("wafer") or _first_wafer_with_defects(con, lot, f["layer"])
-        defects = queries.wafer_defects(con, lot_id=lot, wafer_id=wafer, layer=f["layer"]) if wafer else pl.DataFrame()
+        defects = (
+            queries.wafer_defects(con, lot_id=lot, wafer_id=wafer, layer=f["layer"])
+            if wafer
+            else pl.DataFrame()
+        )
         if defects.height:
-            found = find_defect_clusters(defects.with_columns(pl.lit(wafer).alias("wafer_id"), pl.lit(lot).alias("lot_id")))
+            found = find_defect_clusters(
+                defects.with_columns(pl.lit(wafer).alias("wafer_id"), pl.lit(lot).alias("lot_id"))
+            )
             scratches = found.clusters.filter(pl.col("kind") == "scratch")
             row["detected"] = scratches.height > 0
             row["how"] = f"{scratches.height} scratch cluster(s) on {wafer}"
@@ -176,7 +196,11 @@ def _attribution(con, cand: pl.DataFrame, resp: dict) -> tuple[bool, str]:
     for r in cand.sort("first_at").iter_rows(named=True):
         if mtool and r.get("metrology_tool") == mtool:
             return True, f"series split by metrology tool {mtool}"
-        if tool and r.get("process_tool") == tool and (chamber is None or r.get("chamber") in (None, chamber)):
+        if (
+            tool
+            and r.get("process_tool") == tool
+            and (chamber is None or r.get("chamber") in (None, chamber))
+        ):
             if chamber is None or r.get("chamber") == chamber:
                 return True, f"series split by {tool}/{chamber}" if chamber else f"series split by {tool}"
     first = cand.sort("first_at").row(0, named=True)
@@ -207,12 +231,15 @@ def _score_capture_loss(con, f, row, start, resp) -> dict:
     if std.height < 3:
         row["how"] = "too few standard-defect inspections stored"
         return row
-    trend = evaluate_density_trend(std.rename({"defect_count": "count", "inspected_area_cm2": "area_cm2"}),
-                                   by=["inspection_tool"])
+    trend = evaluate_density_trend(
+        std.rename({"defect_count": "count", "inspected_area_cm2": "area_cm2"}), by=["inspection_tool"]
+    )
     t = trend.row(0, named=True)
     row["detected"] = bool(t["trend_detected"] and t["slope_per_day"] < 0)
     row["attributed"] = row["detected"]
-    row["how"] = f"standard-wafer density slope {t['slope_per_day']:.2e}/cm2/day, p = {t['p_value']:.2g} ({tool})"
+    row["how"] = (
+        f"standard-wafer density slope {t['slope_per_day']:.2e}/cm2/day, p = {t['p_value']:.2g} ({tool})"
+    )
     return row
 
 

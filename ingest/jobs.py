@@ -96,7 +96,11 @@ class IngestReport:
 
     def affected_series(self) -> set[tuple[str, str, str]]:
         """(table, layer, parameter) touched by this run, for incremental evaluation."""
-        return {(a["table"], a.get("layer") or "", a.get("parameter") or "") for f in self.files for a in f.affected}
+        return {
+            (a["table"], a.get("layer") or "", a.get("parameter") or "")
+            for f in self.files
+            for a in f.affected
+        }
 
     def to_dict(self) -> dict[str, object]:
         return {"files": [f.to_dict() for f in self.files], "exit_code": self.exit_code}
@@ -162,8 +166,17 @@ def ingest_paths(
     batch = store.Batch(db, create=True, wait_s=wait_s, on_open=load.configure_for_ingest)
     try:
         for f in files:
-            res = ingest_file(f, db=db, profiles=profiles, forced=profile, wait_s=wait_s, user=who,
-                              chunk_bytes=chunk_bytes, on_bytes=bar.update if bar else None, batch=batch)
+            res = ingest_file(
+                f,
+                db=db,
+                profiles=profiles,
+                forced=profile,
+                wait_s=wait_s,
+                user=who,
+                chunk_bytes=chunk_bytes,
+                on_bytes=bar.update if bar else None,
+                batch=batch,
+            )
             report.files.append(res)
             if on_file:
                 on_file(res)
@@ -179,7 +192,9 @@ def _progress(total: int, enabled: bool):  # tqdm on stderr, shown only for runs
         return None
     from tqdm import tqdm
 
-    return tqdm(total=total, unit="B", unit_scale=True, file=sys.stderr, delay=1.0, desc="ingest", leave=False)
+    return tqdm(
+        total=total, unit="B", unit_scale=True, file=sys.stderr, delay=1.0, desc="ingest", leave=False
+    )
 
 
 def _user() -> str:
@@ -209,56 +224,137 @@ def ingest_file(
     sha, size = sha256_of(path)
     if batch is not None:
         with batch.unit() as con:
-            return _ingest_one(con, path, sha, size, profiles=profiles, forced=forced, user=user,
-                               chunk_bytes=chunk_bytes, on_bytes=on_bytes)
+            return _ingest_one(
+                con,
+                path,
+                sha,
+                size,
+                profiles=profiles,
+                forced=forced,
+                user=user,
+                chunk_bytes=chunk_bytes,
+                on_bytes=on_bytes,
+            )
     with store.Batch(db, create=True, wait_s=wait_s, max_units=1, on_open=load.configure_for_ingest) as own:
         with own.unit() as con:
-            return _ingest_one(con, path, sha, size, profiles=profiles, forced=forced, user=user,
-                               chunk_bytes=chunk_bytes, on_bytes=on_bytes)
+            return _ingest_one(
+                con,
+                path,
+                sha,
+                size,
+                profiles=profiles,
+                forced=forced,
+                user=user,
+                chunk_bytes=chunk_bytes,
+                on_bytes=on_bytes,
+            )
 
 
-def _ingest_one(con, path: Path, sha: str, size: int, *, profiles: list[Profile], forced: str | None, user: str,
-                chunk_bytes: int, on_bytes: Callable[[int], object] | None) -> FileResult:
+def _ingest_one(
+    con,
+    path: Path,
+    sha: str,
+    size: int,
+    *,
+    profiles: list[Profile],
+    forced: str | None,
+    user: str,
+    chunk_bytes: int,
+    on_bytes: Callable[[int], object] | None,
+) -> FileResult:
     shown = str(path)
     fmt = export_format(path) or "csv"
     first = load.find_loaded_file(con, sha)
     if first is not None:
         with store.transaction(con):
-            fid = load.record_file(con, status="duplicate", path=shown, sha256=sha, size=size, kind=None,
-                                   profile=None, user=user, message=f"same bytes as file {first}; nothing loaded")
+            fid = load.record_file(
+                con,
+                status="duplicate",
+                path=shown,
+                sha256=sha,
+                size=size,
+                kind=None,
+                profile=None,
+                user=user,
+                message=f"same bytes as file {first}; nothing loaded",
+            )
         if on_bytes:
             on_bytes(size)
-        return FileResult(path=shown, status="duplicate", file_id=fid,
-                          message=f"same bytes as file {first}; nothing loaded")
+        return FileResult(
+            path=shown, status="duplicate", file_id=fid, message=f"same bytes as file {first}; nothing loaded"
+        )
     state: dict[str, object] = {}
     try:
         with store.transaction(con):
             fid = load.new_file_id(con)
             counts = load.FileCounts()
-            result = _load_content(con, path, fmt, profiles=profiles, forced=forced, file_id=fid,
-                                   counts=counts, chunk_bytes=chunk_bytes, on_bytes=on_bytes, state=state)
+            result = _load_content(
+                con,
+                path,
+                fmt,
+                profiles=profiles,
+                forced=forced,
+                file_id=fid,
+                counts=counts,
+                chunk_bytes=chunk_bytes,
+                on_bytes=on_bytes,
+                state=state,
+            )
             rejects = pl.concat(counts.reject_frames) if counts.reject_frames else None
             if rejects is None:
                 from ingest.adapters.text import empty_rejects
 
                 rejects = empty_rejects()
             prof: Profile = state["profile"]  # type: ignore[assignment]
-            load.finish_file(con, file_id=fid, path=shown, sha256=sha, size=size, kind=prof.kind,
-                             profile=prof.name, user=user, counts=counts, rejects=rejects)
+            load.finish_file(
+                con,
+                file_id=fid,
+                path=shown,
+                sha256=sha,
+                size=size,
+                kind=prof.kind,
+                profile=prof.name,
+                user=user,
+                counts=counts,
+                rejects=rejects,
+            )
     except IngestError as exc:
         if exc.path is None:
             exc = _with_path(exc, shown)
         prof = state.get("profile")  # type: ignore[assignment]
         with store.transaction(con):
-            fid = load.record_file(con, status="failed", path=shown, sha256=sha, size=size,
-                                   kind=getattr(prof, "kind", None), profile=getattr(prof, "name", None),
-                                   user=user, message=str(exc))
-        return FileResult(path=shown, status="failed", file_id=fid, profile=getattr(prof, "name", None),
-                          kind=getattr(prof, "kind", None), message=str(exc))
+            fid = load.record_file(
+                con,
+                status="failed",
+                path=shown,
+                sha256=sha,
+                size=size,
+                kind=getattr(prof, "kind", None),
+                profile=getattr(prof, "name", None),
+                user=user,
+                message=str(exc),
+            )
+        return FileResult(
+            path=shown,
+            status="failed",
+            file_id=fid,
+            profile=getattr(prof, "name", None),
+            kind=getattr(prof, "kind", None),
+            message=str(exc),
+        )
     rejected = rejects.select(pl.col("line").n_unique()).item() if rejects.height else 0
-    return FileResult(path=shown, status="loaded", profile=prof.name, kind=prof.kind, file_id=fid,
-                      rows_loaded=counts.loaded, rows_rejected=rejected, rows_superseded=counts.superseded,
-                      rows_skipped=counts.skipped, affected=result)
+    return FileResult(
+        path=shown,
+        status="loaded",
+        profile=prof.name,
+        kind=prof.kind,
+        file_id=fid,
+        rows_loaded=counts.loaded,
+        rows_rejected=rejected,
+        rows_superseded=counts.superseded,
+        rows_skipped=counts.skipped,
+        affected=result,
+    )
 
 
 def _with_path(exc: IngestError, path: str) -> IngestError:
@@ -285,7 +381,8 @@ class _Reader:
             block = self._f.read(n)
         except (EOFError, gzip.BadGzipFile, zlib.error) as exc:
             raise IngestError(
-                "gzip stream is truncated or corrupt", path=str(self.path),
+                "gzip stream is truncated or corrupt",
+                path=str(self.path),
                 found=f"{type(exc).__name__} after {self.lines_seen} complete lines",
                 expected="a complete gzip file",
                 fix="copy or re-export the file again (it was cut off); nothing was loaded",
@@ -309,14 +406,27 @@ class _Reader:
         self._raw.close()
 
 
-def _load_content(con, path: Path, fmt: str, *, profiles: list[Profile], forced: str | None, file_id: int,
-                  counts: load.FileCounts, chunk_bytes: int, on_bytes, state: dict[str, object]) -> list[dict]:
+def _load_content(
+    con,
+    path: Path,
+    fmt: str,
+    *,
+    profiles: list[Profile],
+    forced: str | None,
+    file_id: int,
+    counts: load.FileCounts,
+    chunk_bytes: int,
+    on_bytes,
+    state: dict[str, object],
+) -> list[dict]:
     shown = str(path)
     reader = _Reader(path, on_bytes)
     small_file = path.stat().st_size <= chunk_bytes
     stage = None if small_file else tempfile.TemporaryDirectory(prefix="lotline-load-")
     stage_dir = Path(stage.name) if stage else None
-    affected: dict[str, list[pl.DataFrame]] = {}  # per table: distinct (lot_id, layer, parameter) of each chunk
+    affected: dict[
+        str, list[pl.DataFrame]
+    ] = {}  # per table: distinct (lot_id, layer, parameter) of each chunk
     hashes: dict[str, list[pl.DataFrame]] = {}
 
     tables_seen: dict[str, None] = {}
@@ -328,8 +438,10 @@ def _load_content(con, path: Path, fmt: str, *, profiles: list[Profile], forced:
             t = schema.table(table)
             h = None
             if t.natural_key and frame.height:
-                h = frame.select(pl.struct(list(t.natural_key)).hash().alias("h"),
-                                 pl.col(schema.C_SOURCE_LINE).cast(pl.UInt32).alias("line"))  # 12 bytes a row
+                h = frame.select(
+                    pl.struct(list(t.natural_key)).hash().alias("h"),
+                    pl.col(schema.C_SOURCE_LINE).cast(pl.UInt32).alias("line"),
+                )  # 12 bytes a row
             keys = [c for c in ("lot_id", "layer", "parameter") if c in frame.columns]
             extra[table] = (h, frame.select(keys).unique() if frame.height else None)
         return frames, rejects, extra
@@ -340,14 +452,28 @@ def _load_content(con, path: Path, fmt: str, *, profiles: list[Profile], forced:
         """Insert a chunk; chunks of a row group or more go in as whole row groups (see load.ROW_GROUP_ROWS)."""
         held = pending.pop(table, [])
         if not held and not final and frame.height < load.ROW_GROUP_ROWS:
-            load.load_chunk(con, table, frame, file_id=file_id, counts=counts, series_order=small_file,
-                            stage_dir=stage_dir)
+            load.load_chunk(
+                con,
+                table,
+                frame,
+                file_id=file_id,
+                counts=counts,
+                series_order=small_file,
+                stage_dir=stage_dir,
+            )
             return
         rows = pl.concat([*held, frame], rechunk=False) if held else frame
         n = rows.height if final else load.whole_row_groups(rows.height)
         if n:
-            load.load_chunk(con, table, rows.slice(0, n), file_id=file_id, counts=counts,
-                            series_order=small_file, stage_dir=stage_dir)
+            load.load_chunk(
+                con,
+                table,
+                rows.slice(0, n),
+                file_id=file_id,
+                counts=counts,
+                series_order=small_file,
+                stage_dir=stage_dir,
+            )
         if n < rows.height:
             pending[table] = [rows.slice(n)]
 
@@ -374,8 +500,15 @@ def _load_content(con, path: Path, fmt: str, *, profiles: list[Profile], forced:
             if not data:
                 sniff(data, path=shown, expected="parquet")
             if not data.startswith(b"PAR1"):
-                raise IngestError("file is not Parquet", path=shown, line=1, column=1, found=repr(data[:4]),
-                                  expected="bytes starting with PAR1", fix="rename the file to its real format")
+                raise IngestError(
+                    "file is not Parquet",
+                    path=shown,
+                    line=1,
+                    column=1,
+                    found=repr(data[:4]),
+                    expected="bytes starting with PAR1",
+                    fix="rename the file to its real format",
+                )
             cols = parquet_columns(data, path=shown)
             prof = detect_profile(cols, profiles, fmt="parquet", path=shown, line=1, forced=forced)
             state["profile"] = prof
@@ -384,8 +517,13 @@ def _load_content(con, path: Path, fmt: str, *, profiles: list[Profile], forced:
         elif fmt == "jsonl":
             sniff(head, path=shown, expected="jsonl")
             if b"\n" not in head and len(head) >= BLOCK_BYTES:
-                LineChunker(path=shown, encoding="utf-8", skip_lines=0, chunk_bytes=chunk_bytes,
-                            max_line_bytes=BLOCK_BYTES - 1)._check_long(head)
+                LineChunker(
+                    path=shown,
+                    encoding="utf-8",
+                    skip_lines=0,
+                    chunk_bytes=chunk_bytes,
+                    max_line_bytes=BLOCK_BYTES - 1,
+                )._check_long(head)
             keys, line = jsonl_keys(head, path=shown)
             prof = detect_profile(keys, profiles, fmt="jsonl", path=shown, line=line, forced=forced)
             state["profile"] = prof
@@ -395,7 +533,9 @@ def _load_content(con, path: Path, fmt: str, *, profiles: list[Profile], forced:
                 n += 1
                 take(*parse_jsonl_chunk(data, prof, first_line=first))
             if n == 0:
-                raise IngestError("file has no records", path=shown, line=1, column=1, fix="re-export the file")
+                raise IngestError(
+                    "file has no records", path=shown, line=1, column=1, fix="re-export the file"
+                )
         else:
             sniff(head, path=shown, expected="csv")
             pool = [p for p in profiles if p.format == "csv"]
@@ -404,31 +544,49 @@ def _load_content(con, path: Path, fmt: str, *, profiles: list[Profile], forced:
             texts: dict[str, str] = {}
             views: dict[tuple[str, str, int], list[str]] = {}
 
-            def view(p: Profile) -> list[str]:  # the header as each profile reads it (decoded once per dialect)
+            def view(
+                p: Profile,
+            ) -> list[str]:  # the header as each profile reads it (decoded once per dialect)
                 k = (p.encoding, p.delimiter, p.header_line)
                 if k not in views:
                     if p.encoding not in texts:
-                        texts[p.encoding] = decode_head(head[:1 << 20], p.encoding)
-                    views[k] = header_fields(texts[p.encoding], delimiter=p.delimiter, header_line=p.header_line)
+                        texts[p.encoding] = decode_head(head[: 1 << 20], p.encoding)
+                    views[k] = header_fields(
+                        texts[p.encoding], delimiter=p.delimiter, header_line=p.header_line
+                    )
                 return list(views[k])
 
-            first_line = decode_head(head[:1 << 16], bom or "utf-8").splitlines()[:1]
+            first_line = decode_head(head[: 1 << 16], bom or "utf-8").splitlines()[:1]
             shown_header = first_line[0][:300] if first_line else ""
             if not shown_header.strip():
-                raise IngestError("file has no header line", path=shown, line=1, column=1, found="a blank line",
-                                  expected="a header", fix="remove the blank lines before the header")
-            prof = detect_profile(view, pool, fmt="csv", path=shown, line=1, shown=shown_header, forced=forced)
+                raise IngestError(
+                    "file has no header line",
+                    path=shown,
+                    line=1,
+                    column=1,
+                    found="a blank line",
+                    expected="a header",
+                    fix="remove the blank lines before the header",
+                )
+            prof = detect_profile(
+                view, pool, fmt="csv", path=shown, line=1, shown=shown_header, forced=forced
+            )
             state["profile"] = prof
             header = view(prof)
             enc = bom or prof.encoding
-            chunker = LineChunker(path=shown, encoding=enc, skip_lines=prof.header_line, chunk_bytes=chunk_bytes)
+            chunker = LineChunker(
+                path=shown, encoding=enc, skip_lines=prof.header_line, chunk_bytes=chunk_bytes
+            )
 
             def parsed() -> Iterator[tuple[pl.DataFrame, pl.DataFrame]]:
                 for first, data in _chunks(reader, head, chunker):
-                    raw, ragged = parse_csv_chunk(data, header=header, delimiter=prof.delimiter, first_line=first,
-                                                  source=shown)
+                    raw, ragged = parse_csv_chunk(
+                        data, header=header, delimiter=prof.delimiter, first_line=first, source=shown
+                    )
                     frame, rejects = map_records(raw, prof)
-                    yield prepare({prof.kind: frame}, pl.concat([ragged, rejects]) if ragged.height else rejects)
+                    yield prepare(
+                        {prof.kind: frame}, pl.concat([ragged, rejects]) if ragged.height else rejects
+                    )
 
             n = 0
             # parse the next chunk in a thread while the warehouse stores this one (both release the GIL)
@@ -436,9 +594,15 @@ def _load_content(con, path: Path, fmt: str, *, profiles: list[Profile], forced:
                 n += 1
                 take(frames, rejects, extra)
             if n == 0:
-                raise IngestError("file has a header but no data rows", path=shown, line=prof.header_line + 1,
-                                  column=1, found="end of file", expected="at least one data row",
-                                  fix="re-export the file; nothing was loaded")
+                raise IngestError(
+                    "file has a header but no data rows",
+                    path=shown,
+                    line=prof.header_line + 1,
+                    column=1,
+                    found="end of file",
+                    expected="at least one data row",
+                    fix="re-export the file; nothing was loaded",
+                )
         for table in list(pending):
             store_rows(table, pl.DataFrame(schema=pending[table][0].schema), final=True)
     finally:

@@ -152,7 +152,11 @@ def parse_profile(text: str, *, origin: str) -> Profile:
         line = int(m.group(1)) if m else getattr(exc, "lineno", None)
         col = int(m.group(2)) if m else getattr(exc, "colno", None)
         raise ProfileError(
-            "profile is not valid TOML", path=origin, line=line, column=col, details=str(exc).split(" (at")[0],
+            "profile is not valid TOML",
+            path=origin,
+            line=line,
+            column=col,
+            details=str(exc).split(" (at")[0],
             fix="correct the TOML syntax",
         ) from None
     return _build(doc, origin)
@@ -162,40 +166,82 @@ def _err(origin: str, what: str, *, found: Any = None, expected: Any = None, fix
     return ProfileError(what, path=origin, found=found, expected=expected, fix=fix)
 
 
-_TOP_KEYS = {"name", "kind", "format", "description", "csv", "time", "columns", "values", "constants",
-             "limits", "wide", "ignore", "nested"}
+_TOP_KEYS = {
+    "name",
+    "kind",
+    "format",
+    "description",
+    "csv",
+    "time",
+    "columns",
+    "values",
+    "constants",
+    "limits",
+    "wide",
+    "ignore",
+    "nested",
+}
 
 
 def _build(doc: dict[str, Any], origin: str) -> Profile:
     unknown = sorted(set(doc) - _TOP_KEYS)
     if unknown:
-        raise _err(origin, f"unknown profile key \"{unknown[0]}\"", found=unknown[0],
-                   expected=", ".join(sorted(_TOP_KEYS)), fix="remove or rename it")
+        raise _err(
+            origin,
+            f'unknown profile key "{unknown[0]}"',
+            found=unknown[0],
+            expected=", ".join(sorted(_TOP_KEYS)),
+            fix="remove or rename it",
+        )
     for key in ("name", "kind", "format"):
         if not isinstance(doc.get(key), str):
-            raise _err(origin, f"profile lacks \"{key}\"", expected="a string",
-                       fix=f"add {key} = \"...\" at the top of the profile")
+            raise _err(
+                origin,
+                f'profile lacks "{key}"',
+                expected="a string",
+                fix=f'add {key} = "..." at the top of the profile',
+            )
     name, kind, fmt = doc["name"], doc["kind"], doc["format"]
     fact_names = [t.name for t in schema.FACT_TABLES]
     if kind not in fact_names:
-        raise _err(origin, "unknown data kind", found=kind, expected="one of " + ", ".join(fact_names),
-                   fix="set kind to the canonical table the export fills")
+        raise _err(
+            origin,
+            "unknown data kind",
+            found=kind,
+            expected="one of " + ", ".join(fact_names),
+            fix="set kind to the canonical table the export fills",
+        )
     if fmt not in FORMATS:
         raise _err(origin, "unknown format", found=fmt, expected=", ".join(FORMATS), fix="set format")
     table = schema.table(kind)
     csv = doc.get("csv", {})
     encoding = str(csv.get("encoding", "utf-8")).lower()
     if encoding not in ENCODINGS:
-        raise _err(origin, "unknown encoding", found=encoding, expected=", ".join(sorted(set(ENCODINGS))),
-                   fix="use one of the listed encodings")
+        raise _err(
+            origin,
+            "unknown encoding",
+            found=encoding,
+            expected=", ".join(sorted(set(ENCODINGS))),
+            fix="use one of the listed encodings",
+        )
     delimiter = csv.get("delimiter", ",")
     decimal = csv.get("decimal", ".")
     if not (isinstance(delimiter, str) and len(delimiter) == 1) or decimal not in (".", ","):
-        raise _err(origin, "bad delimiter or decimal mark", found=f"{delimiter!r} / {decimal!r}",
-                   expected="one character / \".\" or \",\"", fix="fix [csv] delimiter and decimal")
+        raise _err(
+            origin,
+            "bad delimiter or decimal mark",
+            found=f"{delimiter!r} / {decimal!r}",
+            expected='one character / "." or ","',
+            fix="fix [csv] delimiter and decimal",
+        )
     if delimiter == decimal:
-        raise _err(origin, "delimiter and decimal mark are the same", found=delimiter,
-                   expected="different characters", fix="a decimal-comma export uses delimiter = \";\"")
+        raise _err(
+            origin,
+            "delimiter and decimal mark are the same",
+            found=delimiter,
+            expected="different characters",
+            fix='a decimal-comma export uses delimiter = ";"',
+        )
     time = doc.get("time", {})
     zone = time.get("zone")
     if zone is not None:
@@ -208,32 +254,62 @@ def _build(doc: dict[str, Any], origin: str) -> Profile:
         wide_name, wide_value = wide.get("name_column"), wide.get("value_column")
         for c in (wide_name, wide_value):
             if c not in table.names:
-                raise _err(origin, "[wide] names a column the table lacks", found=c,
-                           expected=", ".join(table.data_columns), fix="set name_column and value_column")
+                raise _err(
+                    origin,
+                    "[wide] names a column the table lacks",
+                    found=c,
+                    expected=", ".join(table.data_columns),
+                    fix="set name_column and value_column",
+                )
         wide_sources = tuple(
-            _source(table, wide_value, spec, origin, label=label) for label, spec in wide.get("sources", {}).items()
+            _source(table, wide_value, spec, origin, label=label)
+            for label, spec in wide.get("sources", {}).items()
         )
         if not wide_sources:
             raise _err(origin, "[wide] has no sources", fix="list one [wide.sources] entry per value column")
     values = {k: {str(a): str(b) for a, b in v.items()} for k, v in doc.get("values", {}).items()}
     for k in values:
         if k not in table.names:
-            raise _err(origin, "[values] names an unknown column", found=k, expected=", ".join(table.data_columns),
-                       fix="use canonical column names")
+            raise _err(
+                origin,
+                "[values] names an unknown column",
+                found=k,
+                expected=", ".join(table.data_columns),
+                fix="use canonical column names",
+            )
     constants = dict(doc.get("constants", {}))
     for k in constants:
         if k not in table.names:
-            raise _err(origin, "[constants] names an unknown column", found=k,
-                       expected=", ".join(table.data_columns), fix="use canonical column names")
+            raise _err(
+                origin,
+                "[constants] names an unknown column",
+                found=k,
+                expected=", ".join(table.data_columns),
+                fix="use canonical column names",
+            )
     limits = {k: _limit(k, v, origin, table) for k, v in doc.get("limits", {}).items()}
     nested = tuple(_nested(k, v, origin) for k, v in doc.get("nested", {}).items())
     prof = Profile(
-        name=name, kind=kind, format=fmt, origin=origin, description=str(doc.get("description", "")),
-        delimiter=delimiter, decimal=decimal, encoding=ENCODINGS[encoding],
-        header_line=int(csv.get("header_line", 1)), time_format=str(time.get("format", "iso")), time_zone=zone,
-        columns=columns, values=values, constants=constants, limits=limits,
-        wide_name_column=wide_name, wide_value_column=wide_value, wide_sources=wide_sources,
-        ignore=tuple(doc.get("ignore", ())), nested=nested,
+        name=name,
+        kind=kind,
+        format=fmt,
+        origin=origin,
+        description=str(doc.get("description", "")),
+        delimiter=delimiter,
+        decimal=decimal,
+        encoding=ENCODINGS[encoding],
+        header_line=int(csv.get("header_line", 1)),
+        time_format=str(time.get("format", "iso")),
+        time_zone=zone,
+        columns=columns,
+        values=values,
+        constants=constants,
+        limits=limits,
+        wide_name_column=wide_name,
+        wide_value_column=wide_value,
+        wide_sources=wide_sources,
+        ignore=tuple(doc.get("ignore", ())),
+        nested=nested,
     )
     _check_complete(prof, table, origin)
     return prof
@@ -245,14 +321,24 @@ def _check_zone(zone: str, origin: str) -> None:
     try:
         ZoneInfo(zone)
     except (ZoneInfoNotFoundError, ValueError):
-        raise _err(origin, "unknown time zone", found=zone, expected="an IANA zone name such as Europe/Amsterdam",
-                   fix="use a name from the IANA time zone database") from None
+        raise _err(
+            origin,
+            "unknown time zone",
+            found=zone,
+            expected="an IANA zone name such as Europe/Amsterdam",
+            fix="use a name from the IANA time zone database",
+        ) from None
 
 
 def _source(table: schema.Table, canon: str, spec: Any, origin: str, *, label: str | None = None) -> Source:
     if canon not in table.names or canon.startswith("_"):
-        raise _err(origin, f"[columns] maps unknown canonical column \"{canon}\"", found=canon,
-                   expected=", ".join(table.data_columns), fix="use the canonical names of table " + table.name)
+        raise _err(
+            origin,
+            f'[columns] maps unknown canonical column "{canon}"',
+            found=canon,
+            expected=", ".join(table.data_columns),
+            fix="use the canonical names of table " + table.name,
+        )
     unit = optional = fmt = zone = None
     if isinstance(spec, dict):
         names = spec.get("source")
@@ -265,8 +351,13 @@ def _source(table: schema.Table, canon: str, spec: Any, origin: str, *, label: s
     if isinstance(names, str):
         names = [names]
     if not names or not all(isinstance(n, str) for n in names):
-        raise _err(origin, f"column \"{label or canon}\" has no source name", found=spec,
-                   expected="a name, a list of names, or { source = ..., unit = ... }", fix="name the source column")
+        raise _err(
+            origin,
+            f'column "{label or canon}" has no source name',
+            found=spec,
+            expected="a name, a list of names, or { source = ..., unit = ... }",
+            fix="name the source column",
+        )
     col = table.column(canon)
     if unit is not None:
         if col.unit == "cm2":
@@ -274,31 +365,58 @@ def _source(table: schema.Table, canon: str, spec: Any, origin: str, *, label: s
         else:
             ok = col.dtype == schema.FLOAT64 and units.is_length_unit(unit)
         if not ok:
-            raise _err(origin, f"column \"{canon}\" cannot take unit \"{unit}\"", found=unit,
-                       expected="a length (nm, um, A, mm) or an area (cm2, mm2)", fix="fix the unit")
-    return Source(canonical=label or canon, names=tuple(names), unit=unit, optional=optional,
-                  time_format=fmt, time_zone=zone)
+            raise _err(
+                origin,
+                f'column "{canon}" cannot take unit "{unit}"',
+                found=unit,
+                expected="a length (nm, um, A, mm) or an area (cm2, mm2)",
+                fix="fix the unit",
+            )
+    return Source(
+        canonical=label or canon,
+        names=tuple(names),
+        unit=unit,
+        optional=optional,
+        time_format=fmt,
+        time_zone=zone,
+    )
 
 
 def _limit(name: str, spec: Any, origin: str, table: schema.Table) -> Limit:
     if name not in table.names or not isinstance(spec, dict):
-        raise _err(origin, "bad [limits] entry", found=name, expected="a numeric canonical column with a table",
-                   fix="write [limits.value] with greater_than / at_least / less_than / at_most")
+        raise _err(
+            origin,
+            "bad [limits] entry",
+            found=name,
+            expected="a numeric canonical column with a table",
+            fix="write [limits.value] with greater_than / at_least / less_than / at_most",
+        )
     allowed = {"greater_than", "at_least", "less_than", "at_most"}
     bad = set(spec) - allowed
     if bad:
-        raise _err(origin, f"unknown limit key \"{sorted(bad)[0]}\"", expected=", ".join(sorted(allowed)),
-                   fix="use the listed keys")
+        raise _err(
+            origin,
+            f'unknown limit key "{sorted(bad)[0]}"',
+            expected=", ".join(sorted(allowed)),
+            fix="use the listed keys",
+        )
     return Limit(**{k: float(v) for k, v in spec.items()})
 
 
 def _nested(key: str, spec: dict[str, Any], origin: str) -> Nested:
     if key not in [t.name for t in schema.FACT_TABLES]:
-        raise _err(origin, "[nested] names an unknown table", found=key, expected="a canonical fact table",
-                   fix="use e.g. [nested.defect_counts]")
+        raise _err(
+            origin,
+            "[nested] names an unknown table",
+            found=key,
+            expected="a canonical fact table",
+            fix="use e.g. [nested.defect_counts]",
+        )
     t = schema.table(key)
     cols = tuple(_source(t, c, s, origin) for c, s in spec.get("columns", {}).items())
-    return Nested(table=key, field=str(spec.get("field", key)), columns=cols, optional=bool(spec.get("optional")))
+    return Nested(
+        table=key, field=str(spec.get("field", key)), columns=cols, optional=bool(spec.get("optional"))
+    )
 
 
 _DERIVED = {"measurements": {"unit"}, "reference_values": {"unit"}, "spec_limits": set()}
@@ -311,9 +429,13 @@ def _check_complete(prof: Profile, table: schema.Table, origin: str) -> None:
     supplied |= _DERIVED.get(table.name, set())
     missing = [c for c in table.required if c not in supplied]
     if missing:
-        raise _err(origin, f"profile does not supply required column \"{missing[0]}\" of {table.name}",
-                   found=", ".join(sorted(supplied)), expected=", ".join(table.required),
-                   fix="map it under [columns] or set it under [constants]")
+        raise _err(
+            origin,
+            f'profile does not supply required column "{missing[0]}" of {table.name}',
+            found=", ".join(sorted(supplied)),
+            expected=", ".join(table.required),
+            fix="map it under [columns] or set it under [constants]",
+        )
 
 
 # ------------------------------------------------------------------------------------------ native
@@ -329,9 +451,18 @@ def native_profiles() -> list[Profile]:
             if not c.name.startswith("_")
         )
         for fmt in ("csv", "parquet"):
-            out.append(Profile(name=f"{NATIVE_PREFIX}{t.name}", kind=t.name, format=fmt, origin="(built in)",
-                               description=f"lotline native {t.name}", time_format="iso", time_zone="UTC",
-                               columns=cols))
+            out.append(
+                Profile(
+                    name=f"{NATIVE_PREFIX}{t.name}",
+                    kind=t.name,
+                    format=fmt,
+                    origin="(built in)",
+                    description=f"lotline native {t.name}",
+                    time_format="iso",
+                    time_zone="UTC",
+                    columns=cols,
+                )
+            )
     return out
 
 
@@ -344,15 +475,25 @@ def load_profiles(dirs: list[Path] | tuple[Path, ...] = ()) -> list[Profile]:
     for d in (BUILTIN_DIR, *dirs):
         d = Path(d)
         if not d.is_dir():
-            raise ProfileError("profile folder not found", path=str(d), fix="pass an existing folder to --profiles")
+            raise ProfileError(
+                "profile folder not found", path=str(d), fix="pass an existing folder to --profiles"
+            )
         for f in sorted(d.glob("*.toml")):
             p = parse_profile(f.read_text(encoding="utf-8"), origin=str(f))
             by_name[p.name] = p
     return [*by_name.values(), *native_profiles()]
 
 
-def detect_profile(header: list[str] | Callable[[Profile], list[str]], profiles: list[Profile], *, fmt: str,
-                   path: str, line: int = 1, shown: str | None = None, forced: str | None = None) -> Profile:
+def detect_profile(
+    header: list[str] | Callable[[Profile], list[str]],
+    profiles: list[Profile],
+    *,
+    fmt: str,
+    path: str,
+    line: int = 1,
+    shown: str | None = None,
+    forced: str | None = None,
+) -> Profile:
     """Pick the one profile of format ``fmt`` whose columns fit the header exactly (all required present,
     nothing unknown). No match or several is an error that lists the candidates and the header found.
 
@@ -366,8 +507,13 @@ def detect_profile(header: list[str] | Callable[[Profile], list[str]], profiles:
     if forced is not None:
         named = [p for p in pool if p.name == forced]
         if not named:
-            raise ProfileError(f"no {fmt} profile named \"{forced}\"", path=path, found=forced,
-                               expected=", ".join(sorted({p.name for p in pool})), fix="check the profile name")
+            raise ProfileError(
+                f'no {fmt} profile named "{forced}"',
+                path=path,
+                found=forced,
+                expected=", ".join(sorted({p.name for p in pool})),
+                fix="check the profile name",
+            )
         p = named[0]
         missing, unknown = p.match(view(p))
         if missing:
@@ -379,7 +525,9 @@ def detect_profile(header: list[str] | Callable[[Profile], list[str]], profiles:
         return fits[0]
     if len(fits) > 1:
         raise ProfileError(
-            f"header matches {len(fits)} export profiles", path=path, line=line,
+            f"header matches {len(fits)} export profiles",
+            path=path,
+            line=line,
             details=f"Found: {shown}\n  Candidates: " + ", ".join(f"{p.name} ({p.origin})" for p in fits),
             fix="make the profiles' columns differ (remove the stale one from --profiles) so one header fits one",
         )
@@ -392,10 +540,12 @@ def detect_profile(header: list[str] | Callable[[Profile], list[str]], profiles:
         f"{p.name} (lacks {', '.join(m) or '-'}; unknown {', '.join(u[:5]) or '-'})" for p, m, u in ranked
     )
     raise ProfileError(
-        "header matches no export profile", path=path, line=line,
+        "header matches no export profile",
+        path=path,
+        line=line,
         details=f"Found: {shown}\n  Closest {fmt} profiles: {cands}",
         fix="write a profile for this export and pass its folder with --profiles DIR, "
-            "or export in lotline's native format (README: \"lotline's native format\")",
+        "or export in lotline's native format (README: \"lotline's native format\")",
     )
 
 
@@ -403,6 +553,8 @@ def _lacks(p: Profile, missing: list[str], shown: str, path: str, line: int) -> 
     names = ", ".join(f'"{m}"' for m in missing)
     return ProfileError(
         f"header lacks required column{'s' if len(missing) > 1 else ''} {names} of profile {p.name}",
-        path=path, line=line, details=f"Found: {shown}",
+        path=path,
+        line=line,
+        details=f"Found: {shown}",
         fix=f"export the column, or mark it optional in {p.origin}",
     )

@@ -37,11 +37,16 @@ def parse_timestamps(raw: pl.Series, *, fmt: str, zone: str | None) -> tuple[pl.
         if ends_z.fill_null(True).all():
             v = s.str.to_datetime("%Y-%m-%dT%H:%M:%S%.fZ", strict=False, time_unit="us")
             if v.null_count() > s.null_count():
-                v2 = _norm_iso(s).str.to_datetime("%Y-%m-%dT%H:%M:%S%.f%#z", strict=False, time_unit="us",
-                                                  time_zone="UTC").dt.replace_time_zone(None)
+                v2 = (
+                    _norm_iso(s)
+                    .str.to_datetime("%Y-%m-%dT%H:%M:%S%.f%#z", strict=False, time_unit="us", time_zone="UTC")
+                    .dt.replace_time_zone(None)
+                )
                 v = v.fill_null(v2)
             reason = pl.select(
-                pl.when(s.is_not_null() & v.is_null()).then(pl.lit("not an ISO 8601 timestamp")).otherwise(None)
+                pl.when(s.is_not_null() & v.is_null())
+                .then(pl.lit("not an ISO 8601 timestamp"))
+                .otherwise(None)
             ).to_series()
             return v.cast(utc_dtype), reason
         s = _norm_iso(s)
@@ -55,7 +60,9 @@ def parse_timestamps(raw: pl.Series, *, fmt: str, zone: str | None) -> tuple[pl.
     values = pl.Series([None] * n, dtype=utc_dtype)
     reason = pl.Series([None] * n, dtype=pl.String)
     if has_off.any():
-        aware = s.str.to_datetime(aware_fmt, strict=False, time_unit="us", time_zone="UTC").dt.replace_time_zone(None)
+        aware = s.str.to_datetime(
+            aware_fmt, strict=False, time_unit="us", time_zone="UTC"
+        ).dt.replace_time_zone(None)
         values = pl.select(pl.when(has_off).then(aware).otherwise(values)).to_series()
         reason = pl.select(
             pl.when(has_off & s.is_not_null() & aware.is_null()).then(pl.lit(bad_text)).otherwise(reason)
@@ -65,16 +72,20 @@ def parse_timestamps(raw: pl.Series, *, fmt: str, zone: str | None) -> tuple[pl.
         naive = s.str.to_datetime(naive_fmt, strict=False, time_unit="us")
         if zone is None:
             reason = pl.select(
-                pl.when(naive_mask & naive.is_null()).then(pl.lit(bad_text))
-                .when(naive_mask).then(pl.lit("timestamp has no UTC offset and the profile sets no time zone"))
+                pl.when(naive_mask & naive.is_null())
+                .then(pl.lit(bad_text))
+                .when(naive_mask)
+                .then(pl.lit("timestamp has no UTC offset and the profile sets no time zone"))
                 .otherwise(reason)
             ).to_series()
         else:
             local, why = _localise(naive, zone)
             values = pl.select(pl.when(naive_mask).then(local).otherwise(values)).to_series()
             reason = pl.select(
-                pl.when(naive_mask & naive.is_null()).then(pl.lit(bad_text))
-                .when(naive_mask).then(why)
+                pl.when(naive_mask & naive.is_null())
+                .then(pl.lit(bad_text))
+                .when(naive_mask)
+                .then(why)
                 .otherwise(reason)
             ).to_series()
     return values.cast(utc_dtype), reason
@@ -95,9 +106,17 @@ def _localise(naive: pl.Series, zone: str) -> tuple[pl.Series, pl.Series]:
         earliest = naive.dt.replace_time_zone(zone, ambiguous="earliest", non_existent="null")
         why = pl.select(
             pl.when(failed & earliest.is_not_null())
-            .then(pl.lit(f"ambiguous local time in {zone} (occurs twice at the DST change); export with a UTC offset"))
+            .then(
+                pl.lit(
+                    f"ambiguous local time in {zone} (occurs twice at the DST change); export with a UTC offset"
+                )
+            )
             .when(failed)
-            .then(pl.lit(f"nonexistent local time in {zone} (skipped at the DST change); export with a UTC offset"))
+            .then(
+                pl.lit(
+                    f"nonexistent local time in {zone} (skipped at the DST change); export with a UTC offset"
+                )
+            )
             .otherwise(None)
         ).to_series()
     else:
@@ -113,7 +132,9 @@ def _from_datetime(raw: pl.Series, zone: str | None) -> tuple[pl.Series, pl.Seri
         return v.cast(pl.Datetime("us")), pl.Series([None] * len(raw), dtype=pl.String)
     if zone is None:
         reason = pl.select(
-            pl.when(raw.is_not_null()).then(pl.lit("timestamp has no UTC offset and the profile sets no time zone"))
+            pl.when(raw.is_not_null()).then(
+                pl.lit("timestamp has no UTC offset and the profile sets no time zone")
+            )
         ).to_series()
         return pl.Series([None] * len(raw), dtype=pl.Datetime("us")), reason
     v, why = _localise(raw.cast(pl.Datetime("us")), zone)

@@ -23,7 +23,16 @@ _LENGTH_M: dict[str, float] = {
     "angstrom": 1e-10,
 }
 
-_AREA_ALIASES = {"cm2": "cm", "cm²": "cm", "mm2": "mm", "mm²": "mm", "um2": "um", "µm2": "um", "µm²": "um", "m2": "m"}
+_AREA_ALIASES = {
+    "cm2": "cm",
+    "cm²": "cm",
+    "mm2": "mm",
+    "mm²": "mm",
+    "um2": "um",
+    "µm2": "um",
+    "µm²": "um",
+    "m2": "m",
+}
 
 CANONICAL_LENGTH = "nm"
 CANONICAL_COORDINATE = "mm"
@@ -39,7 +48,9 @@ def length_factor(unit: str, to: str = CANONICAL_LENGTH) -> float:
     try:
         src, dst = _LENGTH_M[unit], _LENGTH_M[to]
     except KeyError as exc:
-        raise KeyError(f"unknown length unit {exc.args[0]!r}; known: {', '.join(known_length_units())}") from None
+        raise KeyError(
+            f"unknown length unit {exc.args[0]!r}; known: {', '.join(known_length_units())}"
+        ) from None
     return _exact_ratio(src, dst)
 
 
@@ -48,7 +59,9 @@ def area_factor(unit: str, to: str = CANONICAL_AREA) -> float:
     try:
         src, dst = _AREA_ALIASES[unit], _AREA_ALIASES[to]
     except KeyError as exc:
-        raise KeyError(f"unknown area unit {exc.args[0]!r}; known: {', '.join(sorted(_AREA_ALIASES))}") from None
+        raise KeyError(
+            f"unknown area unit {exc.args[0]!r}; known: {', '.join(sorted(_AREA_ALIASES))}"
+        ) from None
     return float(f"{_exact_ratio(_LENGTH_M[src], _LENGTH_M[dst]) ** 2:.12g}")
 
 

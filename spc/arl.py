@@ -115,8 +115,10 @@ def _zone_chain(rules: Sequence[RuleParams]):
     """Reachable non-signalling states and transitions (state, interval, next state) of a rule set."""
     cuts = sorted({0.0} | {s * r.k for r in rules if hasattr(r, "k") for s in (1, -1)})
     edges = [-math.inf, *cuts, math.inf]
-    reps = [(a + b) / 2 if math.isfinite(a) and math.isfinite(b) else (b - 1 if math.isfinite(b) else a + 1)
-            for a, b in zip(edges[:-1], edges[1:], strict=True)]
+    reps = [
+        (a + b) / 2 if math.isfinite(a) and math.isfinite(b) else (b - 1 if math.isfinite(b) else a + 1)
+        for a, b in zip(edges[:-1], edges[1:], strict=True)
+    ]
     start = tuple(_start_state(r) for r in rules)
     index = {start: 0}
     todo = [start]
@@ -305,7 +307,7 @@ def simulate_arl(
         z = rng.standard_normal((alive.size, chunk)) + shift
         if kind == "shewhart":
             full = np.concatenate([tail, z], axis=1)
-            hit = _any_rule(full, rules)[:, tail.shape[1]:]
+            hit = _any_rule(full, rules)[:, tail.shape[1] :]
         else:
             hit, state = _chart_hits(kind, design, z, alive, state)
         got = hit.any(axis=1)

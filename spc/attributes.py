@@ -28,29 +28,35 @@ def c_points(frame: pl.DataFrame, count: str = "count") -> pl.DataFrame:
     """c chart: value = count, center = mean count, sigma = sqrt(center) per series."""
     c = pl.col(count).cast(pl.Float64)
     return frame.with_columns(c.alias(VALUE), c.mean().over(_over).alias(CENTER)).with_columns(
-        pl.col(CENTER).sqrt().alias(SIGMA))
+        pl.col(CENTER).sqrt().alias(SIGMA)
+    )
 
 
 def u_points(frame: pl.DataFrame, count: str = "count", area: str = "area_cm2") -> pl.DataFrame:
     """u chart: value = defects per unit area, sigma = sqrt(u-bar / area) per row."""
     c, a = pl.col(count).cast(pl.Float64), pl.col(area).cast(pl.Float64)
-    return frame.with_columns((c / a).alias(VALUE), (c.sum() / a.sum()).over(_over).alias(CENTER)).with_columns(
-        (pl.col(CENTER) / a).sqrt().alias(SIGMA))
+    return frame.with_columns(
+        (c / a).alias(VALUE), (c.sum() / a.sum()).over(_over).alias(CENTER)
+    ).with_columns((pl.col(CENTER) / a).sqrt().alias(SIGMA))
 
 
 def p_points(frame: pl.DataFrame, defective: str = "defective", n: str = "n") -> pl.DataFrame:
     """p chart: value = fraction defective, sigma = sqrt(p-bar (1 - p-bar) / n_i)."""
     d, m = pl.col(defective).cast(pl.Float64), pl.col(n).cast(pl.Float64)
-    return frame.with_columns((d / m).alias(VALUE), (d.sum() / m.sum()).over(_over).alias(CENTER)).with_columns(
-        (pl.col(CENTER) * (1 - pl.col(CENTER)) / m).sqrt().alias(SIGMA))
+    return frame.with_columns(
+        (d / m).alias(VALUE), (d.sum() / m.sum()).over(_over).alias(CENTER)
+    ).with_columns((pl.col(CENTER) * (1 - pl.col(CENTER)) / m).sqrt().alias(SIGMA))
 
 
 def np_points(frame: pl.DataFrame, defective: str = "defective", n: str = "n") -> pl.DataFrame:
     """np chart (constant n): value = number defective, center n p-bar, sigma sqrt(n p-bar (1-p-bar))."""
     p = p_points(frame, defective, n)
     m = pl.col(n).cast(pl.Float64)
-    return p.with_columns(pl.col(defective).cast(pl.Float64).alias(VALUE), (m * pl.col(CENTER)).alias(CENTER),
-                          (pl.col(SIGMA) * m).alias(SIGMA))
+    return p.with_columns(
+        pl.col(defective).cast(pl.Float64).alias(VALUE),
+        (m * pl.col(CENTER)).alias(CENTER),
+        (pl.col(SIGMA) * m).alias(SIGMA),
+    )
 
 
 def laney_u_points(frame: pl.DataFrame, count: str = "count", area: str = "area_cm2") -> pl.DataFrame:

@@ -83,8 +83,11 @@ def evaluate_capability(
         return c, (lo, hi)
 
     def k_index(s):
-        sides = [v for v in ((usl - mean) if usl is not None else None, (mean - lsl) if lsl is not None else None)
-                 if v is not None]
+        sides = [
+            v
+            for v in ((usl - mean) if usl is not None else None, (mean - lsl) if lsl is not None else None)
+            if v is not None
+        ]
         c = min(sides) / (3 * s)
         half = z * math.sqrt(1 / (9 * n) + c * c / (2 * (n - 1)))
         return c, (c - half, c + half)
@@ -93,4 +96,6 @@ def evaluate_capability(
     pp, pp_ci = two_sided(s_all)
     cpk, cpk_ci = k_index(s_w)
     ppk, ppk_ci = k_index(s_all)
-    return Capability(n, mean, s_w, s_all, cp, cp_ci, cpk, cpk_ci, pp, pp_ci, ppk, ppk_ci, normal_p, tuple(warnings))
+    return Capability(
+        n, mean, s_w, s_all, cp, cp_ci, cpk, cpk_ci, pp, pp_ci, ppk, ppk_ci, normal_p, tuple(warnings)
+    )

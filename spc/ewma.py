@@ -52,7 +52,9 @@ class EwmaResult:
     state: pl.DataFrame
 
 
-def _initial(lay: Layout, state: pl.DataFrame | None, cols: Sequence[str], default: float) -> list[np.ndarray]:
+def _initial(
+    lay: Layout, state: pl.DataFrame | None, cols: Sequence[str], default: float
+) -> list[np.ndarray]:
     """Per-row starting values (meaningful at series starts) from a state frame keyed by series."""
     n = lay.frame.height
     if state is None or state.height == 0:
@@ -122,5 +124,3 @@ def _final_state(lay: Layout, cols: dict[str, np.ndarray]) -> pl.DataFrame:
     last[:-1] = lay.start[1:]
     base = lay.frame.select(SERIES).filter(pl.Series(last))
     return base.with_columns(pl.Series(k, v[last]) for k, v in cols.items())
-
-

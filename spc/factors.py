@@ -64,9 +64,17 @@ def factors(n: int) -> dict[str, float]:
     c, r2, r3 = c4(n), d2(n), d3(n)
     s = math.sqrt(1 - c * c)
     return {
-        "A2": 3 / (r2 * math.sqrt(n)), "A3": 3 / (c * math.sqrt(n)), "c4": c,
-        "B3": max(0.0, 1 - 3 * s / c), "B4": 1 + 3 * s / c, "B5": max(0.0, c - 3 * s), "B6": c + 3 * s,
-        "d2": r2, "d3": r3, "D3": max(0.0, 1 - 3 * r3 / r2), "D4": 1 + 3 * r3 / r2,
+        "A2": 3 / (r2 * math.sqrt(n)),
+        "A3": 3 / (c * math.sqrt(n)),
+        "c4": c,
+        "B3": max(0.0, 1 - 3 * s / c),
+        "B4": 1 + 3 * s / c,
+        "B5": max(0.0, c - 3 * s),
+        "B6": c + 3 * s,
+        "d2": r2,
+        "d3": r3,
+        "D3": max(0.0, 1 - 3 * r3 / r2),
+        "D4": 1 + 3 * r3 / r2,
     }
 
 

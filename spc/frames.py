@@ -182,7 +182,10 @@ def window_count_small(cond: np.ndarray, pos: np.ndarray, width: int) -> np.ndar
 
 
 def gather_signals(
-    lay: Layout, hits: Sequence[tuple[str, np.ndarray]], passthrough: Sequence[str], values: dict | None = None
+    lay: Layout,
+    hits: Sequence[tuple[str, np.ndarray]],
+    passthrough: Sequence[str],
+    values: dict | None = None,
 ) -> pl.DataFrame:
     """Build a signals frame from (rule id, boolean mask) pairs; `values` may override the value column."""
     check_columns(lay.frame, passthrough)
@@ -208,6 +211,6 @@ def gather_signals(
 
 def _empty_signals(frame: pl.DataFrame, cols: list[str]) -> pl.DataFrame:
     out = frame.select(cols).clear()
-    return out.with_columns(pl.lit(None, pl.String).alias(RULE), pl.lit(None, pl.Float64).alias(VALUE)).select(
-        [SERIES, SEQ, RULE, VALUE, *cols[2:]]
-    )
+    return out.with_columns(
+        pl.lit(None, pl.String).alias(RULE), pl.lit(None, pl.Float64).alias(VALUE)
+    ).select([SERIES, SEQ, RULE, VALUE, *cols[2:]])

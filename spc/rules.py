@@ -115,17 +115,59 @@ RULES: dict[str, Rule] = {
     r.id: r
     for r in (
         Rule("we1", BeyondLimits("we1", 3.0), f"One point beyond 3 sigma (zone A or beyond) - {_WE}, rule 1"),
-        Rule("we2", ZoneCount("we2", 2, 3, 2.0), f"2 of 3 successive points beyond 2 sigma, same side - {_WE}, rule 2"),
-        Rule("we3", ZoneCount("we3", 4, 5, 1.0), f"4 of 5 successive points beyond 1 sigma, same side - {_WE}, rule 3"),
-        Rule("we4", SameSideRun("we4", 8), f"8 successive points on one side of the centre line - {_WE}, rule 4"),
-        Rule("nelson1", BeyondLimits("nelson1", 3.0), f"One point beyond zone A (3 sigma) - {_NELSON}, test 1"),
-        Rule("nelson2", SameSideRun("nelson2", 9), f"Nine points in a row on one side of the centre line - {_NELSON}, test 2"),
-        Rule("nelson3", Trend("nelson3", 6), f"Six points in a row steadily increasing or decreasing - {_NELSON}, test 3"),
-        Rule("nelson4", Alternation("nelson4", 14), f"Fourteen points in a row alternating up and down - {_NELSON}, test 4"),
-        Rule("nelson5", ZoneCount("nelson5", 2, 3, 2.0), f"Two of three points in a row in zone A or beyond, same side - {_NELSON}, test 5"),
-        Rule("nelson6", ZoneCount("nelson6", 4, 5, 1.0), f"Four of five points in a row in zone B or beyond, same side - {_NELSON}, test 6"),
-        Rule("nelson7", InnerRun("nelson7", 15, 1.0), f"Fifteen points in a row in zone C, either side - {_NELSON}, test 7"),
-        Rule("nelson8", OuterRun("nelson8", 8, 1.0), f"Eight points in a row with none in zone C, either side - {_NELSON}, test 8"),
+        Rule(
+            "we2",
+            ZoneCount("we2", 2, 3, 2.0),
+            f"2 of 3 successive points beyond 2 sigma, same side - {_WE}, rule 2",
+        ),
+        Rule(
+            "we3",
+            ZoneCount("we3", 4, 5, 1.0),
+            f"4 of 5 successive points beyond 1 sigma, same side - {_WE}, rule 3",
+        ),
+        Rule(
+            "we4",
+            SameSideRun("we4", 8),
+            f"8 successive points on one side of the centre line - {_WE}, rule 4",
+        ),
+        Rule(
+            "nelson1", BeyondLimits("nelson1", 3.0), f"One point beyond zone A (3 sigma) - {_NELSON}, test 1"
+        ),
+        Rule(
+            "nelson2",
+            SameSideRun("nelson2", 9),
+            f"Nine points in a row on one side of the centre line - {_NELSON}, test 2",
+        ),
+        Rule(
+            "nelson3",
+            Trend("nelson3", 6),
+            f"Six points in a row steadily increasing or decreasing - {_NELSON}, test 3",
+        ),
+        Rule(
+            "nelson4",
+            Alternation("nelson4", 14),
+            f"Fourteen points in a row alternating up and down - {_NELSON}, test 4",
+        ),
+        Rule(
+            "nelson5",
+            ZoneCount("nelson5", 2, 3, 2.0),
+            f"Two of three points in a row in zone A or beyond, same side - {_NELSON}, test 5",
+        ),
+        Rule(
+            "nelson6",
+            ZoneCount("nelson6", 4, 5, 1.0),
+            f"Four of five points in a row in zone B or beyond, same side - {_NELSON}, test 6",
+        ),
+        Rule(
+            "nelson7",
+            InnerRun("nelson7", 15, 1.0),
+            f"Fifteen points in a row in zone C, either side - {_NELSON}, test 7",
+        ),
+        Rule(
+            "nelson8",
+            OuterRun("nelson8", 8, 1.0),
+            f"Eight points in a row with none in zone C, either side - {_NELSON}, test 8",
+        ),
     )
 }
 
@@ -191,6 +233,7 @@ def rule_masks(lay: Layout, rules: Sequence[str | RuleParams]) -> list[tuple[str
             d[1:] = lay.value[1:] - lay.value[:-1]
             d[start] = 0.0
             return d
+
         return cached("diff", make)
 
     def one(r: RuleParams) -> np.ndarray:
@@ -199,7 +242,8 @@ def rule_masks(lay: Layout, rules: Sequence[str | RuleParams]) -> list[tuple[str
         if isinstance(r, ZoneCount):
             up, dn = above(r.k), below(r.k)
             return (up & (count(("gt", r.k), lambda: up, r.window) >= r.m)) | (
-                dn & (count(("lt", r.k), lambda: dn, r.window) >= r.m))
+                dn & (count(("lt", r.k), lambda: dn, r.window) >= r.m)
+            )
         if isinstance(r, SameSideRun):
             return window_all(above(0.0), pos, r.length) | window_all(below(0.0), pos, r.length)
         if isinstance(r, Trend):
@@ -217,7 +261,9 @@ def rule_masks(lay: Layout, rules: Sequence[str | RuleParams]) -> list[tuple[str
         if isinstance(r, OuterRun):
             m = window_all(absz() > r.k, pos, r.length)
             if r.require_both_sides:
-                m &= (window_count(above(r.k), pos, r.length) > 0) & (window_count(below(r.k), pos, r.length) > 0)
+                m &= (window_count(above(r.k), pos, r.length) > 0) & (
+                    window_count(below(r.k), pos, r.length) > 0
+                )
             return m
         raise TypeError(f"not a rule: {r!r}")  # pragma: no cover - RuleParams is closed
 

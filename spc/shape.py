@@ -47,7 +47,10 @@ def compare_step_and_ramp(
     keys = list(by)
     if not keys:  # one series: give it a constant key so the group-wise code below needs no branch
         out = compare_step_and_ramp(
-            frame.with_columns(pl.lit(0).alias("_one")), by=["_one"], order=order, value=value,
+            frame.with_columns(pl.lit(0).alias("_one")),
+            by=["_one"],
+            order=order,
+            value=value,
             min_segment=min_segment,
         )
         return out.drop("_one")
@@ -114,6 +117,15 @@ def compare_step_and_ramp(
         .otherwise(pl.lit("ramp"))
     )
     return out.with_columns(shape.alias("shape")).select(
-        *keys, "n", "slope", "rss_ramp", "step_before", "step_after", "step_size", "rss_step", "bic_ramp",
-        "bic_step", "shape",
+        *keys,
+        "n",
+        "slope",
+        "rss_ramp",
+        "step_before",
+        "step_after",
+        "step_size",
+        "rss_step",
+        "bic_ramp",
+        "bic_step",
+        "shape",
     )

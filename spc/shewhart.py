@@ -38,23 +38,38 @@ def individuals_limits(
     for _ in range(max_iter if exclude_ooc else 1):
         kept = df.filter("_keep")
         mr = (pl.col(VALUE) - pl.col(VALUE).shift(1)).abs().over(SERIES)
-        lim = kept.with_columns(mr.alias("_mr")).group_by(SERIES, maintain_order=True).agg(
-            pl.col(VALUE).mean().alias(CENTER), pl.col("_mr").mean().alias("mr_bar"), pl.len().alias("n_used"))
+        lim = (
+            kept.with_columns(mr.alias("_mr"))
+            .group_by(SERIES, maintain_order=True)
+            .agg(
+                pl.col(VALUE).mean().alias(CENTER),
+                pl.col("_mr").mean().alias("mr_bar"),
+                pl.len().alias("n_used"),
+            )
+        )
         lim = lim.with_columns((pl.col("mr_bar") / d2_2).alias(SIGMA))
         flagged = df.join(lim, on=SERIES, how="left").with_columns(
-            ((pl.col(VALUE) - pl.col(CENTER)).abs() <= k * pl.col(SIGMA)).alias("_in"))
+            ((pl.col(VALUE) - pl.col(CENTER)).abs() <= k * pl.col(SIGMA)).alias("_in")
+        )
         new_keep = flagged["_keep"] & flagged["_in"].fill_null(True)
         if not exclude_ooc or new_keep.equals(df["_keep"]):
             break
         df = df.with_columns(new_keep.alias("_keep"))
     excluded = df.group_by(SERIES, maintain_order=True).agg((~pl.col("_keep")).sum().alias("n_excluded"))
-    return lim.join(excluded, on=SERIES, how="left").with_columns(
-        (pl.col(CENTER) + k * pl.col(SIGMA)).alias("ucl"), (pl.col(CENTER) - k * pl.col(SIGMA)).alias("lcl"),
-        (d4_2 * pl.col("mr_bar")).alias("mr_ucl"),
-    ).select(SERIES, CENTER, SIGMA, "ucl", "lcl", "mr_bar", "mr_ucl", "n_used", "n_excluded")
+    return (
+        lim.join(excluded, on=SERIES, how="left")
+        .with_columns(
+            (pl.col(CENTER) + k * pl.col(SIGMA)).alias("ucl"),
+            (pl.col(CENTER) - k * pl.col(SIGMA)).alias("lcl"),
+            (d4_2 * pl.col("mr_bar")).alias("mr_ucl"),
+        )
+        .select(SERIES, CENTER, SIGMA, "ucl", "lcl", "mr_bar", "mr_ucl", "n_used", "n_excluded")
+    )
 
 
-def _subgroup_limits(sub: pl.DataFrame, kind: str, k: float, exclude_ooc: bool, max_iter: int) -> pl.DataFrame:
+def _subgroup_limits(
+    sub: pl.DataFrame, kind: str, k: float, exclude_ooc: bool, max_iter: int
+) -> pl.DataFrame:
     stat = "range" if kind == "r" else "sd"
     check_columns(sub, [SERIES, "mean", stat, N])
     ns = sorted(set(sub[N].to_list()))
@@ -64,30 +79,45 @@ def _subgroup_limits(sub: pl.DataFrame, kind: str, k: float, exclude_ooc: bool, 
     for _ in range(max_iter if exclude_ooc else 1):
         kept = df.filter(pl.col("_keep") & (pl.col(N) >= 2))
         if kind == "r":
-            kept = kept.with_columns((pl.col("range") / pl.col(N).replace_strict(d2_map, return_dtype=pl.Float64))
-                                     .alias("_s"))
+            kept = kept.with_columns(
+                (pl.col("range") / pl.col(N).replace_strict(d2_map, return_dtype=pl.Float64)).alias("_s")
+            )
             lim = kept.group_by(SERIES, maintain_order=True).agg(
-                (pl.col("mean") * pl.col(N)).sum().alias("_sum"), pl.col(N).sum().alias("_n"),
-                pl.col("_s").mean().alias("sigma_within"), pl.len().alias("n_used"))
+                (pl.col("mean") * pl.col(N)).sum().alias("_sum"),
+                pl.col(N).sum().alias("_n"),
+                pl.col("_s").mean().alias("sigma_within"),
+                pl.len().alias("n_used"),
+            )
         else:
             lim = kept.group_by(SERIES, maintain_order=True).agg(
-                (pl.col("mean") * pl.col(N)).sum().alias("_sum"), pl.col(N).sum().alias("_n"),
-                ((pl.col(N) - 1) * pl.col("sd") ** 2).sum().alias("_ss"), (pl.col(N) - 1).sum().alias("_df"),
-                pl.len().alias("n_used"))
+                (pl.col("mean") * pl.col(N)).sum().alias("_sum"),
+                pl.col(N).sum().alias("_n"),
+                ((pl.col(N) - 1) * pl.col("sd") ** 2).sum().alias("_ss"),
+                (pl.col(N) - 1).sum().alias("_df"),
+                pl.len().alias("n_used"),
+            )
             dfs = lim["_df"].to_list()
             for d in dfs:
                 c4_cache.setdefault(d, c4(d + 1))
             lim = lim.with_columns(
-                ((pl.col("_ss") / pl.col("_df")).sqrt() / pl.Series([c4_cache[d] for d in dfs])).alias("sigma_within"))
+                ((pl.col("_ss") / pl.col("_df")).sqrt() / pl.Series([c4_cache[d] for d in dfs])).alias(
+                    "sigma_within"
+                )
+            )
         lim = lim.with_columns((pl.col("_sum") / pl.col("_n")).alias(CENTER))
         chk = df.join(lim.select(SERIES, CENTER, "sigma_within"), on=SERIES, how="left").with_columns(
-            ((pl.col("mean") - pl.col(CENTER)).abs() <= k * pl.col("sigma_within") / pl.col(N).sqrt()).alias("_in"))
+            ((pl.col("mean") - pl.col(CENTER)).abs() <= k * pl.col("sigma_within") / pl.col(N).sqrt()).alias(
+                "_in"
+            )
+        )
         new_keep = chk["_keep"] & chk["_in"].fill_null(True)
         if not exclude_ooc or new_keep.equals(df["_keep"]):
             break
         df = df.with_columns(new_keep.alias("_keep"))
     excluded = df.group_by(SERIES, maintain_order=True).agg((~pl.col("_keep")).sum().alias("n_excluded"))
-    return lim.join(excluded, on=SERIES, how="left").select(SERIES, CENTER, "sigma_within", "n_used", "n_excluded")
+    return lim.join(excluded, on=SERIES, how="left").select(
+        SERIES, CENTER, "sigma_within", "n_used", "n_excluded"
+    )
 
 
 def xbar_r_limits(subgroups: pl.DataFrame, *, k: float = 3.0, exclude_ooc: bool = False, max_iter: int = 10):
@@ -103,7 +133,8 @@ def xbar_s_limits(subgroups: pl.DataFrame, *, k: float = 3.0, exclude_ooc: bool 
 def xbar_points(subgroups: pl.DataFrame, limits: pl.DataFrame) -> pl.DataFrame:
     """Points frame of subgroup means: value = mean, sigma = sigma_within / sqrt(n) per row."""
     return subgroups.join(limits.select(SERIES, CENTER, "sigma_within"), on=SERIES, how="left").with_columns(
-        pl.col("mean").alias(VALUE), (pl.col("sigma_within") / pl.col(N).cast(pl.Float64).sqrt()).alias(SIGMA))
+        pl.col("mean").alias(VALUE), (pl.col("sigma_within") / pl.col(N).cast(pl.Float64).sqrt()).alias(SIGMA)
+    )
 
 
 def range_chart_limits(sigma_within: float, n: int, k: float = 3.0) -> tuple[float, float, float]:

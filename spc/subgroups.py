@@ -21,6 +21,8 @@ def summarize_subgroups(frame: pl.DataFrame, by: Sequence[str], value: str = "va
     """
     v = pl.col(value).cast(pl.Float64)
     return frame.group_by(list(by), maintain_order=True).agg(
-        v.mean().alias("mean"), v.std(ddof=1).alias("sd"), (v.max() - v.min()).alias("range"),
+        v.mean().alias("mean"),
+        v.std(ddof=1).alias("sd"),
+        (v.max() - v.min()).alias("range"),
         pl.len().cast(pl.Int64).alias("n"),
     )

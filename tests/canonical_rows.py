@@ -15,8 +15,16 @@ from demo_fab.config import DemoConfig
 from demo_fab.generate import DemoData, simulate
 from warehouse import evaluate, plan, schema, store
 
-FACT_TABLES = ("measurements", "inspections", "defect_counts", "defects", "process_history", "tool_events",
-               "spec_limits", "reference_values")
+FACT_TABLES = (
+    "measurements",
+    "inspections",
+    "defect_counts",
+    "defects",
+    "process_history",
+    "tool_events",
+    "spec_limits",
+    "reference_values",
+)
 
 
 def insert_frame(con, table: schema.Table, frame: pl.DataFrame, *, file_id: int) -> None:
@@ -39,7 +47,9 @@ def insert_frame(con, table: schema.Table, frame: pl.DataFrame, *, file_id: int)
         con.unregister("_rows")
 
 
-def build_simulated_warehouse(path: Path, *, plan_text: str, plan_name: str, days: int, seed: int) -> DemoData:
+def build_simulated_warehouse(
+    path: Path, *, plan_text: str, plan_name: str, days: int, seed: int
+) -> DemoData:
     """Simulate the demo fab, store its frames in a new warehouse at ``path``, load the plan, evaluate."""
     data = simulate(DemoConfig(days=days, seed=seed))
     with store.open_warehouse(path, create=True) as con:

@@ -61,14 +61,33 @@ def test_ingest_adapters_import_only_the_schema():
                     bad.append(f"{path.relative_to(ROOT)} imports {name}")
             if isinstance(node, ast.Import):
                 for a in node.names:
-                    if a.name.startswith("warehouse") and a.name not in ("warehouse.schema", "warehouse.errors"):
+                    if a.name.startswith("warehouse") and a.name not in (
+                        "warehouse.schema",
+                        "warehouse.errors",
+                    ):
                         bad.append(f"{path.relative_to(ROOT)} imports {a.name}")
     assert not bad, "\n".join(bad)
 
 
 def test_spc_imports_no_io():
-    forbidden = {"warehouse", "ingest", "dashboard", "demo_fab", "streamlit", "duckdb", "os", "pathlib",
-                 "io", "socket", "subprocess", "shutil", "tempfile", "glob", "requests", "time"}
+    forbidden = {
+        "warehouse",
+        "ingest",
+        "dashboard",
+        "demo_fab",
+        "streamlit",
+        "duckdb",
+        "os",
+        "pathlib",
+        "io",
+        "socket",
+        "subprocess",
+        "shutil",
+        "tempfile",
+        "glob",
+        "requests",
+        "time",
+    }
     bad = []
     for path in _modules("spc"):
         text = path.read_text(encoding="utf-8")
@@ -76,8 +95,10 @@ def test_spc_imports_no_io():
             bad.append(f"{path.relative_to(ROOT)} imports {root}")
         tree = ast.parse(text)
         for node in ast.walk(tree):
-            if isinstance(node, ast.Attribute) and node.attr in ("now", "utcnow", "today") and isinstance(
-                node.value, (ast.Name, ast.Attribute)
+            if (
+                isinstance(node, ast.Attribute)
+                and node.attr in ("now", "utcnow", "today")
+                and isinstance(node.value, (ast.Name, ast.Attribute))
             ):
                 bad.append(f"{path.relative_to(ROOT)}:{node.lineno} reads the clock")
             if isinstance(node, ast.Call) and isinstance(node.func, ast.Name) and node.func.id == "open":
@@ -95,7 +116,9 @@ def test_only_warehouse_holds_a_database_connection():
 
 
 def test_nothing_imports_the_command_line_module():
-    bad = [str(p.relative_to(ROOT)) for pkg in PACKAGES for p in _modules(pkg) if "lotline" in _imported_roots(p)]
+    bad = [
+        str(p.relative_to(ROOT)) for pkg in PACKAGES for p in _modules(pkg) if "lotline" in _imported_roots(p)
+    ]
     assert not bad, bad
 
 

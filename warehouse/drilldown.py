@@ -302,7 +302,9 @@ ORDER BY w.measured_at, w.lot_id, w.wafer_id, w.metrology_tool
     return _frame(con, sql, [layer, parameter, product, stage, stage, sample_kind, start, end, step])
 
 
-def read_wafer_sites(con: Con, *, wafers: pl.DataFrame, layer: str, parameter: str, sample_kind: str) -> pl.DataFrame:
+def read_wafer_sites(
+    con: Con, *, wafers: pl.DataFrame, layer: str, parameter: str, sample_kind: str
+) -> pl.DataFrame:
     """Site values of the given wafers at one layer and parameter (repeats, features and tools averaged).
 
     ``wafers``: lot_id, wafer_id.
@@ -336,7 +338,9 @@ ORDER BY tool, target, measured_at
     return _frame(con, sql, [parameter, start, end])
 
 
-def read_excursion_defects(con: Con, *, wafers: pl.DataFrame, layer: str, start: datetime, end: datetime) -> pl.DataFrame:
+def read_excursion_defects(
+    con: Con, *, wafers: pl.DataFrame, layer: str, start: datetime, end: datetime
+) -> pl.DataFrame:
     """Defect coordinates of the given wafers' inspections at one layer in [start, end].
 
     ``wafers``: lot_id, wafer_id.
@@ -372,7 +376,9 @@ def _connection(db: Any) -> Iterator[Con]:
         yield con
 
 
-def explain_excursion(db: Any, excursion_id: int, *, settings: DrilldownSettings | None = None) -> Explanation:
+def explain_excursion(
+    db: Any, excursion_id: int, *, settings: DrilldownSettings | None = None
+) -> Explanation:
     """Explain one excursion: commonality, wafer signatures, defect clusters and process-or-metrology evidence.
 
     Args:
@@ -434,8 +440,13 @@ def _explain(con: Con, excursion_id: int, s: DrilldownSettings, db: Any) -> Expl
     }  # fmt: skip
     periods = _periods(con, x, s)
     rework = REWORK_CAUTIONS.get(entry.stage if entry else "", REWORK_CAUTION)
-    ex = Explanation(excursion=header, affected_lots=affected, reference_lots=[], periods=periods,
-                     cautions=(*CAUTIONS, rework))
+    ex = Explanation(
+        excursion=header,
+        affected_lots=affected,
+        reference_lots=[],
+        periods=periods,
+        cautions=(*CAUTIONS, rework),
+    )
     if entry is None:
         ex.notes.append(f"chart {x['chart']!r} is not in the plan in force: nothing to compare against.")
         return ex
@@ -443,7 +454,9 @@ def _explain(con: Con, excursion_id: int, s: DrilldownSettings, db: Any) -> Expl
     _commonality(con, ex, entry, x, product)
     if entry.is_defect:
         _defects(con, ex, entry, x, standing)
-        ex.notes.append("Process or metrology: not asked for defect-density charts (an inspection, not a CD-SEM).")
+        ex.notes.append(
+            "Process or metrology: not asked for defect-density charts (an inspection, not a CD-SEM)."
+        )
         return ex
     _signatures(con, ex, entry, x, standing, product, s)
     _attribution(con, ex, entry, x, standing, split, product, s)
@@ -525,8 +538,15 @@ def _affected_wafers(con: Con, ex: Explanation, x: dict, standing: pl.DataFrame,
     return w.sort("lot_id", "wafer_id")
 
 
-def _signatures(con: Con, ex: Explanation, entry: PlanEntry, x: dict, standing: pl.DataFrame, product: str,
-                s: DrilldownSettings) -> None:
+def _signatures(
+    con: Con,
+    ex: Explanation,
+    entry: PlanEntry,
+    x: dict,
+    standing: pl.DataFrame,
+    product: str,
+    s: DrilldownSettings,
+) -> None:
     wafers = _affected_wafers(con, ex, x, standing, entry, product)
     p = ex.periods
     base = read_wafer_means(
@@ -599,7 +619,9 @@ def _tool_shift(rows: pl.DataFrame, tool: str, p: dict) -> tuple[float, float, i
     """Window mean minus baseline mean of the tool's lot means (lots are the units), its SE, window lots."""
     t = rows.filter(pl.col("metrology_tool") == tool)
     win = t.filter((pl.col("measured_at") >= p["window_from"]) & (pl.col("measured_at") <= p["window_to"]))
-    base = t.filter((pl.col("measured_at") >= p["baseline_from"]) & (pl.col("measured_at") < p["baseline_to"]))
+    base = t.filter(
+        (pl.col("measured_at") >= p["baseline_from"]) & (pl.col("measured_at") < p["baseline_to"])
+    )
     lw = win.group_by("lot_id").agg(pl.col("value").mean())["value"]
     lb = base.group_by("lot_id").agg(pl.col("value").mean())["value"]
     if lw.len() < 2 or lb.len() < 2:
@@ -628,11 +650,16 @@ def _attribution(con: Con, ex: Explanation, entry: PlanEntry, x: dict, standing:
         if hit.height == 0:
             ex.notes.append("Process or metrology: the signalled wafers' measurements were not found.")
             return
-        tool = hit.group_by("metrology_tool").len().sort(["len", "metrology_tool"], descending=[True, False])[
-            "metrology_tool"][0]
+        tool = (
+            hit.group_by("metrology_tool")
+            .len()
+            .sort(["len", "metrology_tool"], descending=[True, False])["metrology_tool"][0]
+        )
     own = _tool_shift(pop, tool, p)
     if own is None:
-        ex.notes.append(f"Process or metrology: too few lots on {tool} in the window or the baseline to size the shift.")
+        ex.notes.append(
+            f"Process or metrology: too few lots on {tool} in the window or the baseline to size the shift."
+        )
         return
     cross = []
     for other in sorted(set(pop["metrology_tool"].to_list()) - {tool}):
@@ -652,7 +679,9 @@ def _monitor_evidence(con: Con, ex: Explanation, tool: str, parameter: str,
     p = ex.periods
     raw = read_monitor_readings(con, parameter=parameter, start=p["baseline_from"], end=p["window_to"])
     if raw.height == 0 or tool not in set(raw["tool"].to_list()):
-        ex.notes.append(f"No monitor-wafer readings of {parameter} on {tool} between the baseline and the window.")
+        ex.notes.append(
+            f"No monitor-wafer readings of {parameter} on {tool} between the baseline and the window."
+        )
         return None, None
     raw = raw.with_columns(pl.col("measured_at").dt.date().alias("day"))
     in_base = (pl.col("measured_at") >= p["baseline_from"]) & (pl.col("measured_at") < p["baseline_to"])
@@ -668,7 +697,9 @@ def _monitor_evidence(con: Con, ex: Explanation, tool: str, parameter: str,
     mine = health.filter((pl.col("tool") == tool) & pl.col("day").is_in(sorted(win_days)))
     z = (pl.col("mean_nm") - pl.col("baseline_mean_nm")).abs() / pl.col("sigma_day_nm")
     zs = mine.select(z.alias("z"))["z"].drop_nulls().drop_nans()
-    shifts = mine.select((pl.col("mean_nm") - pl.col("baseline_mean_nm")).alias("d"))["d"].drop_nulls().drop_nans()
+    shifts = (
+        mine.select((pl.col("mean_nm") - pl.col("baseline_mean_nm")).alias("d"))["d"].drop_nulls().drop_nans()
+    )
     monitor = MonitorEvidence(
         n_points=mine.height,
         max_abs_z=float(zs.max()) if zs.len() else None,
@@ -689,5 +720,7 @@ def _monitor_evidence(con: Con, ex: Explanation, tool: str, parameter: str,
                 ci_high_nm=float(now["offset_hi"][0]), baseline_offset_nm=float(then["offset_nm"][0]),
             )  # fmt: skip
     else:
-        ex.notes.append(f"Fewer than {s.min_fleet_days} monitor days of {tool} in the window: no fleet offset.")
+        ex.notes.append(
+            f"Fewer than {s.min_fleet_days} monitor days of {tool} in the window: no fleet offset."
+        )
     return monitor, fleet

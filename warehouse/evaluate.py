@@ -47,12 +47,26 @@ EXCURSION_GAP = 2
 WITHDRAWN_SUPERSEDED = "point's data superseded or moved (corrected re-export or new process history)"
 WITHDRAWN_CHANGED = "point's value changed (corrected re-export)"
 WITHDRAWN_CHART_REMOVED = "chart removed from the monitoring plan"
-WITHDRAWN_NOT_FOUND = "not found on re-evaluation (limits re-frozen, or earlier points changed the chart statistic)"
+WITHDRAWN_NOT_FOUND = (
+    "not found on re-evaluation (limits re-frozen, or earlier points changed the chart statistic)"
+)
 CHART_POINTS_RUN = "chart_points_run"
 """meta key: the evaluation run whose points ``chart_points`` holds. A warehouse whose last run predates the
 table (migration 4) has none, and its next run is a full one, which fills the table."""
-CHART_POINT_COLUMNS = ("seq", "point_key", "lot_id", "wafer_id", "point_at", "value", "n", "center", "sigma", "lcl",
-                       "ucl", "limit_version")
+CHART_POINT_COLUMNS = (
+    "seq",
+    "point_key",
+    "lot_id",
+    "wafer_id",
+    "point_at",
+    "value",
+    "n",
+    "center",
+    "sigma",
+    "lcl",
+    "ucl",
+    "limit_version",
+)
 """Columns of :func:`series_points` (queries.series_points)."""
 
 
@@ -91,7 +105,9 @@ def _user() -> str:
         return "unknown"
 
 
-def evaluate_warehouse(path=None, *, full: bool = False, user: str | None = None, wait_s: float = store.DEFAULT_WAIT_S) -> RunSummary:
+def evaluate_warehouse(
+    path=None, *, full: bool = False, user: str | None = None, wait_s: float = store.DEFAULT_WAIT_S
+) -> RunSummary:
     """Evaluate every series of the plan in force; return what was done.
 
     Example:
@@ -130,14 +146,26 @@ def evaluate_connection(con, *, full: bool = False, user: str = "unknown") -> Ru
     _flush(ctx)
     from warehouse import excursions
 
-    s.excursions_opened = excursions.group_signals(con, series_ids=sorted(ctx.touched), now=started,
-                                                   any_withdrawn=s.signals_withdrawn > 0)
+    s.excursions_opened = excursions.group_signals(
+        con, series_ids=sorted(ctx.touched), now=started, any_withdrawn=s.signals_withdrawn > 0
+    )
     s.series = len(ctx.touched)
     run_id = con.execute("SELECT nextval('run_id_seq')").fetchall()[0][0]
     con.execute(
         "INSERT INTO evaluation_runs VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
-        [run_id, started, _now(), s.mode, version, wm_new, s.series, s.points, s.signals_new, s.signals_withdrawn,
-         user],
+        [
+            run_id,
+            started,
+            _now(),
+            s.mode,
+            version,
+            wm_new,
+            s.series,
+            s.points,
+            s.signals_new,
+            s.signals_withdrawn,
+            user,
+        ],
     )
     con.execute("DELETE FROM meta WHERE key = ?", [CHART_POINTS_RUN])
     con.execute("INSERT INTO meta VALUES (?, ?)", [CHART_POINTS_RUN, str(run_id)])
@@ -159,7 +187,9 @@ class _Context:
         self.pending_points: list[pl.DataFrame] = []  # chart_points rows, written by _flush
         self.replaced_points: set[int] = set()  # series whose stored points _flush deletes first
         self.limits = lim_mod.current_limits(con)
-        rows = con.execute("SELECT series_id, chart, layer, parameter, split_json FROM chart_series").fetchall()
+        rows = con.execute(
+            "SELECT series_id, chart, layer, parameter, split_json FROM chart_series"
+        ).fetchall()
         self.series = {(r[1], r[2], r[3], r[4]): r[0] for r in rows}
         st = con.sql("SELECT * FROM series_state").pl()
         self.state = {r["series_id"]: r for r in st.to_dicts()}
@@ -175,7 +205,9 @@ def _withdraw_removed_charts(ctx: _Context, names: list[str]) -> None:
     try:
         n = ctx.con.execute(
             "UPDATE signals SET withdrawn_at = ?, withdrawn_reason = ? WHERE withdrawn_at IS NULL "
-            "AND series_id IN (SELECT series_id FROM gone)", [ctx.now, WITHDRAWN_CHART_REMOVED]).fetchall()
+            "AND series_id IN (SELECT series_id FROM gone)",
+            [ctx.now, WITHDRAWN_CHART_REMOVED],
+        ).fetchall()
     finally:
         ctx.con.unregister("gone")
     withdrawn = int(n[0][0]) if n else 0
@@ -198,16 +230,30 @@ def _attach_series(ctx: _Context, e: PlanEntry, pts: pl.DataFrame, *, create: bo
     wanted = [(e.name, r["layer"], r["parameter"], pts_mod.split_json(e, r)) for r in rows]
     missing = [i for i, k in enumerate(wanted) if k not in ctx.series]
     if missing and create:
-        new_ids = [r[0] for r in ctx.con.execute(
-            "SELECT nextval('series_id_seq') FROM range(?) ORDER BY range", [len(missing)]).fetchall()]
+        new_ids = [
+            r[0]
+            for r in ctx.con.execute(
+                "SELECT nextval('series_id_seq') FROM range(?) ORDER BY range", [len(missing)]
+            ).fetchall()
+        ]
         recs = []
         for i, sid in zip(missing, new_ids, strict=True):
             r, k = rows[i], wanted[i]
             ctx.series[k] = sid
-            recs.append({"series_id": sid, "chart": e.name, "layer": r["layer"], "parameter": r["parameter"],
-                         "split_json": k[3], "process_tool": r.get("process_tool"), "chamber": r.get("chamber"),
-                         "metrology_tool": r.get("metrology_tool") if "metrology_tool" in e.split else None,
-                         "product": r.get("product") if "product" in e.split else None, "created_at": ctx.now})
+            recs.append(
+                {
+                    "series_id": sid,
+                    "chart": e.name,
+                    "layer": r["layer"],
+                    "parameter": r["parameter"],
+                    "split_json": k[3],
+                    "process_tool": r.get("process_tool"),
+                    "chamber": r.get("chamber"),
+                    "metrology_tool": r.get("metrology_tool") if "metrology_tool" in e.split else None,
+                    "product": r.get("product") if "product" in e.split else None,
+                    "created_at": ctx.now,
+                }
+            )
         frame = pl.DataFrame(recs, schema=schema.polars_schema(schema.CHART_SERIES))
         ctx.con.register("new_series", frame)
         ctx.con.execute("INSERT INTO chart_series BY NAME SELECT * FROM new_series")
@@ -220,8 +266,13 @@ def _attach_series(ctx: _Context, e: PlanEntry, pts: pl.DataFrame, *, create: bo
 def _evaluate_entry(ctx: _Context, e: PlanEntry, *, full: bool, watermark: int) -> None:
     con = ctx.con
     # series whose limits were re-frozen since their last evaluation are recomputed even without new data
-    refrozen = {sid for (chart, *_), sid in ctx.series.items() if chart == e.name and sid in ctx.limits
-                and (ctx.state.get(sid) or {}).get("limit_version") != ctx.limits[sid]["version"]}
+    refrozen = {
+        sid
+        for (chart, *_), sid in ctx.series.items()
+        if chart == e.name
+        and sid in ctx.limits
+        and (ctx.state.get(sid) or {}).get("limit_version") != ctx.limits[sid]["version"]
+    }
     if not full:
         lots, spec_changed = pts_mod.changed_lots(e, ctx.changes)
         if spec_changed:
@@ -237,9 +288,13 @@ def _evaluate_entry(ctx: _Context, e: PlanEntry, *, full: bool, watermark: int) 
     first = lots.filter(pl.col("first_file_id").is_not_null())
     min_fid = int(first["first_file_id"].min()) if first.height else watermark + 1
     lot_ids = lots.select("lot_id")
-    new = _attach_series(ctx, e, pts_mod.read_points(con, e, dirty_lots=lot_ids, min_file_id=min_fid), create=True)
+    new = _attach_series(
+        ctx, e, pts_mod.read_points(con, e, dirty_lots=lot_ids, min_file_id=min_fid), create=True
+    )
     if first.filter(pl.col("first_file_id") <= watermark).height:
-        old = pts_mod.read_points(con, e, scope="as_of", watermark=watermark, dirty_lots=lot_ids, min_file_id=min_fid)
+        old = pts_mod.read_points(
+            con, e, scope="as_of", watermark=watermark, dirty_lots=lot_ids, min_file_id=min_fid
+        )
     else:  # every changed lot is new since the last run: nothing of it was evaluated before
         old = new.clear().drop("series_id")
     old = _attach_series(ctx, e, old, create=False).filter(pl.col("series_id").is_not_null())
@@ -251,14 +306,21 @@ def _evaluate_entry(ctx: _Context, e: PlanEntry, *, full: bool, watermark: int) 
         added.join(old.select(key), on=key, how="semi")["series_id"].to_list()
     )
     append, recompute = [], set(must) | refrozen
-    firsts = added.group_by("series_id").agg(pl.col("point_at").min().alias("t"),
-                                             pl.col("point_key").sort_by("point_at", "point_key").first().alias("k"))
+    firsts = added.group_by("series_id").agg(
+        pl.col("point_at").min().alias("t"),
+        pl.col("point_key").sort_by("point_at", "point_key").first().alias("k"),
+    )
     for sid, t, k in firsts.iter_rows():
         if sid in must:
             continue
         st, lim = ctx.state.get(sid), ctx.limits.get(sid)
-        if (st is None or lim is None or st["limit_version"] != lim["version"] or st["last_point_at"] is None
-                or (t, k) <= (st["last_point_at"], st["last_point_key"])):
+        if (
+            st is None
+            or lim is None
+            or st["limit_version"] != lim["version"]
+            or st["last_point_at"] is None
+            or (t, k) <= (st["last_point_at"], st["last_point_key"])
+        ):
             recompute.add(sid)
         else:
             append.append(sid)
@@ -274,15 +336,38 @@ def _evaluate_entry(ctx: _Context, e: PlanEntry, *, full: bool, watermark: int) 
 def _with_limits(ctx: _Context, e: PlanEntry, pts: pl.DataFrame) -> pl.DataFrame:
     """Add center, sigma and limit_version from the version in force (nulls where none is frozen)."""
     sids = pts["series_id"].unique().to_list()
-    rows = [(sid, ctx.limits[sid]["version"], ctx.limits[sid]["center"], ctx.limits[sid]["sigma"],
-             ctx.limits[sid]["n_ref"], ctx.limits[sid]["overdispersion"]) for sid in sids if sid in ctx.limits]
-    lim = pl.DataFrame(rows, schema={"series_id": pl.Int64, "limit_version": pl.Int64, "center": pl.Float64,
-                                     "_sigma": pl.Float64, "_n_ref": pl.Float64, "_sz": pl.Float64}, orient="row")
+    rows = [
+        (
+            sid,
+            ctx.limits[sid]["version"],
+            ctx.limits[sid]["center"],
+            ctx.limits[sid]["sigma"],
+            ctx.limits[sid]["n_ref"],
+            ctx.limits[sid]["overdispersion"],
+        )
+        for sid in sids
+        if sid in ctx.limits
+    ]
+    lim = pl.DataFrame(
+        rows,
+        schema={
+            "series_id": pl.Int64,
+            "limit_version": pl.Int64,
+            "center": pl.Float64,
+            "_sigma": pl.Float64,
+            "_n_ref": pl.Float64,
+            "_sz": pl.Float64,
+        },
+        orient="row",
+    )
     out = pts.join(lim, on="series_id", how="left", maintain_order="left")
     if e.chart in ("u", "laney_u"):
         # sigma of one point varies with its inspected area (lim_mod.point_sigma, row-wise)
-        sigma = pl.when(pl.col("_n_ref").is_not_null()).then(
-            (pl.col("center") / pl.col("area_cm2")).sqrt() * pl.col("_sz").fill_null(1.0)).otherwise(pl.col("_sigma"))
+        sigma = (
+            pl.when(pl.col("_n_ref").is_not_null())
+            .then((pl.col("center") / pl.col("area_cm2")).sqrt() * pl.col("_sz").fill_null(1.0))
+            .otherwise(pl.col("_sigma"))
+        )
     else:
         sigma = pl.col("_sigma")
     return out.with_columns(sigma.alias("sigma")).drop("_sigma", "_n_ref", "_sz")
@@ -310,8 +395,12 @@ def _freeze_missing(ctx: _Context, e: PlanEntry, pts: pl.DataFrame, series: list
         ctx.limits[sid] = {**est, "version": 1}
         ctx.s.limits_frozen += 1
     lim_mod.insert_first_versions(
-        ctx.con, frozen, user=lim_mod.AUTO_USER, now=ctx.now,
-        reason=f"automatic Phase I freeze from the plan baseline {json.dumps(e.baseline)}")
+        ctx.con,
+        frozen,
+        user=lim_mod.AUTO_USER,
+        now=ctx.now,
+        reason=f"automatic Phase I freeze from the plan baseline {json.dumps(e.baseline)}",
+    )
 
 
 def _baseline_sites(ctx: _Context, e: PlanEntry, bases: dict[int, pl.DataFrame]) -> dict[int, pl.DataFrame]:
@@ -323,8 +412,9 @@ def _baseline_sites(ctx: _Context, e: PlanEntry, bases: dict[int, pl.DataFrame])
     site_entry = replace(e, statistic="site_value", spec_check=False)
     lots = pl.concat([b.select("lot_id") for b in bases.values()]).unique()
     wanted = _series_keys(ctx, e, sorted(bases)).drop("series_id")
-    rows = _attach_series(ctx, e, pts_mod.read_points(ctx.con, site_entry, dirty_lots=lots, wanted=wanted),
-                          create=False)
+    rows = _attach_series(
+        ctx, e, pts_mod.read_points(ctx.con, site_entry, dirty_lots=lots, wanted=wanted), create=False
+    )
     parts = pl.col("point_key").str.split("|")
     if e.statistic == "wafer_mean":
         key = pl.concat_str([parts.list.get(0), parts.list.get(1), parts.list.get(5)], separator="|")
@@ -334,60 +424,107 @@ def _baseline_sites(ctx: _Context, e: PlanEntry, bases: dict[int, pl.DataFrame])
     out = {}
     for sid, b in bases.items():
         keep = b.select(pl.col("point_key").alias("_pk"))
-        out[sid] = rows.filter(pl.col("series_id") == sid).join(keep, on="_pk", how="semi").select(
-            "lot_id", "wafer_id", "value")
+        out[sid] = (
+            rows.filter(pl.col("series_id") == sid)
+            .join(keep, on="_pk", how="semi")
+            .select("lot_id", "wafer_id", "value")
+        )
     return out
 
 
 def _rules(e: PlanEntry) -> list:
     k = float(e.params.get("k", 3.0))
-    return [rule_params(r, k=k) if isinstance(rule_params(r), BeyondLimits) else rule_params(r) for r in e.rules]
+    return [
+        rule_params(r, k=k) if isinstance(rule_params(r), BeyondLimits) else rule_params(r) for r in e.rules
+    ]
 
 
 def _signals(e: PlanEntry, pts: pl.DataFrame, *, state: pl.DataFrame | None, context: pl.DataFrame | None):
     """Signals (control rules on limited points + oos on all) and the final EWMA/CUSUM state per series."""
     pass_cols = ["point_key", "lot_id", "wafer_id", "point_at", "point_value", "limit_version"]
     out = []
-    limited = pts.filter(pl.col("limit_version").is_not_null()).with_columns(pl.col("value").alias("point_value"))
+    limited = pts.filter(pl.col("limit_version").is_not_null()).with_columns(
+        pl.col("value").alias("point_value")
+    )
     ew = cu = None
     if limited.height:
         frame = limited.rename({"series_id": "series"})
         rules = _rules(e)
-        rin = frame if context is None or context.height == 0 else pl.concat([context, frame], how="diagonal_relaxed")
-        rs = evaluate_rules(rin.select(["series", "seq", "value", "center", "sigma", *pass_cols]), rules,
-                            passthrough=pass_cols)
+        rin = (
+            frame
+            if context is None or context.height == 0
+            else pl.concat([context, frame], how="diagonal_relaxed")
+        )
+        rs = evaluate_rules(
+            rin.select(["series", "seq", "value", "center", "sigma", *pass_cols]),
+            rules,
+            passthrough=pass_cols,
+        )
         if context is not None and context.height:
             rs = rs.join(frame.select("series", "seq"), on=["series", "seq"], how="semi")
         out.append(rs.with_columns(pl.lit(None, pl.Float64).alias("statistic")))
         base = frame.select(["series", "seq", "value", "center", "sigma", *pass_cols])
         if e.chart == "ewma":
-            p = EwmaParams(lam=float(e.params["lambda"]), L=float(e.params["L"]), limits=str(e.params["limits"]))
+            p = EwmaParams(
+                lam=float(e.params["lambda"]), L=float(e.params["L"]), limits=str(e.params["limits"])
+            )
             r = evaluate_ewma(base, p, state=state, passthrough=pass_cols)
-            out.append(r.signals.rename({"value": "statistic"}).rename({"point_value": "value"}).with_columns(
-                pl.col("value").alias("point_value")))
+            out.append(
+                r.signals.rename({"value": "statistic"})
+                .rename({"point_value": "value"})
+                .with_columns(pl.col("value").alias("point_value"))
+            )
             ew = r.state
         if e.chart == "cusum":
-            p = CusumParams(k=float(e.params["cusum_k"]), h=float(e.params["h"]),
-                            headstart=float(e.params["headstart"]))
+            p = CusumParams(
+                k=float(e.params["cusum_k"]), h=float(e.params["h"]), headstart=float(e.params["headstart"])
+            )
             r = evaluate_cusum(base, p, state=state, passthrough=pass_cols)
-            out.append(r.signals.rename({"value": "statistic"}).rename({"point_value": "value"}).with_columns(
-                pl.col("value").alias("point_value")))
+            out.append(
+                r.signals.rename({"value": "statistic"})
+                .rename({"point_value": "value"})
+                .with_columns(pl.col("value").alias("point_value"))
+            )
             cu = r.state
     oos = pts.filter(
         (pl.col("lsl").is_not_null() & (pl.col("vmin") < pl.col("lsl")))
         | (pl.col("usl").is_not_null() & (pl.col("vmax") > pl.col("usl")))
     )
     if oos.height:
-        out.append(oos.select(
-            pl.col("series_id").alias("series"), "seq", pl.lit("oos").alias("rule"), "value", "point_key", "lot_id",
-            "wafer_id", "point_at", pl.col("value").alias("point_value"), pl.lit(None, pl.Int64).alias("limit_version"),
-            pl.when(pl.col("lsl").is_not_null() & (pl.col("vmin") < pl.col("lsl"))).then(pl.col("vmin"))
-            .otherwise(pl.col("vmax")).alias("statistic"),
-        ))
-    cols = ["series", "seq", "rule", "value", "statistic", "point_key", "lot_id", "wafer_id", "point_at", "limit_version"]
+        out.append(
+            oos.select(
+                pl.col("series_id").alias("series"),
+                "seq",
+                pl.lit("oos").alias("rule"),
+                "value",
+                "point_key",
+                "lot_id",
+                "wafer_id",
+                "point_at",
+                pl.col("value").alias("point_value"),
+                pl.lit(None, pl.Int64).alias("limit_version"),
+                pl.when(pl.col("lsl").is_not_null() & (pl.col("vmin") < pl.col("lsl")))
+                .then(pl.col("vmin"))
+                .otherwise(pl.col("vmax"))
+                .alias("statistic"),
+            )
+        )
+    cols = [
+        "series",
+        "seq",
+        "rule",
+        "value",
+        "statistic",
+        "point_key",
+        "lot_id",
+        "wafer_id",
+        "point_at",
+        "limit_version",
+    ]
     sig = (
         pl.concat([o.select(cols) for o in out], how="vertical_relaxed")
-        if out else pl.DataFrame(schema={c: pl.Int64 for c in cols})
+        if out
+        else pl.DataFrame(schema={c: pl.Int64 for c in cols})
     )
     return sig, ew, cu
 
@@ -408,26 +545,49 @@ def _recompute(ctx: _Context, e: PlanEntry, pts: pl.DataFrame, series: list[int]
 
 
 def _append(ctx: _Context, e: PlanEntry, pts: pl.DataFrame, series: list[int]) -> None:
-    start = pl.DataFrame({"series_id": series, "n0": [ctx.state[s]["n_points"] for s in series]},
-                         schema={"series_id": pl.Int64, "n0": pl.Int64})
+    start = pl.DataFrame(
+        {"series_id": series, "n0": [ctx.state[s]["n_points"] for s in series]},
+        schema={"series_id": pl.Int64, "n0": pl.Int64},
+    )
     pts = pts.sort(["series_id", "point_at", "point_key"]).join(start, on="series_id", how="left")
-    pts = pts.with_columns((pl.int_range(pl.len()).over("series_id") + 1 + pl.col("n0")).alias("seq")).drop("n0")
+    pts = pts.with_columns((pl.int_range(pl.len()).over("series_id") + 1 + pl.col("n0")).alias("seq")).drop(
+        "n0"
+    )
     pts = _with_limits(ctx, e, pts)
     state = pl.DataFrame(
-        {"series": series,
-         "ewma_z": [ctx.state[s]["ewma"] for s in series],
-         "ewma_count": [ctx.state[s]["n_points"] for s in series],
-         "s_hi": [ctx.state[s]["cusum_hi"] for s in series],
-         "s_lo": [ctx.state[s]["cusum_lo"] for s in series]},
-        schema={"series": pl.Int64, "ewma_z": pl.Float64, "ewma_count": pl.Int64, "s_hi": pl.Float64,
-                "s_lo": pl.Float64},
+        {
+            "series": series,
+            "ewma_z": [ctx.state[s]["ewma"] for s in series],
+            "ewma_count": [ctx.state[s]["n_points"] for s in series],
+            "s_hi": [ctx.state[s]["cusum_hi"] for s in series],
+            "s_lo": [ctx.state[s]["cusum_lo"] for s in series],
+        },
+        schema={
+            "series": pl.Int64,
+            "ewma_z": pl.Float64,
+            "ewma_count": pl.Int64,
+            "s_hi": pl.Float64,
+            "s_lo": pl.Float64,
+        },
     )
     ctx_rows = []
     for s in series:
         for c in json.loads(ctx.state[s]["context_json"] or "[]"):
             ctx_rows.append({"series": s, **c})
-    context = pl.DataFrame(ctx_rows, schema={"series": pl.Int64, "seq": pl.Int64, "value": pl.Float64,
-                                             "center": pl.Float64, "sigma": pl.Float64}) if ctx_rows else None
+    context = (
+        pl.DataFrame(
+            ctx_rows,
+            schema={
+                "series": pl.Int64,
+                "seq": pl.Int64,
+                "value": pl.Float64,
+                "center": pl.Float64,
+                "sigma": pl.Float64,
+            },
+        )
+        if ctx_rows
+        else None
+    )
     sig, ew, cu = _signals(e, pts, state=state, context=context)
     _write_state(ctx, e, pts, series, ew, cu, base_state=ctx.state, context=context)
     ctx.pending_points.append(_chart_point_rows(ctx, e, pts))
@@ -444,13 +604,23 @@ def _write_state(ctx, e, pts, series, ew, cu, *, base_state, context=None) -> No
     if context is not None and context.height:
         frames.insert(0, context.select("series", "seq", "value", "center", "sigma"))
     allp = pl.concat(frames, how="vertical_relaxed")
-    tail = allp.sort("series", "seq").group_by("series", maintain_order=True).tail(need) if need else allp.clear()
+    tail = (
+        allp.sort("series", "seq").group_by("series", maintain_order=True).tail(need)
+        if need
+        else allp.clear()
+    )
     ctx_json = {}
     for sid, grp in tail.group_by("series", maintain_order=True):
         ctx_json[sid[0]] = json.dumps(grp.select("seq", "value", "center", "sigma").to_dicts())
-    last = pts.sort("series_id", "point_at", "point_key").group_by("series_id", maintain_order=True).agg(
-        pl.col("point_at").last(), pl.col("point_key").last(), pl.col("seq").max(),
-        pl.col("limit_version").last(),
+    last = (
+        pts.sort("series_id", "point_at", "point_key")
+        .group_by("series_id", maintain_order=True)
+        .agg(
+            pl.col("point_at").last(),
+            pl.col("point_key").last(),
+            pl.col("seq").max(),
+            pl.col("limit_version").last(),
+        )
     )
     lastd = {r["series_id"]: r for r in last.to_dicts()}
     ewd = {r["series"]: r for r in ew.to_dicts()} if ew is not None else {}
@@ -460,23 +630,35 @@ def _write_state(ctx, e, pts, series, ew, cu, *, base_state, context=None) -> No
         prev = (base_state or {}).get(sid) or {}
         lr = lastd.get(sid)
         lim = ctx.limits.get(sid)
-        rows.append({
-            "series_id": sid,
-            "limit_version": lim["version"] if lim else None,
-            "last_point_at": lr["point_at"] if lr else prev.get("last_point_at"),
-            "last_point_key": lr["point_key"] if lr else prev.get("last_point_key"),
-            "n_points": int(lr["seq"]) if lr else int(prev.get("n_points") or 0),
-            "ewma": ewd[sid]["ewma_z"] if sid in ewd else prev.get("ewma"),
-            "cusum_hi": cud[sid]["s_hi"] if sid in cud else prev.get("cusum_hi"),
-            "cusum_lo": cud[sid]["s_lo"] if sid in cud else prev.get("cusum_lo"),
-            "context_json": ctx_json.get(sid, prev.get("context_json") if base_state else None),
-            "evaluated_at": ctx.now,
-        })
-    frame = pl.DataFrame(rows, schema={"series_id": pl.Int64, "limit_version": pl.Int64,
-                                       "last_point_at": pl.Datetime("us"), "last_point_key": pl.String,
-                                       "n_points": pl.Int64, "ewma": pl.Float64, "cusum_hi": pl.Float64,
-                                       "cusum_lo": pl.Float64, "context_json": pl.String,
-                                       "evaluated_at": pl.Datetime("us")})
+        rows.append(
+            {
+                "series_id": sid,
+                "limit_version": lim["version"] if lim else None,
+                "last_point_at": lr["point_at"] if lr else prev.get("last_point_at"),
+                "last_point_key": lr["point_key"] if lr else prev.get("last_point_key"),
+                "n_points": int(lr["seq"]) if lr else int(prev.get("n_points") or 0),
+                "ewma": ewd[sid]["ewma_z"] if sid in ewd else prev.get("ewma"),
+                "cusum_hi": cud[sid]["s_hi"] if sid in cud else prev.get("cusum_hi"),
+                "cusum_lo": cud[sid]["s_lo"] if sid in cud else prev.get("cusum_lo"),
+                "context_json": ctx_json.get(sid, prev.get("context_json") if base_state else None),
+                "evaluated_at": ctx.now,
+            }
+        )
+    frame = pl.DataFrame(
+        rows,
+        schema={
+            "series_id": pl.Int64,
+            "limit_version": pl.Int64,
+            "last_point_at": pl.Datetime("us"),
+            "last_point_key": pl.String,
+            "n_points": pl.Int64,
+            "ewma": pl.Float64,
+            "cusum_hi": pl.Float64,
+            "cusum_lo": pl.Float64,
+            "context_json": pl.String,
+            "evaluated_at": pl.Datetime("us"),
+        },
+    )
     ctx.pending_state.append(frame)  # written once per run by _flush
     for r in frame.to_dicts():
         ctx.state[r["series_id"]] = r
@@ -487,18 +669,43 @@ def _chart_point_rows(ctx: _Context, e: PlanEntry, pts: pl.DataFrame) -> pl.Data
     (``limits.point_sigma``: on u charts sigma varies with the inspected area), vectorised over series."""
     sids = pts["series_id"].unique().to_list()
     lim = pl.DataFrame(
-        [(sid, ctx.limits[sid]["version"], ctx.limits[sid]["center"], ctx.limits[sid]["sigma"],
-          ctx.limits[sid]["k_sigma"], ctx.limits[sid]["n_ref"], ctx.limits[sid]["overdispersion"])
-         for sid in sids if sid in ctx.limits],
-        schema={"series_id": pl.Int64, "limit_version": pl.Int64, "center": pl.Float64, "_sigma": pl.Float64,
-                "_k": pl.Float64, "_n_ref": pl.Float64, "_sz": pl.Float64}, orient="row")
-    out = pts.select("series_id", "seq", "point_key", "lot_id", "wafer_id", "point_at", "value", "n", "area_cm2")
+        [
+            (
+                sid,
+                ctx.limits[sid]["version"],
+                ctx.limits[sid]["center"],
+                ctx.limits[sid]["sigma"],
+                ctx.limits[sid]["k_sigma"],
+                ctx.limits[sid]["n_ref"],
+                ctx.limits[sid]["overdispersion"],
+            )
+            for sid in sids
+            if sid in ctx.limits
+        ],
+        schema={
+            "series_id": pl.Int64,
+            "limit_version": pl.Int64,
+            "center": pl.Float64,
+            "_sigma": pl.Float64,
+            "_k": pl.Float64,
+            "_n_ref": pl.Float64,
+            "_sz": pl.Float64,
+        },
+        orient="row",
+    )
+    out = pts.select(
+        "series_id", "seq", "point_key", "lot_id", "wafer_id", "point_at", "value", "n", "area_cm2"
+    )
     out = out.join(lim, on="series_id", how="left", maintain_order="left")
     sigma = pl.col("_sigma")
     if e.chart in ("u", "laney_u"):
         sz = pl.when(pl.col("_sz").is_null() | (pl.col("_sz") == 0)).then(1.0).otherwise(pl.col("_sz"))
         area = pl.col("area_cm2").cast(pl.Float64)
-        sigma = pl.when(pl.col("_n_ref").is_not_null()).then((pl.col("center") / area).sqrt() * sz).otherwise(sigma)
+        sigma = (
+            pl.when(pl.col("_n_ref").is_not_null())
+            .then((pl.col("center") / area).sqrt() * sz)
+            .otherwise(sigma)
+        )
     out = out.with_columns(sigma.alias("sigma")).with_columns(
         (pl.col("center") - pl.col("_k") * pl.col("sigma")).alias("lcl"),
         (pl.col("center") + pl.col("_k") * pl.col("sigma")).alias("ucl"),
@@ -547,15 +754,21 @@ FROM cand c ORDER BY c.series_id, c.point_seq, c.rule""",
     ctx.pending_points, ctx.replaced_points = [], set()
 
 
-def _reconcile(ctx: _Context, e: PlanEntry, sig: pl.DataFrame, pts: pl.DataFrame, series: list[int], *,
-               recompute: bool) -> None:
+def _reconcile(
+    ctx: _Context, e: PlanEntry, sig: pl.DataFrame, pts: pl.DataFrame, series: list[int], *, recompute: bool
+) -> None:
     """Write new signals, withdraw standing ones no longer found (recompute only; appends are deferred)."""
     con = ctx.con
     cand = sig.select(
-        pl.col("series").cast(pl.Int64).alias("series_id"), pl.col("point_key").cast(pl.String),
-        pl.col("lot_id").cast(pl.String), pl.col("wafer_id").cast(pl.String),
-        pl.col("point_at").cast(pl.Datetime("us")), pl.col("seq").cast(pl.Int64).alias("point_seq"),
-        pl.col("rule").cast(pl.String), pl.col("value").cast(pl.Float64), pl.col("statistic").cast(pl.Float64),
+        pl.col("series").cast(pl.Int64).alias("series_id"),
+        pl.col("point_key").cast(pl.String),
+        pl.col("lot_id").cast(pl.String),
+        pl.col("wafer_id").cast(pl.String),
+        pl.col("point_at").cast(pl.Datetime("us")),
+        pl.col("seq").cast(pl.Int64).alias("point_seq"),
+        pl.col("rule").cast(pl.String),
+        pl.col("value").cast(pl.Float64),
+        pl.col("statistic").cast(pl.Float64),
         pl.col("limit_version").cast(pl.Int64),
     )
     if not recompute:
@@ -647,7 +860,9 @@ FROM evaluation_runs r ORDER BY r.run_id DESC LIMIT 1""",
             f"SELECT {', '.join(CHART_POINT_COLUMNS)} FROM chart_points WHERE series_id = $sid ORDER BY seq",
             params={"sid": series_id},
         ).pl()
-        version = cur.execute("SELECT max(version) FROM control_limits WHERE series_id = ?", [series_id]).fetchall()
+        version = cur.execute(
+            "SELECT max(version) FROM control_limits WHERE series_id = ?", [series_id]
+        ).fetchall()
     finally:
         cur.close()
     if pts.height and set(pts["limit_version"].unique().to_list()) != {version[0][0]}:
@@ -670,7 +885,9 @@ def series_points_from_facts(con, *, series_id: int) -> pl.DataFrame:
     e = plan.entry(chart)
     wanted = pl.DataFrame([{"layer": layer, "parameter": parameter, **json.loads(sj)}])
     wanted = wanted.select(pts_mod.series_columns(e)).cast(pl.String)
-    pts = pts_mod.read_points(con, e, wanted=wanted).with_columns(pl.lit(series_id, pl.Int64).alias("series_id"))
+    pts = pts_mod.read_points(con, e, wanted=wanted).with_columns(
+        pl.lit(series_id, pl.Int64).alias("series_id")
+    )
     pts = pts.with_columns((pl.int_range(pl.len()) + 1).cast(pl.Int64).alias("seq"))
     ctx_limits = lim_mod.current_limits(con)
     lim = ctx_limits.get(series_id)
@@ -681,10 +898,12 @@ def series_points_from_facts(con, *, series_id: int) -> pl.DataFrame:
         sigma = lim_mod.point_sigma(e, lim, pts)
         k = lim["k_sigma"]
         pts = pts.with_columns(
-            pl.lit(lim["center"]).alias("center"), pl.Series("sigma", sigma),
+            pl.lit(lim["center"]).alias("center"),
+            pl.Series("sigma", sigma),
             pl.lit(lim["version"], pl.Int64).alias("limit_version"),
         ).with_columns(
-            (pl.col("center") - k * pl.col("sigma")).alias("lcl"), (pl.col("center") + k * pl.col("sigma")).alias("ucl"),
+            (pl.col("center") - k * pl.col("sigma")).alias("lcl"),
+            (pl.col("center") + k * pl.col("sigma")).alias("ucl"),
         )
     return pts.select(cols)
 
@@ -699,8 +918,16 @@ def _series_keys(ctx: _Context, e: PlanEntry, series: list[int]) -> pl.DataFrame
     return pl.DataFrame(rows, schema={"series_id": pl.Int64, **{c: pl.String for c in cols}})
 
 
-def freeze_limits(path=None, *, chart: str, reason: str, user: str, first: int | None = None,
-                  window: tuple[datetime, datetime] | None = None, series_id: int | None = None) -> list[dict]:
+def freeze_limits(
+    path=None,
+    *,
+    chart: str,
+    reason: str,
+    user: str,
+    first: int | None = None,
+    window: tuple[datetime, datetime] | None = None,
+    series_id: int | None = None,
+) -> list[dict]:
     """Freeze a new limit version for every series of a chart (or one series) from a chosen baseline.
 
     The baseline is the chart's plan baseline unless ``first`` (first N points) or ``window`` (from, to
@@ -731,8 +958,17 @@ def freeze_limits(path=None, *, chart: str, reason: str, user: str, first: int |
                 out.append({"series_id": sid, "skipped": exc.what})
                 continue
             v = lim_mod.insert_version(con, sid, est, user=user, reason=reason)
-            out.append({"series_id": sid, "version": v, "center": est["center"], "sigma": est["sigma"],
-                        "lcl": est["lcl"], "ucl": est["ucl"], "baseline_n": est["baseline_n"]})
+            out.append(
+                {
+                    "series_id": sid,
+                    "version": v,
+                    "center": est["center"],
+                    "sigma": est["sigma"],
+                    "lcl": est["lcl"],
+                    "ucl": est["ucl"],
+                    "baseline_n": est["baseline_n"],
+                }
+            )
         store.bump_data_version(con)
     return out
 

@@ -133,7 +133,9 @@ def parse_week(text: str) -> Week:
         monday = datetime.fromisocalendar(int(m.group(1)), int(m.group(2)), 1)
     except ValueError:
         raise ConfigError(
-            "not an ISO week", found=text, expected="YYYY-Www, e.g. 2026-W48",
+            "not an ISO week",
+            found=text,
+            expected="YYYY-Www, e.g. 2026-W48",
             fix="pass --week as year, '-W' and the two-digit ISO week number (01..53)",
         ) from None
     return week_of(monday)
@@ -309,9 +311,9 @@ def _chamber_entries(con: Con) -> list[plan_mod.PlanEntry]:
     p = plan_mod.current_plan(con)
     if p is None:
         return []
-    return [e for e in p.entries if not e.is_defect and ("chamber" in e.split or "process_tool" in e.split)] + [
-        e for e in p.entries if e.is_defect and ("chamber" in e.split or "process_tool" in e.split)
-    ]
+    return [
+        e for e in p.entries if not e.is_defect and ("chamber" in e.split or "process_tool" in e.split)
+    ] + [e for e in p.entries if e.is_defect and ("chamber" in e.split or "process_tool" in e.split)]
 
 
 def chamber_chart_points(con: Con, *, start: datetime, end: datetime) -> pl.DataFrame:
@@ -320,8 +322,15 @@ def chamber_chart_points(con: Con, *, start: datetime, end: datetime) -> pl.Data
     Points come from the plan entry's own statistic (``warehouse.points``), so they are the points the
     evaluation charts. Columns: series_id, chart, layer, parameter, process_tool, chamber, points.
     """
-    cols = {"series_id": pl.Int64, "chart": pl.String, "layer": pl.String, "parameter": pl.String,
-            "process_tool": pl.String, "chamber": pl.String, "points": pl.Int64}
+    cols = {
+        "series_id": pl.Int64,
+        "chart": pl.String,
+        "layer": pl.String,
+        "parameter": pl.String,
+        "process_tool": pl.String,
+        "chamber": pl.String,
+        "points": pl.Int64,
+    }
     out = []
     series = _frame(con, "SELECT series_id, chart, layer, parameter, split_json FROM chart_series")
     for e in _chamber_entries(con):
@@ -349,15 +358,25 @@ def chamber_site_values(con: Con, *, start: datetime, end: datetime) -> pl.DataF
     selector, its step's tool and chamber) with the spec limits in force at each point.
     Columns: chart, layer, parameter, product, process_tool, chamber, value, lsl, usl.
     """
-    cols = {"chart": pl.String, "layer": pl.String, "parameter": pl.String, "product": pl.String,
-            "process_tool": pl.String, "chamber": pl.String, "value": pl.Float64, "lsl": pl.Float64,
-            "usl": pl.Float64}
+    cols = {
+        "chart": pl.String,
+        "layer": pl.String,
+        "parameter": pl.String,
+        "product": pl.String,
+        "process_tool": pl.String,
+        "chamber": pl.String,
+        "value": pl.Float64,
+        "lsl": pl.Float64,
+        "usl": pl.Float64,
+    }
     out = []
     for e in _chamber_entries(con):
         if e.is_defect:
             continue
         site = dataclasses.replace(e, statistic="site_value", spec_check=True)
-        pts = pts_mod.read_points(con, site).filter((pl.col("point_at") >= start) & (pl.col("point_at") < end))
+        pts = pts_mod.read_points(con, site).filter(
+            (pl.col("point_at") >= start) & (pl.col("point_at") < end)
+        )
         if pts.height == 0:
             continue
         for c in ("process_tool", "chamber"):
@@ -513,29 +532,46 @@ class WeeklyHealth:
 
     def frames(self) -> dict[str, pl.DataFrame]:
         """Every frame by name."""
-        return {f.name: getattr(self, f.name) for f in dataclasses.fields(self)
-                if isinstance(getattr(self, f.name), pl.DataFrame)}
+        return {
+            f.name: getattr(self, f.name)
+            for f in dataclasses.fields(self)
+            if isinstance(getattr(self, f.name), pl.DataFrame)
+        }
 
     def to_dict(self) -> dict[str, object]:
         """JSON-friendly summary: week, scorecards (rows as dicts), changes, attention list, cautions."""
         return {
-            "week": self.week.label, "start": self.week.start.isoformat(), "end": self.week.end.isoformat(),
-            "cdsem": self.cdsem.to_dicts(), "cdsem_pt": self.cdsem_pt.to_dicts(),
-            "inspection": self.inspection.to_dicts(), "process": self.process.to_dicts(),
-            "limit_changes": self.limit_changes.to_dicts(), "new_excursions": self.new_excursions.to_dicts(),
-            "closed_dispositions": self.closed_dispositions.to_dicts(), "attention": self.attention,
-            "cautions": list(self.cautions), "notes": self.notes,
+            "week": self.week.label,
+            "start": self.week.start.isoformat(),
+            "end": self.week.end.isoformat(),
+            "cdsem": self.cdsem.to_dicts(),
+            "cdsem_pt": self.cdsem_pt.to_dicts(),
+            "inspection": self.inspection.to_dicts(),
+            "process": self.process.to_dicts(),
+            "limit_changes": self.limit_changes.to_dicts(),
+            "new_excursions": self.new_excursions.to_dicts(),
+            "closed_dispositions": self.closed_dispositions.to_dicts(),
+            "attention": self.attention,
+            "cautions": list(self.cautions),
+            "notes": self.notes,
         }
 
 
-def read_weekly_health(path=None, *, week: str | Week | None = None, settings: HealthSettings | None = None,
-                       wait_s: float = store.DEFAULT_WAIT_S) -> WeeklyHealth:
+def read_weekly_health(
+    path=None,
+    *,
+    week: str | Week | None = None,
+    settings: HealthSettings | None = None,
+    wait_s: float = store.DEFAULT_WAIT_S,
+) -> WeeklyHealth:
     """Open the warehouse read-only, compute :func:`weekly_health`, close it."""
     with store.open_warehouse(path, read_only=True, wait_s=wait_s) as con:
         return weekly_health(con, week=week, settings=settings)
 
 
-def weekly_health(con: Con, *, week: str | Week | None = None, settings: HealthSettings | None = None) -> WeeklyHealth:
+def weekly_health(
+    con: Con, *, week: str | Week | None = None, settings: HealthSettings | None = None
+) -> WeeklyHealth:
     """The weekly tool-health scorecards of ``week`` (``2026-W48``; default: the latest week with data).
 
     Example:
@@ -556,7 +592,11 @@ def weekly_health(con: Con, *, week: str | Week | None = None, settings: HealthS
     ins = _inspection_scorecard(con, wk, s, notes)
     proc = _process_scorecard(con, wk, s, notes)
     h = WeeklyHealth(
-        week=wk, previous=wk.previous(), **cd, **ins, **proc,
+        week=wk,
+        previous=wk.previous(),
+        **cd,
+        **ins,
+        **proc,
         limit_changes=limit_changes(con, start=wk.start, end=wk.end),
         new_excursions=new_excursions(con, start=wk.start, end=wk.end),
         closed_dispositions=closed_dispositions(con, start=wk.start, end=wk.end),
@@ -574,7 +614,10 @@ def _cdsem_scorecard(con: Con, wk: Week, s: HealthSettings, notes: list[str]) ->
     tools_cols = {"tool": pl.String}
     empty = pl.DataFrame(schema=tools_cols)
     out: dict[str, pl.DataFrame] = {
-        "cdsem": empty, "cdsem_pt": empty, "monitor_daily": empty, "fleet_offsets": empty,
+        "cdsem": empty,
+        "cdsem_pt": empty,
+        "monitor_daily": empty,
+        "fleet_offsets": empty,
     }
     if raw.height:
         mon = metrology.evaluate_monitor_health(
@@ -583,24 +626,28 @@ def _cdsem_scorecard(con: Con, wk: Week, s: HealthSettings, notes: list[str]) ->
         in_week = (pl.col("day") >= wk.start.date()) & (pl.col("day") < wk.end.date())
         week_rows = mon.filter(in_week)
         # per tool and day, averaged over the monitor's targets (for the charts and the shape fit)
-        daily = mon.group_by("tool", "day").agg(
-            pl.col("mean_nm").mean(),
-            (pl.col("mean_nm") - pl.col("baseline_mean_nm")).mean().alias("deviation_nm"),
-            (pl.col("ewma_nm") - pl.col("baseline_mean_nm")).mean().alias("ewma_deviation_nm"),
-            (pl.col("ewma_ucl") - pl.col("baseline_mean_nm")).mean().alias("ewma_limit_nm"),
-            pl.col("ewma_signal").any(),
-            pl.col("sd_nm").mean(),
-            pl.col("s_ucl").mean(),
-            pl.col("s_signal").any(),
-            pl.col("fleet_offset_nm").mean(),
-        ).sort("tool", "day")
+        daily = (
+            mon.group_by("tool", "day")
+            .agg(
+                pl.col("mean_nm").mean(),
+                (pl.col("mean_nm") - pl.col("baseline_mean_nm")).mean().alias("deviation_nm"),
+                (pl.col("ewma_nm") - pl.col("baseline_mean_nm")).mean().alias("ewma_deviation_nm"),
+                (pl.col("ewma_ucl") - pl.col("baseline_mean_nm")).mean().alias("ewma_limit_nm"),
+                pl.col("ewma_signal").any(),
+                pl.col("sd_nm").mean(),
+                pl.col("s_ucl").mean(),
+                pl.col("s_signal").any(),
+                pl.col("fleet_offset_nm").mean(),
+            )
+            .sort("tool", "day")
+        )
         out["monitor_daily"] = daily
         recent = daily.filter(pl.col("day") >= (wk.end - timedelta(days=s.shape_days)).date()).with_columns(
             (pl.col("day") - pl.lit(wk.start.date())).dt.total_days().alias("day_no")
         )
-        shapes = shape.compare_step_and_ramp(recent, by=["tool"], order="day_no", value="mean_nm").with_columns(
-            (pl.lit(wk.start.date()) + pl.duration(days=pl.col("step_after"))).alias("step_day")
-        )
+        shapes = shape.compare_step_and_ramp(
+            recent, by=["tool"], order="day_no", value="mean_nm"
+        ).with_columns((pl.lit(wk.start.date()) + pl.duration(days=pl.col("step_after"))).alias("step_day"))
         per_tool = week_rows.group_by("tool").agg(
             pl.col("day").n_unique().cast(pl.Int64).alias("monitor_days"),
             pl.col("bias_nm").mean(),
@@ -608,38 +655,65 @@ def _cdsem_scorecard(con: Con, wk: Week, s: HealthSettings, notes: list[str]) ->
             pl.col("day").filter(pl.col("ewma_signal")).n_unique().cast(pl.Int64).alias("ewma_signal_days"),
             pl.col("day").filter(pl.col("s_signal")).n_unique().cast(pl.Int64).alias("s_signal_days"),
         )
-        last = week_rows.sort("day").group_by("tool").agg(
-            (pl.col("ewma_nm") - pl.col("baseline_mean_nm")).filter(pl.col("day") == pl.col("day").max())
-            .mean().alias("drift_nm")
+        last = (
+            week_rows.sort("day")
+            .group_by("tool")
+            .agg(
+                (pl.col("ewma_nm") - pl.col("baseline_mean_nm"))
+                .filter(pl.col("day") == pl.col("day").max())
+                .mean()
+                .alias("drift_nm")
+            )
         )
         day_frame = week_rows.select("tool", "target", "day", "n", "mean_nm", "sd_nm")
-        match = metrology.estimate_fleet_matching(day_frame, confidence=s.confidence) if day_frame.height else None
+        match = (
+            metrology.estimate_fleet_matching(day_frame, confidence=s.confidence)
+            if day_frame.height
+            else None
+        )
         levels = precision.estimate_precision_levels(
             day_frame.rename({"target": "artifact", "mean_nm": "mean", "sd_nm": "sd"}).with_columns(
                 pl.lit(wk.label).alias("run")
             ),
             by=["tool"],
         )
-        prec = levels.group_by("tool").agg(
-            pl.col("sd").filter(pl.col("level") == 1).first().alias("repeatability_nm"),
-            pl.col("component_sd").filter(pl.col("level") == 2).first().alias("day_to_day_nm"),
-        ).with_columns(
-            (pl.col("repeatability_nm").pow(2) + pl.col("day_to_day_nm").fill_null(0.0).pow(2)).sqrt()
-            .alias("reproducibility_nm")
+        prec = (
+            levels.group_by("tool")
+            .agg(
+                pl.col("sd").filter(pl.col("level") == 1).first().alias("repeatability_nm"),
+                pl.col("component_sd").filter(pl.col("level") == 2).first().alias("day_to_day_nm"),
+            )
+            .with_columns(
+                (pl.col("repeatability_nm").pow(2) + pl.col("day_to_day_nm").fill_null(0.0).pow(2))
+                .sqrt()
+                .alias("reproducibility_nm")
+            )
         )
         card = per_tool.join(last, on="tool", how="left").join(prec, on="tool", how="left")
         card = card.join(
-            shapes.select("tool", pl.col("shape").alias("change_shape"), pl.col("slope").alias("drift_rate_nm_per_day"),
-                          "step_day", pl.col("step_size").alias("step_nm")),
-            on="tool", how="left",
+            shapes.select(
+                "tool",
+                pl.col("shape").alias("change_shape"),
+                pl.col("slope").alias("drift_rate_nm_per_day"),
+                "step_day",
+                pl.col("step_size").alias("step_nm"),
+            ),
+            on="tool",
+            how="left",
         )
         if match is not None:
             card = card.join(
-                match.select("tool", pl.col("offset_nm").alias("fleet_offset_nm"),
-                             pl.col("offset_lo").alias("fleet_offset_lo"), pl.col("offset_hi").alias("fleet_offset_hi"),
-                             pl.col("slope").alias("matching_slope"), pl.col("slope_lo").alias("matching_slope_lo"),
-                             pl.col("slope_hi").alias("matching_slope_hi")),
-                on="tool", how="left",
+                match.select(
+                    "tool",
+                    pl.col("offset_nm").alias("fleet_offset_nm"),
+                    pl.col("offset_lo").alias("fleet_offset_lo"),
+                    pl.col("offset_hi").alias("fleet_offset_hi"),
+                    pl.col("slope").alias("matching_slope"),
+                    pl.col("slope_lo").alias("matching_slope_lo"),
+                    pl.col("slope_hi").alias("matching_slope_hi"),
+                ),
+                on="tool",
+                how="left",
             )
             out["fleet_offsets"] = match
         # P/T per tool and measured layer, against that layer's spec
@@ -653,7 +727,9 @@ def _cdsem_scorecard(con: Con, wk: Week, s: HealthSettings, notes: list[str]) ->
         card = card.with_columns(pl.Series("pt_verdict", verdict, dtype=pl.String))
         out["cdsem"] = card
     else:
-        notes.append("No monitor-wafer measurements before the end of the week: CD-SEM monitor charts are empty.")
+        notes.append(
+            "No monitor-wafer measurements before the end of the week: CD-SEM monitor charts are empty."
+        )
     rep, rep_means = _repeat_scorecard(con, wk)
     acc_fit, acc_pairs = _accuracy_scorecard(con, wk, s)
     card = out["cdsem"]
@@ -668,20 +744,32 @@ def _cdsem_scorecard(con: Con, wk: Week, s: HealthSettings, notes: list[str]) ->
 def _precision_to_tolerance(layers: pl.DataFrame, specs: pl.DataFrame, sigma: pl.DataFrame) -> pl.DataFrame:
     cols = ["tool", "layer", "product", "lsl", "usl", "reproducibility_nm", "p_to_t", "verdict"]
     if layers.height == 0 or specs.height == 0:
-        return pl.DataFrame(schema={c: (pl.String if c in ("tool", "layer", "product", "verdict") else pl.Float64)
-                                    for c in cols})
+        return pl.DataFrame(
+            schema={
+                c: (pl.String if c in ("tool", "layer", "product", "verdict") else pl.Float64) for c in cols
+            }
+        )
     own = layers.join(specs.filter(pl.col("product") != "*"), on=["layer", "product"], how="left")
-    generic = specs.filter(pl.col("product") == "*").select("layer", pl.col("lsl").alias("_glsl"),
-                                                              pl.col("usl").alias("_gusl"))
-    f = own.join(generic, on="layer", how="left").with_columns(
-        pl.coalesce("lsl", "_glsl").alias("lsl"), pl.coalesce("usl", "_gusl").alias("usl")
-    ).filter(pl.col("lsl").is_not_null() & pl.col("usl").is_not_null())
+    generic = specs.filter(pl.col("product") == "*").select(
+        "layer", pl.col("lsl").alias("_glsl"), pl.col("usl").alias("_gusl")
+    )
+    f = (
+        own.join(generic, on="layer", how="left")
+        .with_columns(pl.coalesce("lsl", "_glsl").alias("lsl"), pl.coalesce("usl", "_gusl").alias("usl"))
+        .filter(pl.col("lsl").is_not_null() & pl.col("usl").is_not_null())
+    )
     f = f.join(sigma, on="tool", how="inner")
-    ratio = precision.precision_to_tolerance(f["reproducibility_nm"].to_numpy(), f["lsl"].to_numpy(), f["usl"].to_numpy())
-    return f.with_columns(
-        pl.Series("p_to_t", ratio, dtype=pl.Float64),
-        pl.Series("verdict", precision.classify_precision_to_tolerance(ratio), dtype=pl.String),
-    ).select(cols).sort("tool", "layer", "product")
+    ratio = precision.precision_to_tolerance(
+        f["reproducibility_nm"].to_numpy(), f["lsl"].to_numpy(), f["usl"].to_numpy()
+    )
+    return (
+        f.with_columns(
+            pl.Series("p_to_t", ratio, dtype=pl.Float64),
+            pl.Series("verdict", precision.classify_precision_to_tolerance(ratio), dtype=pl.String),
+        )
+        .select(cols)
+        .sort("tool", "layer", "product")
+    )
 
 
 def _repeat_scorecard(con: Con, wk: Week) -> tuple[pl.DataFrame, pl.DataFrame]:
@@ -690,16 +778,23 @@ def _repeat_scorecard(con: Con, wk: Week) -> tuple[pl.DataFrame, pl.DataFrame]:
         return pl.DataFrame(schema={"tool": pl.String}), pl.DataFrame(schema={"tool": pl.String})
     latest = rs.filter(pl.col("study_day") == pl.col("study_day").max().over("tool"))
     trend = precision.evaluate_repeat_trend(latest, by=["tool"], session=["session"])
-    days = latest.group_by("tool").agg(pl.col("study_day").first(), pl.col("stage").first().alias("study_stage"))
+    days = latest.group_by("tool").agg(
+        pl.col("study_day").first(), pl.col("stage").first().alias("study_stage")
+    )
     card = trend.select(
-        "tool", pl.col("slope_per_repeat").alias("shrink_nm_per_repeat"), pl.col("p_value").alias("shrink_p_value"),
-        pl.col("trend_detected").alias("shrink_detected"), pl.col("sd_raw").alias("repeat_sd_raw_nm"),
+        "tool",
+        pl.col("slope_per_repeat").alias("shrink_nm_per_repeat"),
+        pl.col("p_value").alias("shrink_p_value"),
+        pl.col("trend_detected").alias("shrink_detected"),
+        pl.col("sd_raw").alias("repeat_sd_raw_nm"),
         pl.col("sd_detrended").alias("repeat_sd_detrended_nm"),
     ).join(days, on="tool", how="left")
     # mean deviation of each repeat from its session's mean: the shrink curve
     means = (
         latest.with_columns((pl.col("value") - pl.col("value").mean().over("tool", "session")).alias("_d"))
-        .group_by("tool", "repeat").agg(pl.col("_d").mean().alias("deviation_nm")).sort("tool", "repeat")
+        .group_by("tool", "repeat")
+        .agg(pl.col("_d").mean().alias("deviation_nm"))
+        .sort("tool", "repeat")
     )
     return card, means
 
@@ -716,35 +811,66 @@ def _accuracy_scorecard(con: Con, wk: Week, s: HealthSettings) -> tuple[pl.DataF
         tool_var = float((p["measured_sd"].fill_null(0.0).pow(2) / p["n_repeats"]).mean())
         lam = tool_var / u_ref**2 if u_ref > 0 else 1.0
         f = accuracy.fit_errors_in_variables(
-            p.select("tool", "reference", "measured"), by=["tool"], error_variance_ratio=max(lam, 1e-6),
-            reference_sd=u_ref, confidence=s.confidence,
+            p.select("tool", "reference", "measured"),
+            by=["tool"],
+            error_variance_ratio=max(lam, 1e-6),
+            reference_sd=u_ref,
+            confidence=s.confidence,
         )
-        fits.append(f.with_columns(pl.lit(method).alias("reference_method"), pl.lit(lam).alias("error_variance_ratio")))
+        fits.append(
+            f.with_columns(
+                pl.lit(method).alias("reference_method"), pl.lit(lam).alias("error_variance_ratio")
+            )
+        )
     fit = pl.concat(fits).sort("tool", "reference_method")
     # one column set per tool: the method with the most features (ties: first by name)
-    best = fit.sort(["tool", "n", "reference_method"], descending=[False, True, False]).group_by(
-        "tool", maintain_order=True).first()
-    card = best.select(
-        "tool", pl.col("reference_method").alias("accuracy_reference"), pl.col("n").alias("accuracy_features"),
-        pl.col("slope").alias("accuracy_slope"), pl.col("slope_lo").alias("accuracy_slope_lo"),
-        pl.col("slope_hi").alias("accuracy_slope_hi"), pl.col("offset").alias("accuracy_offset_nm"),
-        pl.col("mean_offset").alias("accuracy_mean_offset_nm"), pl.col("tmu").alias("tmu_nm"),
+    best = (
+        fit.sort(["tool", "n", "reference_method"], descending=[False, True, False])
+        .group_by("tool", maintain_order=True)
+        .first()
     )
-    return card, pairs.join(fit.select("tool", "reference_method", pl.col("slope").alias("fit_slope"),
-                                       pl.col("offset").alias("fit_offset_nm")),
-                            on=["tool", "reference_method"], how="left")
+    card = best.select(
+        "tool",
+        pl.col("reference_method").alias("accuracy_reference"),
+        pl.col("n").alias("accuracy_features"),
+        pl.col("slope").alias("accuracy_slope"),
+        pl.col("slope_lo").alias("accuracy_slope_lo"),
+        pl.col("slope_hi").alias("accuracy_slope_hi"),
+        pl.col("offset").alias("accuracy_offset_nm"),
+        pl.col("mean_offset").alias("accuracy_mean_offset_nm"),
+        pl.col("tmu").alias("tmu_nm"),
+    )
+    return card, pairs.join(
+        fit.select(
+            "tool",
+            "reference_method",
+            pl.col("slope").alias("fit_slope"),
+            pl.col("offset").alias("fit_offset_nm"),
+        ),
+        on=["tool", "reference_method"],
+        how="left",
+    )
 
 
 def _flag_cdsems(card: pl.DataFrame, s: HealthSettings) -> pl.DataFrame:
-    for c, dt in (("ewma_signal_days", pl.Int64), ("change_shape", pl.String), ("fleet_offset_nm", pl.Float64),
-                  ("fleet_offset_lo", pl.Float64), ("fleet_offset_hi", pl.Float64), ("drift_nm", pl.Float64)):
+    for c, dt in (
+        ("ewma_signal_days", pl.Int64),
+        ("change_shape", pl.String),
+        ("fleet_offset_nm", pl.Float64),
+        ("fleet_offset_lo", pl.Float64),
+        ("fleet_offset_hi", pl.Float64),
+        ("drift_nm", pl.Float64),
+    ):
         if c not in card.columns:
             card = card.with_columns(pl.lit(None, dt).alias(c))
     signalled = pl.col("ewma_signal_days").fill_null(0) > 0
     drift = (
-        pl.when(signalled & (pl.col("change_shape") == "ramp")).then(pl.lit("drift"))
-        .when(signalled & (pl.col("change_shape") == "step")).then(pl.lit("step"))
-        .when(signalled).then(pl.lit("signal"))
+        pl.when(signalled & (pl.col("change_shape") == "ramp"))
+        .then(pl.lit("drift"))
+        .when(signalled & (pl.col("change_shape") == "step"))
+        .then(pl.lit("step"))
+        .when(signalled)
+        .then(pl.lit("signal"))
         .otherwise(pl.lit("ok"))
     )
     off = (
@@ -775,64 +901,118 @@ def _inspection_scorecard(con: Con, wk: Week, s: HealthSettings, notes: list[str
             (pl.col("day") - pl.col("_d0")).dt.total_days() < s.capture_baseline_days
         )
         base_rate = inspection.evaluate_capture_rate(base, by=["tool"], confidence=s.confidence).select(
-            "tool", pl.col("capture_rate").alias("baseline_capture"), pl.col("capture_lo").alias("baseline_capture_lo")
+            "tool",
+            pl.col("capture_rate").alias("baseline_capture"),
+            pl.col("capture_lo").alias("baseline_capture_lo"),
         )
         if week_std.height:
             cr = inspection.evaluate_capture_rate(week_std, by=["tool"], confidence=s.confidence)
-            card = cr.select("tool", pl.col("n_inspections").alias("std_inspections"), "capture_rate", "capture_lo",
-                             "capture_hi").join(base_rate, on="tool", how="left").with_columns(
-                (pl.col("capture_hi") < pl.col("baseline_capture")).fill_null(False).alias("capture_fell")
+            card = (
+                cr.select(
+                    "tool",
+                    pl.col("n_inspections").alias("std_inspections"),
+                    "capture_rate",
+                    "capture_lo",
+                    "capture_hi",
+                )
+                .join(base_rate, on="tool", how="left")
+                .with_columns(
+                    (pl.col("capture_hi") < pl.col("baseline_capture")).fill_null(False).alias("capture_fell")
+                )
             )
             # count matching: each tool against the rest of the fleet, pooled over the week's standard wafers
             tot = week_std.group_by("tool").agg(pl.col("count").sum(), pl.col("area_cm2").sum())
             if tot.height >= 2:
                 all_c, all_a = int(tot["count"].sum()), float(tot["area_cm2"].sum())
-                rows = pl.concat([
-                    tot.select(pl.col("tool").alias("wafer"), "tool", "count", "area_cm2"),
-                    tot.select(pl.col("tool").alias("wafer"), pl.lit("(rest of fleet)").alias("tool"),
-                               (all_c - pl.col("count")).alias("count"), (all_a - pl.col("area_cm2")).alias("area_cm2")),
-                ]).select("wafer", "tool", "count", "area_cm2")
-                m = inspection.compare_tool_counts(rows, reference_tool="(rest of fleet)", confidence=s.confidence)
-                card = card.join(m.select("tool", pl.col("density_ratio").alias("count_ratio_to_fleet"),
-                                          pl.col("ratio_lo").alias("count_ratio_lo"),
-                                          pl.col("ratio_hi").alias("count_ratio_hi"),
-                                          pl.col("matched").alias("count_matched")), on="tool", how="left")
+                rows = pl.concat(
+                    [
+                        tot.select(pl.col("tool").alias("wafer"), "tool", "count", "area_cm2"),
+                        tot.select(
+                            pl.col("tool").alias("wafer"),
+                            pl.lit("(rest of fleet)").alias("tool"),
+                            (all_c - pl.col("count")).alias("count"),
+                            (all_a - pl.col("area_cm2")).alias("area_cm2"),
+                        ),
+                    ]
+                ).select("wafer", "tool", "count", "area_cm2")
+                m = inspection.compare_tool_counts(
+                    rows, reference_tool="(rest of fleet)", confidence=s.confidence
+                )
+                card = card.join(
+                    m.select(
+                        "tool",
+                        pl.col("density_ratio").alias("count_ratio_to_fleet"),
+                        pl.col("ratio_lo").alias("count_ratio_lo"),
+                        pl.col("ratio_hi").alias("count_ratio_hi"),
+                        pl.col("matched").alias("count_matched"),
+                    ),
+                    on="tool",
+                    how="left",
+                )
             sizes = standard_defect_sizes(con, start=wk.start, end=wk.end)
             if sizes.height:
                 known = np.asarray(s.standard_sizes_nm, dtype=float)
                 rep = sizes["size_nm"].to_numpy()
                 nearest = known[np.abs(rep[:, None] - known[None, :]).argmin(axis=1)]
                 cal = inspection.evaluate_size_calibration(
-                    sizes.with_columns(pl.Series("known_size_nm", nearest), pl.col("size_nm").alias("reported_size_nm")),
+                    sizes.with_columns(
+                        pl.Series("known_size_nm", nearest), pl.col("size_nm").alias("reported_size_nm")
+                    ),
                     by=["tool"],
                 )
-                card = card.join(cal.select("tool", pl.col("mean_error_nm").alias("size_error_nm"),
-                                            pl.col("rms_error_nm").alias("size_rms_error_nm")), on="tool", how="left")
+                card = card.join(
+                    cal.select(
+                        "tool",
+                        pl.col("mean_error_nm").alias("size_error_nm"),
+                        pl.col("rms_error_nm").alias("size_rms_error_nm"),
+                    ),
+                    on="tool",
+                    how="left",
+                )
         else:
             notes.append("No standard-defect inspections in the week.")
-    dens = inspection_densities(con, start=wk.end - timedelta(days=s.density_days), end=wk.end, sample_kind="monitor")
+    dens = inspection_densities(
+        con, start=wk.end - timedelta(days=s.density_days), end=wk.end, sample_kind="monitor"
+    )
     kind = "monitor"
     if dens.height == 0:
-        dens = inspection_densities(con, start=wk.end - timedelta(days=s.density_days), end=wk.end,
-                                    sample_kind="production")
+        dens = inspection_densities(
+            con, start=wk.end - timedelta(days=s.density_days), end=wk.end, sample_kind="production"
+        )
         kind = "production"
     density = pl.DataFrame(schema={"tool": pl.String})
     if dens.height:
         density = inspection.evaluate_density_trend(dens, by=["tool", "layer"]).with_columns(
             pl.lit(kind).alias("sample_kind")
         )
-        week_d = dens.filter(pl.col("inspected_at") >= wk.start).group_by("tool").agg(
-            (pl.col("count").sum() / pl.col("area_cm2").sum()).alias("density_per_cm2"),
-            pl.len().cast(pl.Int64).alias("inspections"),
+        week_d = (
+            dens.filter(pl.col("inspected_at") >= wk.start)
+            .group_by("tool")
+            .agg(
+                (pl.col("count").sum() / pl.col("area_cm2").sum()).alias("density_per_cm2"),
+                pl.len().cast(pl.Int64).alias("inspections"),
+            )
         )
-        flagged = density.filter(pl.col("trend_detected")).group_by("tool").agg(
-            pl.concat_str(pl.col("layer"), pl.when(pl.col("slope_per_day") > 0).then(pl.lit(" up")).otherwise(
-                pl.lit(" down"))).sort().str.join(", ").alias("density_trends")
+        flagged = (
+            density.filter(pl.col("trend_detected"))
+            .group_by("tool")
+            .agg(
+                pl.concat_str(
+                    pl.col("layer"),
+                    pl.when(pl.col("slope_per_day") > 0).then(pl.lit(" up")).otherwise(pl.lit(" down")),
+                )
+                .sort()
+                .str.join(", ")
+                .alias("density_trends")
+            )
         )
         d_card = week_d.join(flagged, on="tool", how="left")
         card = d_card if card.height == 0 else card.join(d_card, on="tool", how="full", coalesce=True)
-    return {"inspection": card.sort("tool") if card.height else card, "capture_trend": trend,
-            "density_trend": density}
+    return {
+        "inspection": card.sort("tool") if card.height else card,
+        "capture_trend": trend,
+        "density_trend": density,
+    }
 
 
 # --- process tools and chambers
@@ -842,43 +1022,71 @@ def _process_scorecard(con: Con, wk: Week, s: HealthSettings, notes: list[str]) 
     keys = ["process_tool", "chamber"]
     pts = chamber_chart_points(con, start=wk.start, end=wk.end)
     if pts.height == 0:
-        notes.append("No plan series split by process tool or chamber has points in the week "
-                     "(load a monitoring plan and run `lotline evaluate`).")
+        notes.append(
+            "No plan series split by process tool or chamber has points in the week "
+            "(load a monitoring plan and run `lotline evaluate`)."
+        )
     sig = series_signal_counts(con, start=wk.start, end=wk.end)
-    per = pts.join(sig, on="series_id", how="left").with_columns(
-        pl.col("signalled_points").fill_null(0), pl.col("signals").fill_null(0)
-    ).with_columns(pl.col("chamber").fill_null("(all)"))
-    layers = per.group_by([*keys, "layer", "parameter"]).agg(
-        pl.col("points").sum(), pl.col("signalled_points").sum()
-    ).with_columns((pl.col("signalled_points") / pl.col("points")).alias("ooc_rate"))
-    card = per.group_by(keys).agg(
-        pl.col("points").sum().alias("chart_points"), pl.col("signalled_points").sum(),
-        pl.col("layer").unique().sort().str.join(", ").alias("layers"),
-    ).with_columns((pl.col("signalled_points") / pl.col("chart_points")).alias("ooc_rate"))
+    per = (
+        pts.join(sig, on="series_id", how="left")
+        .with_columns(pl.col("signalled_points").fill_null(0), pl.col("signals").fill_null(0))
+        .with_columns(pl.col("chamber").fill_null("(all)"))
+    )
+    layers = (
+        per.group_by([*keys, "layer", "parameter"])
+        .agg(pl.col("points").sum(), pl.col("signalled_points").sum())
+        .with_columns((pl.col("signalled_points") / pl.col("points")).alias("ooc_rate"))
+    )
+    card = (
+        per.group_by(keys)
+        .agg(
+            pl.col("points").sum().alias("chart_points"),
+            pl.col("signalled_points").sum(),
+            pl.col("layer").unique().sort().str.join(", ").alias("layers"),
+        )
+        .with_columns((pl.col("signalled_points") / pl.col("chart_points")).alias("ooc_rate"))
+    )
     # Cpk per layer run (layer, parameter, product, tool, chamber) from the week's site values
-    sites = chamber_site_values(con, start=wk.start, end=wk.end).with_columns(pl.col("chamber").fill_null("(all)"))
+    sites = chamber_site_values(con, start=wk.start, end=wk.end).with_columns(
+        pl.col("chamber").fill_null("(all)")
+    )
     cpk = _capability(sites, [*keys, "layer", "parameter", "product"], s, notes)
     if cpk.height:
         layers = layers.join(
             cpk.group_by([*keys, "layer", "parameter"]).agg(
-                pl.col("cpk").min(), pl.col("cpk_lo").min(), pl.col("cpk_hi").min()),
-            on=[*keys, "layer", "parameter"], how="left",
+                pl.col("cpk").min(), pl.col("cpk_lo").min(), pl.col("cpk_hi").min()
+            ),
+            on=[*keys, "layer", "parameter"],
+            how="left",
         )
-        worst = cpk.sort("cpk").group_by(keys, maintain_order=True).agg(
-            pl.col("cpk").first().alias("worst_cpk"), pl.col("cpk_lo").first().alias("worst_cpk_lo"),
-            pl.col("cpk_hi").first().alias("worst_cpk_hi"),
-            pl.concat_str(pl.col("layer"), pl.lit(" "), pl.col("product")).first().alias("worst_cpk_run"),
+        worst = (
+            cpk.sort("cpk")
+            .group_by(keys, maintain_order=True)
+            .agg(
+                pl.col("cpk").first().alias("worst_cpk"),
+                pl.col("cpk_lo").first().alias("worst_cpk_lo"),
+                pl.col("cpk_hi").first().alias("worst_cpk_hi"),
+                pl.concat_str(pl.col("layer"), pl.lit(" "), pl.col("product")).first().alias("worst_cpk_run"),
+            )
         )
         card = card.join(worst, on=keys, how="left")
     exc = excursions_by_chamber(con, end=wk.end).with_columns(pl.col("chamber").fill_null("(all)"))
     exc = exc.filter(pl.col("process_tool").is_not_null())
     since = wk.end - timedelta(days=s.repeat_offender_days)
-    ex_card = exc.group_by(keys).agg(
-        (pl.col("state") != "closed").sum().cast(pl.Int64).alias("open_excursions"),
-        ((pl.lit(wk.end) - pl.col("first_at").filter(pl.col("state") != "closed").min()).dt.total_hours() / 24.0)
-        .alias("oldest_open_age_days"),
-        (pl.col("first_at") >= since).sum().cast(pl.Int64).alias("recent_excursions"),
-    ).with_columns((pl.col("recent_excursions") >= s.repeat_offender_min).alias("repeat_offender"))
+    ex_card = (
+        exc.group_by(keys)
+        .agg(
+            (pl.col("state") != "closed").sum().cast(pl.Int64).alias("open_excursions"),
+            (
+                (
+                    pl.lit(wk.end) - pl.col("first_at").filter(pl.col("state") != "closed").min()
+                ).dt.total_hours()
+                / 24.0
+            ).alias("oldest_open_age_days"),
+            (pl.col("first_at") >= since).sum().cast(pl.Int64).alias("recent_excursions"),
+        )
+        .with_columns((pl.col("recent_excursions") >= s.repeat_offender_min).alias("repeat_offender"))
+    )
     card = card.join(ex_card, on=keys, how="full", coalesce=True) if card.height else ex_card
     if card.height:
         for c in ("chart_points", "signalled_points", "open_excursions", "recent_excursions"):
@@ -892,8 +1100,15 @@ def _process_scorecard(con: Con, wk: Week, s: HealthSettings, notes: list[str]) 
 
 def _capability(sites: pl.DataFrame, by: list[str], s: HealthSettings, notes: list[str]) -> pl.DataFrame:
     """Cpk with its interval per group through ``spc.capability`` (one call per layer run)."""
-    cols = {**{k: pl.String for k in by}, "n": pl.Int64, "cpk": pl.Float64, "cpk_lo": pl.Float64,
-            "cpk_hi": pl.Float64, "ppk": pl.Float64, "capability_warnings": pl.String}
+    cols = {
+        **{k: pl.String for k in by},
+        "n": pl.Int64,
+        "cpk": pl.Float64,
+        "cpk_lo": pl.Float64,
+        "cpk_hi": pl.Float64,
+        "ppk": pl.Float64,
+        "capability_warnings": pl.String,
+    }
     try:
         from spc import capability
     except ImportError:
@@ -905,11 +1120,22 @@ def _capability(sites: pl.DataFrame, by: list[str], s: HealthSettings, notes: li
     for key, g in data.group_by([*by, "lsl", "usl"], maintain_order=True):
         lsl, usl = key[-2], key[-1]
         try:
-            c = capability.evaluate_capability(g["value"].to_numpy(), lsl=lsl, usl=usl, confidence=s.confidence)
+            c = capability.evaluate_capability(
+                g["value"].to_numpy(), lsl=lsl, usl=usl, confidence=s.confidence
+            )
         except ValueError:
             continue  # too few values for a capability study
-        rows.append({**dict(zip(by, key[:-2], strict=True)), "n": c.n, "cpk": c.cpk, "cpk_lo": c.cpk_ci[0],
-                     "cpk_hi": c.cpk_ci[1], "ppk": c.ppk, "capability_warnings": " ".join(c.warnings) or None})
+        rows.append(
+            {
+                **dict(zip(by, key[:-2], strict=True)),
+                "n": c.n,
+                "cpk": c.cpk,
+                "cpk_lo": c.cpk_ci[0],
+                "cpk_hi": c.cpk_ci[1],
+                "ppk": c.ppk,
+                "capability_warnings": " ".join(c.warnings) or None,
+            }
+        )
     return pl.DataFrame(rows, schema=cols, orient="row") if rows else pl.DataFrame(schema=cols)
 
 
@@ -928,33 +1154,49 @@ def _attention(h: WeeklyHealth, s: HealthSettings) -> list[str]:
     c = h.cdsem
     if c.height and "monitor_status" in c.columns:
         for r in c.filter(pl.col("monitor_status") == "drift").iter_rows(named=True):
-            out.append(f"CD-SEM {r['tool']}: monitor drifting ({_fmt(r.get('drift_rate_nm_per_day'), 3)} nm/day, EWMA "
-                       f"{_fmt(r.get('drift_nm'))} nm from baseline, signal on {r['ewma_signal_days']} day(s)).")
+            out.append(
+                f"CD-SEM {r['tool']}: monitor drifting ({_fmt(r.get('drift_rate_nm_per_day'), 3)} nm/day, EWMA "
+                f"{_fmt(r.get('drift_nm'))} nm from baseline, signal on {r['ewma_signal_days']} day(s))."
+            )
         for r in c.filter(pl.col("monitor_status") == "step").iter_rows(named=True):
-            out.append(f"CD-SEM {r['tool']}: monitor stepped {_fmt(r.get('step_nm'))} nm on {r.get('step_day')} "
-                       f"(EWMA signal on {r['ewma_signal_days']} day(s)).")
+            out.append(
+                f"CD-SEM {r['tool']}: monitor stepped {_fmt(r.get('step_nm'))} nm on {r.get('step_day')} "
+                f"(EWMA signal on {r['ewma_signal_days']} day(s))."
+            )
         for r in c.filter(pl.col("offset_flag")).iter_rows(named=True):
-            out.append(f"CD-SEM {r['tool']}: offset to fleet {_fmt(r['fleet_offset_nm'])} nm "
-                       f"[{_fmt(r['fleet_offset_lo'])}, {_fmt(r['fleet_offset_hi'])}].")
+            out.append(
+                f"CD-SEM {r['tool']}: offset to fleet {_fmt(r['fleet_offset_nm'])} nm "
+                f"[{_fmt(r['fleet_offset_lo'])}, {_fmt(r['fleet_offset_hi'])}]."
+            )
         if "pt_verdict" in c.columns:
             for r in c.filter(pl.col("pt_verdict") == "not capable").iter_rows(named=True):
-                out.append(f"CD-SEM {r['tool']}: P/T {_fmt(r['worst_p_to_t'], 2, False)} on its tightest layer.")
+                out.append(
+                    f"CD-SEM {r['tool']}: P/T {_fmt(r['worst_p_to_t'], 2, False)} on its tightest layer."
+                )
     i = h.inspection
     if i.height and "capture_fell" in i.columns:
         for r in i.filter(pl.col("capture_fell")).iter_rows(named=True):
-            out.append(f"Inspection tool {r['tool']}: capture rate fell to {r['capture_rate']:.1%} "
-                       f"[{r['capture_lo']:.1%}, {r['capture_hi']:.1%}] from {r['baseline_capture']:.1%}.")
+            out.append(
+                f"Inspection tool {r['tool']}: capture rate fell to {r['capture_rate']:.1%} "
+                f"[{r['capture_lo']:.1%}, {r['capture_hi']:.1%}] from {r['baseline_capture']:.1%}."
+            )
     p = h.process
     if p.height and "ooc_rate" in p.columns:
         top = p.filter(pl.col("ooc_rate").is_not_null() & (pl.col("signalled_points") > 0)).head(1)
         for r in top.iter_rows(named=True):
-            out.append(f"Process chamber {r['process_tool']}/{r['chamber']}: highest OOC rate {r['ooc_rate']:.1%} "
-                       f"({r['signalled_points']} of {r['chart_points']} points).")
+            out.append(
+                f"Process chamber {r['process_tool']}/{r['chamber']}: highest OOC rate {r['ooc_rate']:.1%} "
+                f"({r['signalled_points']} of {r['chart_points']} points)."
+            )
         if "repeat_offender" in p.columns:
             offenders = p.filter(pl.col("repeat_offender")).sort("recent_excursions", descending=True)
             for r in offenders.head(3).iter_rows(named=True):
-                out.append(f"Process chamber {r['process_tool']}/{r['chamber']}: repeat offender "
-                           f"({r['recent_excursions']} excursions in {s.repeat_offender_days} days).")
+                out.append(
+                    f"Process chamber {r['process_tool']}/{r['chamber']}: repeat offender "
+                    f"({r['recent_excursions']} excursions in {s.repeat_offender_days} days)."
+                )
             if offenders.height > 3:
-                out.append(f"{offenders.height - 3} more repeat-offender chambers are listed in the scorecard.")
+                out.append(
+                    f"{offenders.height - 3} more repeat-offender chambers are listed in the scorecard."
+                )
     return out

@@ -76,15 +76,26 @@ class SnapshotTable:
 
 SNAPSHOT_TABLES: tuple[SnapshotTable, ...] = (
     SnapshotTable("plans", "plan", "SELECT coalesce(max(plan_version), 0) FROM plans", ""),
-    SnapshotTable("chart_series", "chart_series", "SELECT count(*), coalesce(max(series_id), 0) FROM chart_series",
-                  "SELECT * FROM chart_series"),
-    SnapshotTable("control_limits", "control_limits",
-                  "SELECT count(*), coalesce(sum(version), 0), max(frozen_at)::VARCHAR FROM control_limits",
-                  "SELECT * FROM control_limits"),
-    SnapshotTable("signals", "signals",
-                  "SELECT count(*), coalesce(max(signal_id), 0), count(withdrawn_at), max(withdrawn_at)::VARCHAR, "
-                  "count(excursion_id), coalesce(sum(excursion_id), 0), coalesce(sum(point_seq), 0) FROM signals",
-                  "SELECT s.*, c.chart FROM signals s LEFT JOIN chart_series c USING (series_id)", "point_at"),
+    SnapshotTable(
+        "chart_series",
+        "chart_series",
+        "SELECT count(*), coalesce(max(series_id), 0) FROM chart_series",
+        "SELECT * FROM chart_series",
+    ),
+    SnapshotTable(
+        "control_limits",
+        "control_limits",
+        "SELECT count(*), coalesce(sum(version), 0), max(frozen_at)::VARCHAR FROM control_limits",
+        "SELECT * FROM control_limits",
+    ),
+    SnapshotTable(
+        "signals",
+        "signals",
+        "SELECT count(*), coalesce(max(signal_id), 0), count(withdrawn_at), max(withdrawn_at)::VARCHAR, "
+        "count(excursion_id), coalesce(sum(excursion_id), 0), coalesce(sum(point_seq), 0) FROM signals",
+        "SELECT s.*, c.chart FROM signals s LEFT JOIN chart_series c USING (series_id)",
+        "point_at",
+    ),
 )
 
 
@@ -119,7 +130,9 @@ def export_lake(db: str | os.PathLike[str] | None, lake: str | os.PathLike[str])
     try:
         with open_warehouse(db, read_only=True) as con:
             con.execute("SET enable_progress_bar = false")
-            existing = {r[0] for r in con.execute("SELECT table_name FROM information_schema.tables").fetchall()}
+            existing = {
+                r[0] for r in con.execute("SELECT table_name FROM information_schema.tables").fetchall()
+            }
             for lt in LAKE_TABLES:
                 if lt.table not in existing:
                     continue
@@ -150,8 +163,14 @@ def export_lake(db: str | os.PathLike[str] | None, lake: str | os.PathLike[str])
                 summary[lt.table] = {"rows": rows, "files": sum(1 for name, _ in written if name == lt.table)}
                 for table_name, f in written:
                     rel_in_stage = Path(f).relative_to(staging)
-                    new_files.append({"table": table_name, "path": str(rel_in_stage), "staged": f,
-                                      "final": str(lake / rel_in_stage)})
+                    new_files.append(
+                        {
+                            "table": table_name,
+                            "path": str(rel_in_stage),
+                            "staged": f,
+                            "final": str(lake / rel_in_stage),
+                        }
+                    )
                 manifest["marks"][lt.table] = int(new_mark)
             new_files += _export_snapshots(con, existing, manifest, staging, lake, summary)
         for nf in new_files:
@@ -174,7 +193,9 @@ def export_lake(db: str | os.PathLike[str] | None, lake: str | os.PathLike[str])
 
 
 def _columns(con, table: str) -> set[str]:
-    rows = con.execute("SELECT column_name FROM information_schema.columns WHERE table_name = ?", [table]).fetchall()
+    rows = con.execute(
+        "SELECT column_name FROM information_schema.columns WHERE table_name = ?", [table]
+    ).fetchall()
     return {r[0] for r in rows}
 
 
@@ -198,8 +219,9 @@ def _copy(con, select: str, staging: Path, name: str, parts: list[str]) -> tuple
     return int(rows), [(name, f) for f in files]
 
 
-def _export_snapshots(con, existing: set[str], manifest: dict, staging: Path, lake: Path,
-                      summary: dict) -> list[dict]:
+def _export_snapshots(
+    con, existing: set[str], manifest: dict, staging: Path, lake: Path, summary: dict
+) -> list[dict]:
     """Stage a new snapshot of every snapshot table whose fingerprint changed; update the manifest's
     ``snapshots`` (the caller moves the files and writes the manifest)."""
     snaps = manifest.setdefault("snapshots", {})
@@ -227,8 +249,15 @@ def _export_snapshots(con, existing: set[str], manifest: dict, staging: Path, la
             rows, written = _copy(con, select, staging, name, parts)
         for _, f in written:
             rel = Path(f).relative_to(staging)
-            out.append({"table": st.lake_name, "path": str(rel), "staged": f, "final": str(lake / rel),
-                        "snapshot": seq})
+            out.append(
+                {
+                    "table": st.lake_name,
+                    "path": str(rel),
+                    "staged": f,
+                    "final": str(lake / rel),
+                    "snapshot": seq,
+                }
+            )
         snaps[st.lake_name] = {"id": seq, "fingerprint": fp, "rows": rows}
         summary[st.lake_name] = {"rows": rows, "files": len(written)}
         wrote = True
@@ -246,8 +275,14 @@ def _stage_plan(con, staging: Path, name: str) -> list[tuple[str, str]]:
     plan = current_plan(con)
     if plan is None:
         return []
-    doc = {"plan_version": current_plan_version(con), "path": plan.path, "name": plan.name,
-           "sha256": plan.sha256, "text": plan.text, "entries": [asdict(e) for e in plan.entries]}
+    doc = {
+        "plan_version": current_plan_version(con),
+        "path": plan.path,
+        "name": plan.name,
+        "sha256": plan.sha256,
+        "text": plan.text,
+        "entries": [asdict(e) for e in plan.entries],
+    }
     target = staging / name
     target.mkdir(parents=True, exist_ok=True)
     f = target / f"plan_{uuid.uuid4()}.json"
@@ -309,8 +344,9 @@ def register_snapshot(lake: str | os.PathLike[str], table: str, paths: list[str]
         raise ValueError(f"snapshot {seq} of {table} was taken by another writer of {lake}")
     for p in paths:
         rel = str(Path(p).resolve().relative_to(lake.resolve()))
-        manifest["files"].append({"table": table, "path": rel, "rows": pq.read_metadata(p).num_rows,
-                                  "snapshot": seq})
+        manifest["files"].append(
+            {"table": table, "path": rel, "rows": pq.read_metadata(p).num_rows, "snapshot": seq}
+        )
     manifest.setdefault("snapshots", {})[table] = {"id": seq, "fingerprint": None, "rows": rows}
     manifest["snapshot_seq"] = seq
     _write_manifest(lake, manifest)

@@ -44,8 +44,13 @@ class LimitsError(LotlineError, ValueError):
     """Limits cannot be estimated (too few baseline points, zero spread, unknown chart)."""
 
 
-def baseline_points(e: PlanEntry, pts: pl.DataFrame, *, window: tuple[datetime, datetime] | None = None,
-                    first: int | None = None) -> pl.DataFrame | None:
+def baseline_points(
+    e: PlanEntry,
+    pts: pl.DataFrame,
+    *,
+    window: tuple[datetime, datetime] | None = None,
+    first: int | None = None,
+) -> pl.DataFrame | None:
     """The baseline subset of one series' points (in order), or None while the baseline is incomplete."""
     explicit = window is not None
     if first is None and window is None:
@@ -69,9 +74,17 @@ def estimate_limits(e: PlanEntry, base: pl.DataFrame, sites: pl.DataFrame | None
     k = float(e.params.get("k", 3.0))
     v = base["value"].cast(pl.Float64).to_numpy()
     if v.size < 2:
-        raise LimitsError("baseline has fewer than 2 points", found=int(v.size), expected=f">= {MIN_BASELINE}")
-    out = {"k_sigma": k, "n_ref": None, "overdispersion": None, "baseline_n": int(v.size),
-           "baseline_from": base["point_at"].min(), "baseline_to": base["point_at"].max()}
+        raise LimitsError(
+            "baseline has fewer than 2 points", found=int(v.size), expected=f">= {MIN_BASELINE}"
+        )
+    out = {
+        "k_sigma": k,
+        "n_ref": None,
+        "overdispersion": None,
+        "baseline_n": int(v.size),
+        "baseline_from": base["point_at"].min(),
+        "baseline_to": base["point_at"].max(),
+    }
     if e.chart in ("u", "laney_u") and e.statistic in DEFECT_STATISTICS:
         frame = base.select(pl.lit("s").alias("series"), pl.col("n").alias("count"), "area_cm2")
         pts = laney_u_points(frame) if e.chart == "laney_u" else u_points(frame)
@@ -79,19 +92,32 @@ def estimate_limits(e: PlanEntry, base: pl.DataFrame, sites: pl.DataFrame | None
         n_ref = float(base["area_cm2"].cast(pl.Float64).mean())
         sz = float(pts["sigma_z"][0]) if e.chart == "laney_u" else 1.0
         sigma_ref = float(np.sqrt(ubar / n_ref) * sz) if ubar > 0 else 0.0
-        out.update(center=ubar, sigma=sigma_ref, sigma_level="count", n_ref=n_ref,
-                   sigma_source="laney_u_prime" if e.chart == "laney_u" else "poisson",
-                   overdispersion=sz if e.chart == "laney_u" else None)
+        out.update(
+            center=ubar,
+            sigma=sigma_ref,
+            sigma_level="count",
+            n_ref=n_ref,
+            sigma_source="laney_u_prime" if e.chart == "laney_u" else "poisson",
+            overdispersion=sz if e.chart == "laney_u" else None,
+        )
     elif e.statistic in ("wafer_sd", "wafer_range"):
         lim = individuals_limits(pl.DataFrame({"series": "s", "seq": np.arange(v.size), "value": v}), k=k)
-        out.update(center=float(lim["center"][0]), sigma=float(lim["sigma"][0]), sigma_level="wafer",
-                   sigma_source="moving_range")
+        out.update(
+            center=float(lim["center"][0]),
+            sigma=float(lim["sigma"][0]),
+            sigma_level="wafer",
+            sigma_source="moving_range",
+        )
     else:
         level = {"site_value": "site", "wafer_mean": "wafer", "lot_mean": "lot"}.get(e.statistic, "wafer")
         out.update(center=float(v.mean()), sigma_level=level, **_nested_sigma(e, v, sites))
     if not (out["sigma"] > 0 and np.isfinite(out["sigma"])):
-        raise LimitsError("baseline points have no spread (sigma 0)", found=out["sigma"], expected="> 0",
-                          fix="choose a baseline with real process variation")
+        raise LimitsError(
+            "baseline points have no spread (sigma 0)",
+            found=out["sigma"],
+            expected="> 0",
+            fix="choose a baseline with real process variation",
+        )
     lcl = out["center"] - k * out["sigma"]
     if e.statistic in DEFECT_STATISTICS:
         lcl = max(lcl, 0.0)
@@ -126,24 +152,52 @@ def point_sigma(e: PlanEntry, lim: dict, pts: pl.DataFrame) -> np.ndarray:
 
 def insert_version(con, series_id: int, lim: dict, *, user: str, reason: str) -> int:
     """Append the next limit version of a series; return its number."""
-    version = int(con.execute(
-        "SELECT coalesce(max(version), 0) + 1 FROM control_limits WHERE series_id = ?", [series_id]
-    ).fetchall()[0][0])
+    version = int(
+        con.execute(
+            "SELECT coalesce(max(version), 0) + 1 FROM control_limits WHERE series_id = ?", [series_id]
+        ).fetchall()[0][0]
+    )
     con.execute(
         "INSERT INTO control_limits VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, now()::TIMESTAMP, ?, ?)",
-        [series_id, version, lim["center"], lim["sigma"], lim["sigma_level"], lim["sigma_source"], lim["k_sigma"],
-         lim["lcl"], lim["ucl"], lim["n_ref"], lim["overdispersion"], lim["baseline_from"], lim["baseline_to"],
-         lim["baseline_n"], user, reason],
+        [
+            series_id,
+            version,
+            lim["center"],
+            lim["sigma"],
+            lim["sigma_level"],
+            lim["sigma_source"],
+            lim["k_sigma"],
+            lim["lcl"],
+            lim["ucl"],
+            lim["n_ref"],
+            lim["overdispersion"],
+            lim["baseline_from"],
+            lim["baseline_to"],
+            lim["baseline_n"],
+            user,
+            reason,
+        ],
     )
     return version
 
 
-def insert_first_versions(con, items: list[tuple[int, dict]], *, user: str, reason: str, now: datetime) -> None:
+def insert_first_versions(
+    con, items: list[tuple[int, dict]], *, user: str, reason: str, now: datetime
+) -> None:
     """Insert version 1 for many series without limits at once (automatic freezes)."""
     if not items:
         return
-    recs = [{"series_id": sid, "version": 1, **{k: lim[k] for k in _LIMIT_KEYS}, "frozen_at": now,
-             "frozen_by": user, "reason": reason} for sid, lim in items]
+    recs = [
+        {
+            "series_id": sid,
+            "version": 1,
+            **{k: lim[k] for k in _LIMIT_KEYS},
+            "frozen_at": now,
+            "frozen_by": user,
+            "reason": reason,
+        }
+        for sid, lim in items
+    ]
     frame = pl.DataFrame(recs, schema=schema.polars_schema(schema.CONTROL_LIMITS))
     con.register("new_limits", frame)
     try:
@@ -152,8 +206,20 @@ def insert_first_versions(con, items: list[tuple[int, dict]], *, user: str, reas
         con.unregister("new_limits")
 
 
-_LIMIT_KEYS = ("center", "sigma", "sigma_level", "sigma_source", "k_sigma", "lcl", "ucl", "n_ref", "overdispersion",
-               "baseline_from", "baseline_to", "baseline_n")
+_LIMIT_KEYS = (
+    "center",
+    "sigma",
+    "sigma_level",
+    "sigma_source",
+    "k_sigma",
+    "lcl",
+    "ucl",
+    "n_ref",
+    "overdispersion",
+    "baseline_from",
+    "baseline_to",
+    "baseline_n",
+)
 
 
 def current_limits(con) -> dict[int, dict]:

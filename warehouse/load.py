@@ -100,8 +100,16 @@ def new_file_id(con: duckdb.DuckDBPyConnection) -> int:
     return int(con.execute("SELECT nextval('file_id_seq')").fetchall()[0][0])
 
 
-def load_chunk(con: duckdb.DuckDBPyConnection, table: str, frame: pl.DataFrame, *, file_id: int,
-               counts: FileCounts, series_order: bool = True, stage_dir: Path | None = None) -> None:
+def load_chunk(
+    con: duckdb.DuckDBPyConnection,
+    table: str,
+    frame: pl.DataFrame,
+    *,
+    file_id: int,
+    counts: FileCounts,
+    series_order: bool = True,
+    stage_dir: Path | None = None,
+) -> None:
     """Dedupe and insert one chunk of canonical rows of ``table`` for file ``file_id``.
 
     ``series_order`` sorts the chunk into series order on the way in; the caller turns it off for files
@@ -131,13 +139,17 @@ def load_chunk(con: duckdb.DuckDBPyConnection, table: str, frame: pl.DataFrame, 
     try:
         order = ", ".join(_q(c) for c in SERIES_ORDER.get(table, ()))
         order_sql = f" ORDER BY {order}, {_q(schema.C_SOURCE_LINE)}" if order and series_order else ""
-        select = (f"SELECT f.*, ? AS {_q(schema.C_SOURCE_FILE_ID)}, NULL::BIGINT AS {_q(schema.C_SUPERSEDED_BY)} "
-                  f"FROM {source} f")
+        select = (
+            f"SELECT f.*, ? AS {_q(schema.C_SOURCE_FILE_ID)}, NULL::BIGINT AS {_q(schema.C_SUPERSEDED_BY)} "
+            f"FROM {source} f"
+        )
         params: list[object] = [file_id, *source_params]
         if not t.supersede_key and t.natural_key:
             match = " AND ".join(f"m.{_q(k)} IS NOT DISTINCT FROM f.{_q(k)}" for k in t.natural_key)
-            select += (f" WHERE NOT EXISTS (SELECT 1 FROM {_q(table)} m WHERE m.{_q(schema.C_SUPERSEDED_BY)} IS NULL"
-                       f" AND m.{_q(schema.C_SOURCE_FILE_ID)} < ? AND {match})")
+            select += (
+                f" WHERE NOT EXISTS (SELECT 1 FROM {_q(table)} m WHERE m.{_q(schema.C_SUPERSEDED_BY)} IS NULL"
+                f" AND m.{_q(schema.C_SOURCE_FILE_ID)} < ? AND {match})"
+            )
             params.append(file_id)
         con.execute(f"SET preserve_insertion_order = {'true' if series_order else 'false'}")
         n = con.execute(f"INSERT INTO {_q(table)} BY NAME {select}{order_sql}", params).fetchall()[0][0]
@@ -158,7 +170,9 @@ def _group_exprs(t: schema.Table, alias: str) -> list[str]:
     return exprs
 
 
-def supersede_file(con: duckdb.DuckDBPyConnection, tables: list[str], *, file_id: int, counts: FileCounts) -> None:
+def supersede_file(
+    con: duckdb.DuckDBPyConnection, tables: list[str], *, file_id: int, counts: FileCounts
+) -> None:
     """After a file's last chunk: mark the older current rows of the groups it covers as superseded by it.
 
     One pass per table for the whole file (the new rows carry ``file_id`` and are excluded by
@@ -212,29 +226,40 @@ def _supersede(con: duckdb.DuckDBPyConnection, t: schema.Table, *, file_id: int,
         counts.superseded += int(n)
 
 
-def _cascade(con: duckdb.DuckDBPyConnection, table: str, parent: str, *, file_id: int, counts: FileCounts) -> None:
+def _cascade(
+    con: duckdb.DuckDBPyConnection, table: str, parent: str, *, file_id: int, counts: FileCounts
+) -> None:
     if not any(t == parent for _, t, _ in counts.supersessions):
         return  # this file superseded no parent row, so no child row follows
     keys = [k for k in schema.table(table).names if k in schema.table(parent).natural_key]
     match = " AND ".join(f"p.{_q(k)} = m.{_q(k)}" for k in keys)
-    cond = (f"m.{_q(schema.C_SUPERSEDED_BY)} IS NULL AND m.{_q(schema.C_SOURCE_FILE_ID)} < ? AND EXISTS ("
-            f"SELECT 1 FROM {_q(parent)} p WHERE p.{_q(schema.C_SUPERSEDED_BY)} = ? "
-            f"AND p.{_q(schema.C_SOURCE_FILE_ID)} = m.{_q(schema.C_SOURCE_FILE_ID)} AND {match})")
+    cond = (
+        f"m.{_q(schema.C_SUPERSEDED_BY)} IS NULL AND m.{_q(schema.C_SOURCE_FILE_ID)} < ? AND EXISTS ("
+        f"SELECT 1 FROM {_q(parent)} p WHERE p.{_q(schema.C_SUPERSEDED_BY)} = ? "
+        f"AND p.{_q(schema.C_SOURCE_FILE_ID)} = m.{_q(schema.C_SOURCE_FILE_ID)} AND {match})"
+    )
     hits = con.execute(
         f"SELECT m.{_q(schema.C_SOURCE_FILE_ID)}, m.lot_id, count(*) FROM {_q(table)} m WHERE {cond} GROUP BY ALL",
         [file_id, file_id],
     ).fetchall()
     if not hits:
         return
-    con.execute(f"UPDATE {_q(table)} m SET {_q(schema.C_SUPERSEDED_BY)} = ? WHERE {cond}",
-                [file_id, file_id, file_id])
+    con.execute(
+        f"UPDATE {_q(table)} m SET {_q(schema.C_SUPERSEDED_BY)} = ? WHERE {cond}", [file_id, file_id, file_id]
+    )
     for old_id, lot, n in hits:
         counts.supersessions[(int(old_id), table, str(lot))] += int(n)
         counts.superseded += int(n)
 
 
-def reject_in_file_duplicates(con: duckdb.DuckDBPyConnection, table: str, candidate_lines: list[int], *,
-                              file_id: int, counts: FileCounts) -> pl.DataFrame:
+def reject_in_file_duplicates(
+    con: duckdb.DuckDBPyConnection,
+    table: str,
+    candidate_lines: list[int],
+    *,
+    file_id: int,
+    counts: FileCounts,
+) -> pl.DataFrame:
     """Delete rows of this file whose natural key repeats an earlier line of the same file.
 
     ``candidate_lines`` are lines whose key hash repeats (found cheaply by the caller); the exact key is
@@ -242,7 +267,9 @@ def reject_in_file_duplicates(con: duckdb.DuckDBPyConnection, table: str, candid
     """
     t = schema.table(table)
     if not candidate_lines or not t.natural_key:
-        return pl.DataFrame(schema={"line": pl.Int64, "column": pl.String, "value": pl.String, "reason": pl.String})
+        return pl.DataFrame(
+            schema={"line": pl.Int64, "column": pl.String, "value": pl.String, "reason": pl.String}
+        )
     cand = pl.DataFrame({"line": candidate_lines}, schema={"line": pl.Int64})
     con.register("__lotline_dups", cand)
     try:
@@ -257,7 +284,8 @@ def reject_in_file_duplicates(con: duckdb.DuckDBPyConnection, table: str, candid
         if pairs.height:
             con.register("__lotline_duprows", pairs)
             n = con.execute(
-                f"DELETE FROM {_q(table)} WHERE {F} = ? AND {L} IN (SELECT line FROM __lotline_duprows)", [file_id]
+                f"DELETE FROM {_q(table)} WHERE {F} = ? AND {L} IN (SELECT line FROM __lotline_duprows)",
+                [file_id],
             ).fetchall()[0][0]
             con.unregister("__lotline_duprows")
             counts.loaded -= int(n)
@@ -265,26 +293,55 @@ def reject_in_file_duplicates(con: duckdb.DuckDBPyConnection, table: str, candid
         con.unregister("__lotline_dups")
     key = ", ".join(t.natural_key)
     rejects = pairs.select(
-        pl.col("line"), pl.lit(None, dtype=pl.String).alias("column"), pl.lit(None, dtype=pl.String).alias("value"),
-        pl.format("duplicate natural key ({}) of line {} in the same file; the first one was kept",
-                  pl.lit(key), pl.col("first_line")).alias("reason"),
+        pl.col("line"),
+        pl.lit(None, dtype=pl.String).alias("column"),
+        pl.lit(None, dtype=pl.String).alias("value"),
+        pl.format(
+            "duplicate natural key ({}) of line {} in the same file; the first one was kept",
+            pl.lit(key),
+            pl.col("first_line"),
+        ).alias("reason"),
     ).unique(subset="line", keep="first", maintain_order=True)
     return rejects
 
 
-def finish_file(con: duckdb.DuckDBPyConnection, *, file_id: int, path: str, sha256: str, size: int,
-                kind: str | None, profile: str | None, user: str, counts: FileCounts, rejects: pl.DataFrame) -> int:
+def finish_file(
+    con: duckdb.DuckDBPyConnection,
+    *,
+    file_id: int,
+    path: str,
+    sha256: str,
+    size: int,
+    kind: str | None,
+    profile: str | None,
+    user: str,
+    counts: FileCounts,
+    rejects: pl.DataFrame,
+) -> int:
     """Write the file's source_files row, its rejects and supersession audit, and bump the data version."""
     rejected = rejects.select(pl.col("line").n_unique()).item() if rejects.height else 0
     con.execute(
         "INSERT INTO source_files VALUES (?, ?, ?, ?, ?, ?, 'loaded', ?, ?, ?, ?, (get_current_timestamp() AT TIME ZONE 'UTC'), ?, NULL)",
-        [file_id, path, sha256, size, kind, profile, counts.loaded, rejected, counts.skipped, counts.superseded,
-         user],
+        [
+            file_id,
+            path,
+            sha256,
+            size,
+            kind,
+            profile,
+            counts.loaded,
+            rejected,
+            counts.skipped,
+            counts.superseded,
+            user,
+        ],
     )
     if rejects.height:
-        frame = rejects.select(pl.lit(file_id, dtype=pl.Int64).alias("file_id"), "line", "column", "value", "reason")
+        frame = rejects.select(
+            pl.lit(file_id, dtype=pl.Int64).alias("file_id"), "line", "column", "value", "reason"
+        )
         con.register("__lotline_rejects", frame)
-        con.execute('INSERT INTO rejects BY NAME SELECT * FROM __lotline_rejects ORDER BY line')
+        con.execute("INSERT INTO rejects BY NAME SELECT * FROM __lotline_rejects ORDER BY line")
         con.unregister("__lotline_rejects")
     for (old_id, table, lot), n in sorted(counts.supersessions.items()):
         con.execute(
@@ -294,13 +351,25 @@ def finish_file(con: duckdb.DuckDBPyConnection, *, file_id: int, path: str, sha2
     # --- derived table tool_days (data freshness): the tool-days this file wrote or superseded, recomputed
     from warehouse import tool_days
 
-    tool_days.refresh_for_file(con, file_id=file_id, superseded_files=sorted({o for o, _, _ in counts.supersessions}))
+    tool_days.refresh_for_file(
+        con, file_id=file_id, superseded_files=sorted({o for o, _, _ in counts.supersessions})
+    )
     # --- end tool_days
     return bump_data_version(con)
 
 
-def record_file(con: duckdb.DuckDBPyConnection, *, status: str, path: str, sha256: str, size: int,
-                kind: str | None, profile: str | None, user: str, message: str | None) -> int:
+def record_file(
+    con: duckdb.DuckDBPyConnection,
+    *,
+    status: str,
+    path: str,
+    sha256: str,
+    size: int,
+    kind: str | None,
+    profile: str | None,
+    user: str,
+    message: str | None,
+) -> int:
     """A source_files row for a failed or duplicate file (call in its own small transaction)."""
     file_id = new_file_id(con)
     con.execute(
@@ -325,10 +394,12 @@ def affected_keys(con: duckdb.DuckDBPyConnection, table: str, file_id: int) -> p
     ).pl()
 
 
-def list_rejects(con: duckdb.DuckDBPyConnection, *, path: str | None = None, limit: int = 100) -> pl.DataFrame:
+def list_rejects(
+    con: duckdb.DuckDBPyConnection, *, path: str | None = None, limit: int = 100
+) -> pl.DataFrame:
     """Stored rejects with the path of their file, newest file first."""
     return con.sql(
-        "SELECT s.path, r.line, r.\"column\", r.value, r.reason FROM rejects r JOIN source_files s USING (file_id) "
+        'SELECT s.path, r.line, r."column", r.value, r.reason FROM rejects r JOIN source_files s USING (file_id) '
         "WHERE $path IS NULL OR s.path = $path ORDER BY r.file_id DESC, r.line LIMIT $lim",
         params={"path": path, "lim": limit},
     ).pl()
@@ -341,7 +412,5 @@ def list_files(con: duckdb.DuckDBPyConnection) -> pl.DataFrame:
 
 def file_stamps(con: duckdb.DuckDBPyConnection) -> dict[str, str]:
     """path -> sha256 of the latest recorded attempt of each path (watch mode skips unchanged files)."""
-    rows = con.execute(
-        "SELECT path, arg_max(sha256, file_id) FROM source_files GROUP BY path"
-    ).fetchall()
+    rows = con.execute("SELECT path, arg_max(sha256, file_id) FROM source_files GROUP BY path").fetchall()
     return {p: h for p, h in rows}

@@ -77,8 +77,18 @@ DEFAULT_BASELINE = {"first": 25}
 MIN_BASELINE = 5
 
 ENTRY_KEYS = (
-    "name", "description", "select", "statistic", "split", "step", "chart", "params", "rules", "baseline",
-    "severity", "spec_check",
+    "name",
+    "description",
+    "select",
+    "statistic",
+    "split",
+    "step",
+    "chart",
+    "params",
+    "rules",
+    "baseline",
+    "severity",
+    "spec_check",
 )
 SELECT_KEYS = ("layer", "parameter", "product", "stage", "sample_kind")
 TOP_KEYS = ("plan", "defaults", "chart")
@@ -202,8 +212,13 @@ def parse_plan(text: str, *, path: str = "plan.toml") -> Plan:
             more = "\n  ".join(str(e).splitlines()[0] for e in errors[1:21])
             rest = f"\n  ... and {len(errors) - 21} more" if len(errors) > 21 else ""
             first = ConfigError(
-                first.what, path=first.path, line=first.line, column=first.column, found=first.found,
-                expected=first.expected, fix=first.fix,
+                first.what,
+                path=first.path,
+                line=first.line,
+                column=first.column,
+                found=first.found,
+                expected=first.expected,
+                fix=first.fix,
                 details=f"{len(errors) - 1} more problem(s):\n  {more}{rest}",
             )
         raise first
@@ -218,7 +233,9 @@ def read_plan(path: str | Path) -> Plan:
     except FileNotFoundError as exc:
         raise ConfigError("monitoring plan not found", path=str(p), fix="check the path") from exc
     except UnicodeDecodeError as exc:
-        raise ConfigError("monitoring plan is not UTF-8 text", path=str(p), fix="save the file as UTF-8") from exc
+        raise ConfigError(
+            "monitoring plan is not UTF-8 text", path=str(p), fix="save the file as UTF-8"
+        ) from exc
     return parse_plan(text, path=str(p))
 
 
@@ -237,8 +254,15 @@ def check_plan(text: str, *, path: str = "plan.toml") -> list[ConfigError]:
         elif "(at end of document)" in msg:
             line = text.count("\n") + (0 if text.endswith("\n") else 1)
             msg = msg.replace(" (at end of document)", " at the end of the file")
-        return [ConfigError(f"TOML syntax error: {msg}", path=path, line=line, column=col,
-                            fix="correct the TOML syntax (https://toml.io)")]
+        return [
+            ConfigError(
+                f"TOML syntax error: {msg}",
+                path=path,
+                line=line,
+                column=col,
+                fix="correct the TOML syntax (https://toml.io)",
+            )
+        ]
     c = _Checker(path, text)
     c.unknown_keys(doc, TOP_KEYS, (), "the plan")
     if "plan" in doc:
@@ -257,8 +281,15 @@ def check_plan(text: str, *, path: str = "plan.toml") -> list[ConfigError]:
         c.err(("chart",), "chart must be an array of tables", expected="[[chart]] entries")
         charts = []
     if not charts:
-        c.errors.append(ConfigError("the plan has no [[chart]] entries", path=path, line=1, column=1,
-                                    fix="add at least one [[chart]] table"))
+        c.errors.append(
+            ConfigError(
+                "the plan has no [[chart]] entries",
+                path=path,
+                line=1,
+                column=1,
+                fix="add at least one [[chart]] table",
+            )
+        )
     seen: dict[str, int] = {}
     for i, entry in enumerate(charts):
         _check_entry(c, entry, i, defaults, seen)
@@ -274,8 +305,12 @@ def _check_common(c: _Checker, table: dict, where: tuple) -> None:
     if "baseline" in table:
         _check_baseline(c, table["baseline"], (*where, "baseline"))
     if "spec_check" in table and not isinstance(table["spec_check"], bool):
-        c.err((*where, "spec_check"), "spec_check must be true or false", found=table["spec_check"],
-              expected="true or false")
+        c.err(
+            (*where, "spec_check"),
+            "spec_check must be true or false",
+            found=table["spec_check"],
+            expected="true or false",
+        )
     if "sample_kind" in table:
         c.string(table["sample_kind"], (*where, "sample_kind"), "sample_kind")
 
@@ -288,7 +323,9 @@ def _known_rules() -> tuple[str, ...]:
 
 def _check_rules(c: _Checker, rules, where: tuple) -> None:
     if not isinstance(rules, list) or not rules:
-        c.err(where, "rules must be a non-empty list of rule ids", found=rules, expected='e.g. ["we1", "we2"]')
+        c.err(
+            where, "rules must be a non-empty list of rule ids", found=rules, expected='e.g. ["we1", "we2"]'
+        )
         return
     known = _known_rules()
     for j, r in enumerate(rules):
@@ -301,28 +338,53 @@ def _check_rules(c: _Checker, rules, where: tuple) -> None:
 
 def _check_baseline(c: _Checker, b, where: tuple) -> None:
     if not isinstance(b, dict):
-        c.err(where, "baseline must be a table", found=b, expected="{ first = N } or { from = DATE, to = DATE }")
+        c.err(
+            where, "baseline must be a table", found=b, expected="{ first = N } or { from = DATE, to = DATE }"
+        )
         return
     c.unknown_keys(b, BASELINE_KEYS, where, "baseline")
     if "first" in b:
         if "from" in b or "to" in b:
-            c.err((*where, "from" if "from" in b else "to"), "baseline takes either first or from/to, not both",
-                  fix="remove one of them")
+            c.err(
+                (*where, "from" if "from" in b else "to"),
+                "baseline takes either first or from/to, not both",
+                fix="remove one of them",
+            )
         n = b["first"]
         if not isinstance(n, int) or isinstance(n, bool) or n < MIN_BASELINE:
-            c.err((*where, "first"), "baseline first must be a whole number of subgroups", found=n,
-                  expected=f"an integer >= {MIN_BASELINE}")
+            c.err(
+                (*where, "first"),
+                "baseline first must be a whole number of subgroups",
+                found=n,
+                expected=f"an integer >= {MIN_BASELINE}",
+            )
     elif "from" in b or "to" in b:
         for k in ("from", "to"):
             if k not in b:
-                c.err(where, f"baseline window lacks {k}", expected="both from and to",
-                      fix=f"add {k} = YYYY-MM-DD")
+                c.err(
+                    where,
+                    f"baseline window lacks {k}",
+                    expected="both from and to",
+                    fix=f"add {k} = YYYY-MM-DD",
+                )
             elif not isinstance(b[k], date):
-                c.err((*where, k), f"baseline {k} must be a TOML date or date-time", found=b[k],
-                      expected="an unquoted date such as 2026-09-01")
-        if isinstance(b.get("from"), date) and isinstance(b.get("to"), date) and _ts(b["from"]) >= _ts(b["to"]):
-            c.err((*where, "to"), "baseline window ends before it starts", found=str(b["to"]),
-                  expected=f"a date after {b['from']}")
+                c.err(
+                    (*where, k),
+                    f"baseline {k} must be a TOML date or date-time",
+                    found=b[k],
+                    expected="an unquoted date such as 2026-09-01",
+                )
+        if (
+            isinstance(b.get("from"), date)
+            and isinstance(b.get("to"), date)
+            and _ts(b["from"]) >= _ts(b["to"])
+        ):
+            c.err(
+                (*where, "to"),
+                "baseline window ends before it starts",
+                found=str(b["to"]),
+                expected=f"a date after {b['from']}",
+            )
     elif "first" not in b:
         c.err(where, "baseline is empty", expected="{ first = N } or { from = DATE, to = DATE }")
 
@@ -337,10 +399,19 @@ def _check_entry(c: _Checker, entry, i: int, defaults: dict, seen: dict[str, int
     c.unknown_keys(entry, ENTRY_KEYS, where, label)
     for req in ("name", "select", "statistic", "chart"):
         if req not in entry:
-            c.err(where, f'{label} lacks required key "{req}"', key=True, fix=f'add the key "{req}" to this [[chart]] table')
+            c.err(
+                where,
+                f'{label} lacks required key "{req}"',
+                key=True,
+                fix=f'add the key "{req}" to this [[chart]] table',
+            )
     if "name" in entry and c.string(name, (*where, "name"), "chart name") is not None:
         if name in seen:
-            c.err((*where, "name"), f'chart name "{name}" is used twice', fix=f"rename one (the first is on line {seen[name]})")
+            c.err(
+                (*where, "name"),
+                f'chart name "{name}" is used twice',
+                fix=f"rename one (the first is on line {seen[name]})",
+            )
         else:
             seen[name] = c.loc.value((*where, "name"))[0]
     stat = None
@@ -349,13 +420,19 @@ def _check_entry(c: _Checker, entry, i: int, defaults: dict, seen: dict[str, int
     if "select" in entry:
         sel = entry["select"]
         if not isinstance(sel, dict):
-            c.err((*where, "select"), "select must be a table", expected='{ layer = "...", parameter = "..." }')
+            c.err(
+                (*where, "select"), "select must be a table", expected='{ layer = "...", parameter = "..." }'
+            )
         else:
             c.unknown_keys(sel, SELECT_KEYS, (*where, "select"), "select")
             if "layer" not in sel:
                 c.err((*where, "select"), "select lacks layer", expected='layer = "NAME" (wildcards allowed)')
             if "parameter" not in sel and stat not in DEFECT_STATISTICS:
-                c.err((*where, "select"), "select lacks parameter", expected='parameter = "cd_mid" (wildcards allowed)')
+                c.err(
+                    (*where, "select"),
+                    "select lacks parameter",
+                    expected='parameter = "cd_mid" (wildcards allowed)',
+                )
             for k in ("layer", "parameter", "product", "sample_kind"):
                 if k in sel:
                     c.string(sel[k], (*where, "select", k), f"select {k}")
@@ -369,24 +446,40 @@ def _check_entry(c: _Checker, entry, i: int, defaults: dict, seen: dict[str, int
         c.string(s, (*where, "split", j), "split key", choices=SPLIT_KEYS)
     if any(s in ("process_tool", "chamber") for s in split):
         if "step" not in entry:
-            c.err((*where, "split"), "splitting by process_tool or chamber needs the route step that made the layer",
-                  fix='add step = "<route step>"')
+            c.err(
+                (*where, "split"),
+                "splitting by process_tool or chamber needs the route step that made the layer",
+                fix='add step = "<route step>"',
+            )
     if "step" in entry and c.string(entry["step"], (*where, "step"), "step") is not None:
         sel = entry.get("select")
         layer = sel.get("layer") if isinstance(sel, dict) else None
         if isinstance(layer, str) and any(ch in layer for ch in "*?["):
-            c.err((*where, "step"), "a route step belongs to one layer, but the selected layer has wildcards",
-                  found=layer, expected="a concrete layer name", fix="write one [[chart]] per layer")
+            c.err(
+                (*where, "step"),
+                "a route step belongs to one layer, but the selected layer has wildcards",
+                found=layer,
+                expected="a concrete layer name",
+                fix="write one [[chart]] per layer",
+            )
     chart = None
     if "chart" in entry:
         chart = c.string(entry["chart"], (*where, "chart"), "chart", choices=CHART_TYPES)
     if chart and stat:
         if chart in ("u", "laney_u") and stat not in DEFECT_STATISTICS:
-            c.err((*where, "chart"), f'chart "{chart}" needs a defect statistic', found=stat,
-                  expected=" or ".join(DEFECT_STATISTICS))
+            c.err(
+                (*where, "chart"),
+                f'chart "{chart}" needs a defect statistic',
+                found=stat,
+                expected=" or ".join(DEFECT_STATISTICS),
+            )
         if chart in ("xbar_s", "xbar_r") and stat not in ("wafer_mean", "lot_mean"):
-            c.err((*where, "chart"), f'chart "{chart}" charts subgroup means', found=stat,
-                  expected="wafer_mean or lot_mean")
+            c.err(
+                (*where, "chart"),
+                f'chart "{chart}" charts subgroup means',
+                found=stat,
+                expected="wafer_mean or lot_mean",
+            )
     if "params" in entry:
         params = entry["params"]
         if not isinstance(params, dict):
@@ -455,7 +548,9 @@ def _build(text: str, path: str) -> Plan:
                 rules=tuple(e.get("rules", defaults.get("rules", list(DEFAULT_RULES)))),
                 baseline=baseline,
                 severity=e.get("severity", defaults.get("severity", "medium")),
-                spec_check=bool(e.get("spec_check", defaults.get("spec_check", stat in MEASUREMENT_STATISTICS))),
+                spec_check=bool(
+                    e.get("spec_check", defaults.get("spec_check", stat in MEASUREMENT_STATISTICS))
+                ),
                 line=loc.key(("chart", i))[0],
                 description=e.get("description", ""),
             )
@@ -489,7 +584,9 @@ def store_plan(con, plan: Plan, *, user: str) -> int:
         r[0]: r[1:]
         for r in con.execute(
             f"SELECT chart, {', '.join('chart_type' if f == 'chart' else f for f in IDENTITY_FIELDS)}, split_json "
-            "FROM chart_plan WHERE plan_version = ?", [version - 1]).fetchall()
+            "FROM chart_plan WHERE plan_version = ?",
+            [version - 1],
+        ).fetchall()
     }
     for e in plan.entries:
         if e.name not in old:
@@ -504,7 +601,10 @@ def store_plan(con, plan: Plan, *, user: str) -> int:
             f = diff[0]
             raise ConfigError(
                 f'chart "{e.name}" changes its {f}, but its series and frozen limits belong to the loaded definition',
-                path=plan.path, line=e.line, column=1, found=_show_value(now[f]),
+                path=plan.path,
+                line=e.line,
+                column=1,
+                found=_show_value(now[f]),
                 expected=f"{_show_value(before[f])} as in plan version {version - 1}",
                 fix="give the changed chart a new name (the old one's history stays), or keep the old definition",
             )
@@ -516,9 +616,23 @@ def store_plan(con, plan: Plan, *, user: str) -> int:
         con.execute(
             "INSERT INTO chart_plan VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
             [
-                version, e.name, e.layer, e.parameter, e.product, e.stage, e.sample_kind, e.statistic,
-                json.dumps(list(e.split)), e.step, e.chart, json.dumps(e.params, sort_keys=True),
-                json.dumps(list(e.rules)), json.dumps(e.baseline, sort_keys=True), e.severity, e.spec_check, e.line,
+                version,
+                e.name,
+                e.layer,
+                e.parameter,
+                e.product,
+                e.stage,
+                e.sample_kind,
+                e.statistic,
+                json.dumps(list(e.split)),
+                e.step,
+                e.chart,
+                json.dumps(e.params, sort_keys=True),
+                json.dumps(list(e.rules)),
+                json.dumps(e.baseline, sort_keys=True),
+                e.severity,
+                e.spec_check,
+                e.line,
             ],
         )
     return version
@@ -551,8 +665,13 @@ def describe_plan(plan: Plan) -> list[dict[str, Any]]:
         out.append(
             {
                 "chart": e.name,
-                "select": {"layer": e.layer, "parameter": e.parameter, "product": e.product, "stage": e.stage,
-                           "sample_kind": e.sample_kind},
+                "select": {
+                    "layer": e.layer,
+                    "parameter": e.parameter,
+                    "product": e.product,
+                    "stage": e.stage,
+                    "sample_kind": e.sample_kind,
+                },
                 "statistic": e.statistic,
                 "split": list(e.split),
                 "step": e.step,
@@ -582,8 +701,11 @@ def in_control_arl(e: PlanEntry) -> dict[str, float | str | None]:
     elif e.chart == "cusum":
         chart_arl = _cusum_arl(float(e.params["cusum_k"]), float(e.params["h"]), float(e.params["headstart"]))
     combined = rules_arl if chart_arl is None else 1.0 / (1.0 / rules_arl + 1.0 / chart_arl)
-    return {"rules": round(rules_arl, 1), "chart": None if chart_arl is None else round(chart_arl, 1),
-            "combined": round(combined, 1)}
+    return {
+        "rules": round(rules_arl, 1),
+        "chart": None if chart_arl is None else round(chart_arl, 1),
+        "combined": round(combined, 1),
+    }
 
 
 @functools.lru_cache(maxsize=256)
@@ -591,7 +713,9 @@ def _rules_arl(rules: tuple[str, ...], k: float) -> float:
     from spc import arl
     from spc.rules import BeyondLimits, rule_params
 
-    params = [rule_params(r, k=k) if isinstance(rule_params(r), BeyondLimits) else rule_params(r) for r in rules]
+    params = [
+        rule_params(r, k=k) if isinstance(rule_params(r), BeyondLimits) else rule_params(r) for r in rules
+    ]
     return float(arl.expected_arl(params).arl)
 
 

@@ -23,8 +23,20 @@ import polars as pl
 
 from warehouse.plan import PlanEntry
 
-POINT_COLUMNS = ("lot_id", "wafer_id", "point_key", "point_at", "value", "n", "vmin", "vmax", "area_cm2",
-                 "product_any", "lsl", "usl")
+POINT_COLUMNS = (
+    "lot_id",
+    "wafer_id",
+    "point_key",
+    "point_at",
+    "value",
+    "n",
+    "vmin",
+    "vmax",
+    "area_cm2",
+    "product_any",
+    "lsl",
+    "usl",
+)
 """Columns of a points frame besides the series columns (layer, parameter and the split columns)."""
 
 
@@ -41,7 +53,9 @@ def split_json(e: PlanEntry, row: dict) -> str:
 def _rows_pred(alias: str, scope: str) -> str:
     if scope == "current":
         return f"{alias}._superseded_by IS NULL"
-    return f"{alias}._source_file_id <= $wm AND ({alias}._superseded_by IS NULL OR {alias}._superseded_by > $wm)"
+    return (
+        f"{alias}._source_file_id <= $wm AND ({alias}._superseded_by IS NULL OR {alias}._superseded_by > $wm)"
+    )
 
 
 def _history_cte(e: PlanEntry, scope: str, lots: bool = False) -> str:
@@ -58,7 +72,9 @@ def _uses_history(e: PlanEntry) -> bool:
     return any(s in ("process_tool", "chamber") for s in e.split)
 
 
-def points_sql(e: PlanEntry, *, scope: str = "current", lots: bool = False, series: bool = False) -> tuple[str, dict]:
+def points_sql(
+    e: PlanEntry, *, scope: str = "current", lots: bool = False, series: bool = False
+) -> tuple[str, dict]:
     """SQL text and named parameters for the entry's points.
 
     ``lots=True`` keeps only lots listed in a registered relation ``dirty_lots(lot_id)``; ``series=True``
@@ -71,8 +87,9 @@ def points_sql(e: PlanEntry, *, scope: str = "current", lots: bool = False, seri
     if hist:
         params["step"] = e.step
     # the first-file bound lets DuckDB skip older row groups by their zone maps (facts are stored in load order)
-    lot_filter = ("AND f._source_file_id >= $minfid AND f.lot_id IN (SELECT lot_id FROM dirty_lots)"
-                  if lots else "")
+    lot_filter = (
+        "AND f._source_file_id >= $minfid AND f.lot_id IN (SELECT lot_id FROM dirty_lots)" if lots else ""
+    )
     if lots:
         params["minfid"] = 0  # filled by the caller
     if e.is_defect:
@@ -83,9 +100,7 @@ def points_sql(e: PlanEntry, *, scope: str = "current", lots: bool = False, seri
     split_sel = []
     for s in e.split:
         if s in ("process_tool", "chamber"):
-            split_sel.append(
-                f"CASE WHEN hw.lot_id IS NOT NULL THEN hw.{s} ELSE hl.{s} END AS {s}"
-            )
+            split_sel.append(f"CASE WHEN hw.lot_id IS NOT NULL THEN hw.{s} ELSE hl.{s} END AS {s}")
         elif s == "metrology_tool":
             split_sel.append("w.metrology_tool")
         elif s == "product":
@@ -103,7 +118,9 @@ def points_sql(e: PlanEntry, *, scope: str = "current", lots: bool = False, seri
     sel_split = (", " + ", ".join(split_sel)) if split_sel else ""
     joined = f"SELECT w.*{sel_split} FROM w {joins} {where}"
     if e.statistic == "lot_mean":
-        keys = ", ".join(["layer", "parameter", "metrology_tool", *[s for s in e.split if s != "metrology_tool"]])
+        keys = ", ".join(
+            ["layer", "parameter", "metrology_tool", *[s for s in e.split if s != "metrology_tool"]]
+        )
         joined = f"""
 SELECT {keys}, lot_id, NULL::VARCHAR AS wafer_id, lot_id || '|' || metrology_tool AS point_key,
        min(point_at) AS point_at, sum(value * n) / sum(n) AS value, sum(n) AS n, min(vmin) AS vmin,
@@ -153,8 +170,10 @@ GROUP BY f.layer, f.parameter, f.metrology_tool, f.lot_id, f.wafer_id {having}""
 def _defect_inner(e: PlanEntry, scope: str, lot_filter: str, params: dict) -> str:
     pred = _rows_pred("f", scope)
     sel = f"f.layer GLOB $layer AND f.product GLOB $product AND f.sample_kind = $kind AND {pred} {lot_filter}"
-    key = ("f.lot_id || '|' || f.wafer_id || '|' || f.inspection_tool || '|' || "
-           "strftime(f.inspected_at, '%Y-%m-%dT%H:%M:%S.%f')")
+    key = (
+        "f.lot_id || '|' || f.wafer_id || '|' || f.inspection_tool || '|' || "
+        "strftime(f.inspected_at, '%Y-%m-%dT%H:%M:%S.%f')"
+    )
     if e.statistic == "adder_density":
         params.pop("parameter")
         return f"""
@@ -196,9 +215,16 @@ def _spec_join(e: PlanEntry) -> dict[str, str]:
     }
 
 
-def read_points(con, e: PlanEntry, *, scope: str = "current", watermark: int | None = None,
-                dirty_lots: pl.DataFrame | None = None, wanted: pl.DataFrame | None = None,
-                min_file_id: int = 0) -> pl.DataFrame:
+def read_points(
+    con,
+    e: PlanEntry,
+    *,
+    scope: str = "current",
+    watermark: int | None = None,
+    dirty_lots: pl.DataFrame | None = None,
+    wanted: pl.DataFrame | None = None,
+    min_file_id: int = 0,
+) -> pl.DataFrame:
     """Run the entry's points query; returns the series columns plus POINT_COLUMNS, in series order.
 
     With ``dirty_lots``, ``min_file_id`` must not exceed the first source file of any of those lots
@@ -274,13 +300,18 @@ def read_changes(con, *, watermark: int) -> dict[str, pl.DataFrame]:
     first_measurements, first_inspections), spec_limits (layer, parameter). Each fact query has two halves joined by UNION (not OR) so that both can skip row
     groups by their zone maps.
     """
+
     def both(cols: str, table: str) -> str:
-        return (f'SELECT DISTINCT {cols} FROM "{table}" f WHERE f._source_file_id > $wm UNION '
-                f'SELECT DISTINCT {cols} FROM "{table}" f WHERE f._superseded_by > $wm')
+        return (
+            f'SELECT DISTINCT {cols} FROM "{table}" f WHERE f._source_file_id > $wm UNION '
+            f'SELECT DISTINCT {cols} FROM "{table}" f WHERE f._superseded_by > $wm'
+        )
 
     def first(sql: str, table: str) -> str:
-        return (f"SELECT c.*, i.first_file_id FROM ({sql}) c LEFT JOIN lot_first_files i "
-                f"ON i.table_name = '{table}' AND i.lot_id = c.lot_id")
+        return (
+            f"SELECT c.*, i.first_file_id FROM ({sql}) c LEFT JOIN lot_first_files i "
+            f"ON i.table_name = '{table}' AND i.lot_id = c.lot_id"
+        )
 
     queries = {
         "measurements": first(both("lot_id, layer, parameter, product", "measurements"), "measurements"),
@@ -326,6 +357,11 @@ def changed_lots(e: PlanEntry, changes: dict[str, pl.DataFrame]) -> tuple[pl.Dat
     spec_changed = False
     if not e.is_defect and e.spec_check:
         spec = changes["spec_limits"]
-        spec_changed = spec.filter(pl.col("layer").str.contains(glob_regex(e.layer))
-                                   & pl.col("parameter").str.contains(glob_regex(e.parameter))).height > 0
+        spec_changed = (
+            spec.filter(
+                pl.col("layer").str.contains(glob_regex(e.layer))
+                & pl.col("parameter").str.contains(glob_regex(e.parameter))
+            ).height
+            > 0
+        )
     return lots, spec_changed

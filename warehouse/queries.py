@@ -46,7 +46,9 @@ __all__ = [
 
 Con = duckdb.DuckDBPyConnection
 
-_SEVERITY_RANK = "CASE {c} WHEN 'critical' THEN 4 WHEN 'high' THEN 3 WHEN 'medium' THEN 2 WHEN 'low' THEN 1 ELSE 0 END"
+_SEVERITY_RANK = (
+    "CASE {c} WHEN 'critical' THEN 4 WHEN 'high' THEN 3 WHEN 'medium' THEN 2 WHEN 'low' THEN 1 ELSE 0 END"
+)
 
 
 def _frame(con: Con, sql: str, params: list | None = None) -> pl.DataFrame:
@@ -122,7 +124,9 @@ def excursions_by_tool_layer_day(
     Columns: day (date), tool, layer, excursions, open (not closed), signals, max_severity.
     """
     if tool_key not in ("process_tool", "chamber", "metrology_tool", "product"):
-        raise ValueError(f"tool_key {tool_key!r} is not a split column; use process_tool, chamber or metrology_tool")
+        raise ValueError(
+            f"tool_key {tool_key!r} is not a split column; use process_tool, chamber or metrology_tool"
+        )
     rank = _SEVERITY_RANK.format(c="e.severity")
     sql = f"""
 SELECT CAST(date_trunc('day', e.first_at) AS DATE) AS day,
@@ -383,8 +387,10 @@ def tool_freshness(con: Con, *, now: datetime | None = None, stale_after_h: floa
     from warehouse import tool_days
 
     if tool_days.is_current(con):  # the per-tool-day table, kept by ingest (no scan of every fact row)
-        return con.sql(tool_days.freshness_sql(),
-                       params=tool_days.freshness_params(at=at, day_ago=day_ago, stale_after_h=stale_after_h)).pl()
+        return con.sql(
+            tool_days.freshness_sql(),
+            params=tool_days.freshness_params(at=at, day_ago=day_ago, stale_after_h=stale_after_h),
+        ).pl()
     sql = """
 WITH seen AS (
     SELECT metrology_tool AS tool, 'metrology' AS tool_kind, max(measured_at) AS last_seen,
@@ -486,7 +492,9 @@ def ooc_by_tool_layer(
     Columns: tool, layer, signals, points (distinct signalled points), lots, excursions.
     """
     if tool_key not in ("process_tool", "chamber", "metrology_tool", "product"):
-        raise ValueError(f"tool_key {tool_key!r} is not a split column; use process_tool, chamber or metrology_tool")
+        raise ValueError(
+            f"tool_key {tool_key!r} is not a split column; use process_tool, chamber or metrology_tool"
+        )
     sql = f"""
 SELECT coalesce(s.{tool_key}, '(all)') AS tool, s.layer,
        count(*) AS signals, count(DISTINCT g.series_id || '|' || g.point_key) AS points,
@@ -629,8 +637,6 @@ WHERE sample_kind = 'standard_defect' AND (?::VARCHAR IS NULL OR inspection_tool
 ORDER BY inspection_tool, inspected_at
 """
     return _frame(con, sql, [inspection_tool, inspection_tool])
-
-
 
 
 def excursion_point_tools(con: Con) -> pl.DataFrame:

@@ -65,7 +65,9 @@ class Column:
 
     def __post_init__(self) -> None:
         if self.dtype not in DTYPES:
-            raise ValueError(f"column {self.name!r}: unknown dtype {self.dtype!r}; known: {', '.join(DTYPES)}")
+            raise ValueError(
+                f"column {self.name!r}: unknown dtype {self.dtype!r}; known: {', '.join(DTYPES)}"
+            )
         if not self.doc:
             raise ValueError(f"column {self.name!r} needs a doc line")
 
@@ -101,7 +103,9 @@ class Table:
         for c in self.columns:
             if c.name == name:
                 return c
-        raise KeyError(f"column {name!r} is not in table {self.name!r}. Existing columns: {', '.join(self.names)}")
+        raise KeyError(
+            f"column {name!r} is not in table {self.name!r}. Existing columns: {', '.join(self.names)}"
+        )
 
     @property
     def data_columns(self) -> tuple[str, ...]:
@@ -116,9 +120,18 @@ class Table:
 
 def _lineage() -> tuple[Column, ...]:
     return (
-        Column(C_SOURCE_FILE_ID, INT64, nullable=False, doc="Id of the raw export (source_files.file_id) this row came from"),
+        Column(
+            C_SOURCE_FILE_ID,
+            INT64,
+            nullable=False,
+            doc="Id of the raw export (source_files.file_id) this row came from",
+        ),
         Column(C_SOURCE_LINE, INT64, nullable=False, doc="1-based line (or record) in that export"),
-        Column(C_SUPERSEDED_BY, INT64, doc="file_id of the corrected re-export that replaced this row; NULL while current"),
+        Column(
+            C_SUPERSEDED_BY,
+            INT64,
+            doc="file_id of the corrected re-export that replaced this row; NULL while current",
+        ),
     )
 
 
@@ -129,26 +142,54 @@ MEASUREMENTS = Table(
     "Site measurements from CD-SEM (and other) metrology: one row per site, feature, parameter and repeat.",
     (
         Column("lot_id", STRING, nullable=False, doc="Lot id exactly as exported"),
-        Column("wafer_id", STRING, nullable=False, doc="Wafer id (scribe); the identity of a wafer, unlike its slot"),
-        Column("slot", INT64, doc="Slot of the wafer in its carrier at measurement (1..25); informational only"),
+        Column(
+            "wafer_id",
+            STRING,
+            nullable=False,
+            doc="Wafer id (scribe); the identity of a wafer, unlike its slot",
+        ),
+        Column(
+            "slot", INT64, doc="Slot of the wafer in its carrier at measurement (1..25); informational only"
+        ),
         Column("site_id", STRING, nullable=False, doc="Measurement site name or number within the wafer"),
         Column("x_mm", FLOAT64, unit="mm", doc="Site x from the wafer centre"),
         Column("y_mm", FLOAT64, unit="mm", doc="Site y from the wafer centre"),
         Column("product", STRING, nullable=False, doc="Product (device) name"),
         Column("layer", STRING, nullable=False, doc="Layer or metrology step the measurement belongs to"),
         Column("stage", STRING, doc="Process stage of the measured feature: 'develop' (resist) or 'etch'"),
-        Column("parameter", STRING, nullable=False, doc="Measured quantity, e.g. cd_mid, cd_top, lwr, ler, pitch, swa"),
+        Column(
+            "parameter",
+            STRING,
+            nullable=False,
+            doc="Measured quantity, e.g. cd_mid, cd_top, lwr, ler, pitch, swa",
+        ),
         Column("feature", STRING, doc="Measurement target (structure) name at the site; NULL when only one"),
         Column("value", FLOAT64, nullable=False, doc="Measured value in the canonical unit of the parameter"),
-        Column("unit", STRING, nullable=False, doc="Canonical unit of value: 'nm' for lengths, 'deg' for angles"),
+        Column(
+            "unit", STRING, nullable=False, doc="Canonical unit of value: 'nm' for lengths, 'deg' for angles"
+        ),
         Column("measured_at", TIMESTAMP, nullable=False, doc="When the site was measured (UTC)"),
         Column("metrology_tool", STRING, nullable=False, doc="Metrology tool that measured it"),
         Column("recipe", STRING, doc="Metrology recipe"),
-        Column("repeat", INT64, nullable=False, doc="Repeat index of a repeated measurement (1 for a single one)"),
-        Column("sample_kind", STRING, nullable=False, doc="production, monitor, repeat_study, reference_feature"),
+        Column(
+            "repeat", INT64, nullable=False, doc="Repeat index of a repeated measurement (1 for a single one)"
+        ),
+        Column(
+            "sample_kind", STRING, nullable=False, doc="production, monitor, repeat_study, reference_feature"
+        ),
         *_lineage(),
     ),
-    natural_key=("lot_id", "wafer_id", "layer", "parameter", "site_id", "feature", "repeat", "metrology_tool", "measured_at"),
+    natural_key=(
+        "lot_id",
+        "wafer_id",
+        "layer",
+        "parameter",
+        "site_id",
+        "feature",
+        "repeat",
+        "metrology_tool",
+        "measured_at",
+    ),
     supersede_key=("lot_id", "wafer_id", "layer", "parameter", "metrology_tool"),
     is_fact=True,
 )
@@ -166,7 +207,11 @@ INSPECTIONS = Table(
         Column("inspected_at", TIMESTAMP, nullable=False, doc="When the wafer was inspected (UTC)"),
         Column("inspected_area_cm2", FLOAT64, nullable=False, unit="cm2", doc="Area actually inspected"),
         Column("defect_count", INT64, nullable=False, doc="Defects found in the inspected area"),
-        Column("adder_count", INT64, doc="Defects new since the previous inspection of this wafer; NULL if unknown"),
+        Column(
+            "adder_count",
+            INT64,
+            doc="Defects new since the previous inspection of this wafer; NULL if unknown",
+        ),
         Column("sample_kind", STRING, nullable=False, doc="production, monitor, standard_defect"),
         *_lineage(),
     ),
@@ -189,7 +234,15 @@ DEFECT_COUNTS = Table(
         Column("count", INT64, nullable=False, doc="Defects of that class and size"),
         *_lineage(),
     ),
-    natural_key=("lot_id", "wafer_id", "layer", "inspection_tool", "inspected_at", "defect_class", "size_bin"),
+    natural_key=(
+        "lot_id",
+        "wafer_id",
+        "layer",
+        "inspection_tool",
+        "inspected_at",
+        "defect_class",
+        "size_bin",
+    ),
     supersede_key=("lot_id", "wafer_id", "layer", "inspection_tool"),
     is_fact=True,
 )
@@ -263,7 +316,9 @@ SPEC_LIMITS = Table(
         Column("usl", FLOAT64, doc="Upper specification limit (canonical unit); NULL if one-sided"),
         Column("unit", STRING, nullable=False, doc="Canonical unit of the limits"),
         Column("effective_from", TIMESTAMP, nullable=False, doc="First instant the limits apply (UTC)"),
-        Column("effective_to", TIMESTAMP, doc="First instant they no longer apply (UTC); NULL: still in force"),
+        Column(
+            "effective_to", TIMESTAMP, doc="First instant they no longer apply (UTC); NULL: still in force"
+        ),
         *_lineage(),
     ),
     natural_key=("product", "layer", "parameter", "effective_from"),
@@ -278,7 +333,11 @@ REFERENCE_VALUES = Table(
         Column("layer", STRING, nullable=False, doc="Layer"),
         Column("parameter", STRING, nullable=False, doc="Parameter"),
         Column("reference_value", FLOAT64, nullable=False, doc="Reference value (canonical unit)"),
-        Column("reference_uncertainty", FLOAT64, doc="Standard uncertainty (1 sigma) of the reference (canonical unit)"),
+        Column(
+            "reference_uncertainty",
+            FLOAT64,
+            doc="Standard uncertainty (1 sigma) of the reference (canonical unit)",
+        ),
         Column("unit", STRING, nullable=False, doc="Canonical unit"),
         Column("reference_method", STRING, nullable=False, doc="e.g. xsem_tem, afm"),
         Column("measured_at", TIMESTAMP, doc="When the reference was measured (UTC)"),
@@ -307,7 +366,9 @@ SOURCE_FILES = Table(
     (
         Column("file_id", INT64, nullable=False, doc="Warehouse-assigned id"),
         Column("path", STRING, nullable=False, doc="Path as given to ingest"),
-        Column("sha256", STRING, nullable=False, doc="SHA-256 of the file's bytes (the same bytes load once)"),
+        Column(
+            "sha256", STRING, nullable=False, doc="SHA-256 of the file's bytes (the same bytes load once)"
+        ),
         Column("size_bytes", INT64, nullable=False, doc="File size"),
         Column("kind", STRING, doc="Data kind the file held (table name of its main facts)"),
         Column("profile", STRING, doc="Export profile used to read it"),
@@ -315,7 +376,12 @@ SOURCE_FILES = Table(
         Column("rows_loaded", INT64, nullable=False, doc="Fact rows stored from the file"),
         Column("rows_rejected", INT64, nullable=False, doc="Rows sent to the rejects table"),
         Column("rows_skipped", INT64, nullable=False, doc="Rows already stored under the same natural key"),
-        Column("rows_superseded", INT64, nullable=False, doc="Older rows this file's corrected re-export replaced"),
+        Column(
+            "rows_superseded",
+            INT64,
+            nullable=False,
+            doc="Older rows this file's corrected re-export replaced",
+        ),
         Column("loaded_at", TIMESTAMP, nullable=False, doc="When the load finished (UTC)"),
         Column("loaded_by", STRING, nullable=False, doc="User name that ran the load"),
         Column("message", STRING, doc="Error message of a failed file"),
@@ -399,20 +465,46 @@ CHART_PLAN = Table(
     "chart_plan",
     "Entries of the monitoring plans: one row per [[chart]] entry and plan version.",
     (
-        Column("plan_version", INT64, nullable=False, doc="Plan version (plans.plan_version) the entry belongs to"),
+        Column(
+            "plan_version",
+            INT64,
+            nullable=False,
+            doc="Plan version (plans.plan_version) the entry belongs to",
+        ),
         Column("chart", STRING, nullable=False, doc="Entry name, unique within a plan (the chart's id)"),
         Column("layer", STRING, nullable=False, doc="Layer selector; '*' and '?' wildcards allowed"),
-        Column("parameter", STRING, nullable=False, doc="Parameter selector (or defect class for densities); wildcards allowed"),
+        Column(
+            "parameter",
+            STRING,
+            nullable=False,
+            doc="Parameter selector (or defect class for densities); wildcards allowed",
+        ),
         Column("product", STRING, nullable=False, doc="Product selector; '*' for every product"),
         Column("stage", STRING, nullable=False, doc="Stage selector (develop / etch); '*' for any"),
         Column("sample_kind", STRING, nullable=False, doc="Sample kind selected (production, monitor, ...)"),
-        Column("statistic", STRING, nullable=False, doc="Charted statistic: site_value, wafer_mean, wafer_sd, ..."),
-        Column("split_json", STRING, nullable=False, doc="JSON list of split keys (process_tool, chamber, ...)"),
+        Column(
+            "statistic",
+            STRING,
+            nullable=False,
+            doc="Charted statistic: site_value, wafer_mean, wafer_sd, ...",
+        ),
+        Column(
+            "split_json", STRING, nullable=False, doc="JSON list of split keys (process_tool, chamber, ...)"
+        ),
         Column("step", STRING, doc="Route step whose process tool/chamber made the layer (for tool splits)"),
-        Column("chart_type", STRING, nullable=False, doc="individuals, xbar_s, xbar_r, ewma, cusum, u, laney_u"),
-        Column("params_json", STRING, nullable=False, doc="JSON object of chart parameters (lambda, L, k, h, ...)"),
+        Column(
+            "chart_type", STRING, nullable=False, doc="individuals, xbar_s, xbar_r, ewma, cusum, u, laney_u"
+        ),
+        Column(
+            "params_json",
+            STRING,
+            nullable=False,
+            doc="JSON object of chart parameters (lambda, L, k, h, ...)",
+        ),
         Column("rules_json", STRING, nullable=False, doc="JSON list of run-rule ids (default ['we1'])"),
-        Column("baseline_json", STRING, nullable=False, doc="JSON object: {'first': N} or {'from': ts, 'to': ts}"),
+        Column(
+            "baseline_json", STRING, nullable=False, doc="JSON object: {'first': N} or {'from': ts, 'to': ts}"
+        ),
         Column("severity", STRING, nullable=False, doc="low, medium, high or critical"),
         Column("spec_check", BOOL, nullable=False, doc="Whether out-of-spec points raise an `oos` signal"),
         Column("line", INT64, nullable=False, doc="Line of the entry's [[chart]] header in the plan file"),
@@ -432,7 +524,12 @@ CHART_SERIES = Table(
         Column("chamber", STRING, doc="Chamber of the series when split by it"),
         Column("metrology_tool", STRING, doc="Metrology or inspection tool when split by it"),
         Column("product", STRING, doc="Product of the series when split by it"),
-        Column("created_at", TIMESTAMP, nullable=False, doc="When the series first appeared in an evaluation (UTC)"),
+        Column(
+            "created_at",
+            TIMESTAMP,
+            nullable=False,
+            doc="When the series first appeared in an evaluation (UTC)",
+        ),
     ),
 )
 
@@ -444,18 +541,37 @@ CONTROL_LIMITS = Table(
         Column("version", INT64, nullable=False, doc="1, 2, ... per series; the highest is in force"),
         Column("center", FLOAT64, nullable=False, doc="Centre line of the charted statistic"),
         Column("sigma", FLOAT64, nullable=False, doc="Sigma of the charted statistic (one point)"),
-        Column("sigma_level", STRING, nullable=False, doc="Level the sigma belongs to: site, wafer, lot, count"),
-        Column("sigma_source", STRING, nullable=False, doc="How sigma was chosen, e.g. variance_components, moving_range"),
-        Column("k_sigma", FLOAT64, nullable=False, doc="Width of the Shewhart limits in sigmas (3 unless the plan says)"),
+        Column(
+            "sigma_level", STRING, nullable=False, doc="Level the sigma belongs to: site, wafer, lot, count"
+        ),
+        Column(
+            "sigma_source",
+            STRING,
+            nullable=False,
+            doc="How sigma was chosen, e.g. variance_components, moving_range",
+        ),
+        Column(
+            "k_sigma",
+            FLOAT64,
+            nullable=False,
+            doc="Width of the Shewhart limits in sigmas (3 unless the plan says)",
+        ),
         Column("lcl", FLOAT64, doc="Lower control limit of the statistic (NULL when one-sided)"),
         Column("ucl", FLOAT64, doc="Upper control limit of the statistic"),
-        Column("n_ref", FLOAT64, doc="Reference subgroup size / area the sigma is given for (attribute charts)"),
+        Column(
+            "n_ref", FLOAT64, doc="Reference subgroup size / area the sigma is given for (attribute charts)"
+        ),
         Column("overdispersion", FLOAT64, doc="Laney sigma_z (u' charts); NULL otherwise"),
         Column("baseline_from", TIMESTAMP, doc="First point time of the baseline (UTC)"),
         Column("baseline_to", TIMESTAMP, doc="Last point time of the baseline (UTC)"),
         Column("baseline_n", INT64, nullable=False, doc="Points (subgroups) in the baseline"),
         Column("frozen_at", TIMESTAMP, nullable=False, doc="When the version was frozen (UTC)"),
-        Column("frozen_by", STRING, nullable=False, doc="User that froze it; 'lotline-auto' for automatic freezes"),
+        Column(
+            "frozen_by",
+            STRING,
+            nullable=False,
+            doc="User that froze it; 'lotline-auto' for automatic freezes",
+        ),
         Column("reason", STRING, nullable=False, doc="Why the limits were (re)frozen"),
     ),
 )
@@ -466,17 +582,40 @@ SIGNALS = Table(
     (
         Column("signal_id", INT64, nullable=False, doc="Warehouse-assigned id"),
         Column("series_id", INT64, nullable=False, doc="Series (chart_series.series_id)"),
-        Column("point_key", STRING, nullable=False, doc="Identity of the point within the series (lot|wafer|site...)"),
+        Column(
+            "point_key",
+            STRING,
+            nullable=False,
+            doc="Identity of the point within the series (lot|wafer|site...)",
+        ),
         Column("lot_id", STRING, nullable=False, doc="Lot of the point"),
         Column("wafer_id", STRING, doc="Wafer of the point; NULL for lot-level points"),
-        Column("point_at", TIMESTAMP, nullable=False, doc="Time of the point (first measurement or inspection, UTC)"),
-        Column("point_seq", INT64, nullable=False, doc="1-based position of the point in its series at evaluation"),
-        Column("rule", STRING, nullable=False, doc="Rule id: we1..we4, n1..n8, ewma, cusum_hi, cusum_lo, oos"),
+        Column(
+            "point_at",
+            TIMESTAMP,
+            nullable=False,
+            doc="Time of the point (first measurement or inspection, UTC)",
+        ),
+        Column(
+            "point_seq",
+            INT64,
+            nullable=False,
+            doc="1-based position of the point in its series at evaluation",
+        ),
+        Column(
+            "rule", STRING, nullable=False, doc="Rule id: we1..we4, n1..n8, ewma, cusum_hi, cusum_lo, oos"
+        ),
         Column("value", FLOAT64, nullable=False, doc="Charted value of the point"),
-        Column("statistic", FLOAT64, doc="Chart statistic that crossed (EWMA z, CUSUM sum); NULL for rules on values"),
+        Column(
+            "statistic",
+            FLOAT64,
+            doc="Chart statistic that crossed (EWMA z, CUSUM sum); NULL for rules on values",
+        ),
         Column("limit_version", INT64, doc="control_limits.version in force; NULL for oos signals"),
         Column("severity", STRING, nullable=False, doc="Severity of the plan entry"),
-        Column("first_detected_at", TIMESTAMP, nullable=False, doc="Evaluation time that first found it (UTC)"),
+        Column(
+            "first_detected_at", TIMESTAMP, nullable=False, doc="Evaluation time that first found it (UTC)"
+        ),
         Column("withdrawn_at", TIMESTAMP, doc="When it was withdrawn (UTC); NULL while standing"),
         Column("withdrawn_reason", STRING, doc="Why: superseded data, re-evaluation no longer finds it, ..."),
         Column("excursion_id", INT64, doc="Excursion the signal belongs to"),
@@ -495,7 +634,9 @@ EXCURSIONS = Table(
         Column("first_at", TIMESTAMP, nullable=False, doc="Time of its first signalled point (UTC)"),
         Column("last_at", TIMESTAMP, nullable=False, doc="Time of its last signalled point (UTC)"),
         Column("rules_json", STRING, nullable=False, doc="JSON list of the rules that fired, sorted"),
-        Column("lots_json", STRING, nullable=False, doc="JSON list of the lots of its signalled points, sorted"),
+        Column(
+            "lots_json", STRING, nullable=False, doc="JSON list of the lots of its signalled points, sorted"
+        ),
         Column("n_signals", INT64, nullable=False, doc="Standing (not withdrawn) signals in it"),
         Column("opened_at", TIMESTAMP, nullable=False, doc="When the excursion was opened (UTC)"),
     ),
@@ -508,7 +649,9 @@ EXCURSION_AUDIT = Table(
         Column("audit_id", INT64, nullable=False, doc="Warehouse-assigned id, increasing"),
         Column("excursion_id", INT64, nullable=False, doc="Excursion (excursions.excursion_id)"),
         Column("changed_at", TIMESTAMP, nullable=False, doc="When (UTC)"),
-        Column("changed_by", STRING, nullable=False, doc="User; 'lotline-auto' for changes made by evaluation"),
+        Column(
+            "changed_by", STRING, nullable=False, doc="User; 'lotline-auto' for changes made by evaluation"
+        ),
         Column("from_state", STRING, doc="State before (NULL when the excursion was opened)"),
         Column("to_state", STRING, nullable=False, doc="State after"),
         Column("classification", STRING, doc="real, measurement or false_alarm"),
@@ -545,7 +688,9 @@ EVALUATION_RUNS = Table(
         Column("finished_at", TIMESTAMP, nullable=False, doc="End (UTC)"),
         Column("mode", STRING, nullable=False, doc="full or incremental"),
         Column("plan_version", INT64, nullable=False, doc="Plan version evaluated"),
-        Column("watermark_file_id", INT64, nullable=False, doc="Highest source_files.file_id the run covered"),
+        Column(
+            "watermark_file_id", INT64, nullable=False, doc="Highest source_files.file_id the run covered"
+        ),
         Column("series", INT64, nullable=False, doc="Series evaluated"),
         Column("points", INT64, nullable=False, doc="Points read"),
         Column("signals_new", INT64, nullable=False, doc="Signals added"),
@@ -559,10 +704,16 @@ LOT_FIRST_FILES = Table(
     "Per fact table and lot, the first source file holding rows of the lot (lets incremental evaluation skip "
     "older files).",
     (
-        Column("table_name", STRING, nullable=False, doc="Fact table (measurements, inspections, defect_counts, "
-               "process_history)"),
+        Column(
+            "table_name",
+            STRING,
+            nullable=False,
+            doc="Fact table (measurements, inspections, defect_counts, process_history)",
+        ),
         Column("lot_id", STRING, nullable=False, doc="Lot id"),
-        Column("first_file_id", INT64, nullable=False, doc="Smallest source_files.file_id with rows of the lot"),
+        Column(
+            "first_file_id", INT64, nullable=False, doc="Smallest source_files.file_id with rows of the lot"
+        ),
     ),
 )
 
@@ -583,7 +734,9 @@ CHART_POINTS = Table(
         Column("sigma", FLOAT64, doc="Sigma of this point under that version (varies with area on u charts)"),
         Column("lcl", FLOAT64, doc="Lower control limit of this point (center - k sigma)"),
         Column("ucl", FLOAT64, doc="Upper control limit of this point (center + k sigma)"),
-        Column("limit_version", INT64, doc="Limit version the point was evaluated with (NULL before a freeze)"),
+        Column(
+            "limit_version", INT64, doc="Limit version the point was evaluated with (NULL before a freeze)"
+        ),
     ),
 )
 
@@ -594,10 +747,19 @@ TOOL_DAYS = Table(
     (
         Column("tool", STRING, nullable=False, doc="Metrology, inspection or process tool"),
         Column("tool_kind", STRING, nullable=False, doc="metrology, inspection or process"),
-        Column("day", TIMESTAMP, nullable=False, doc="UTC day (midnight) of measured_at, inspected_at or started_at"),
+        Column(
+            "day",
+            TIMESTAMP,
+            nullable=False,
+            doc="UTC day (midnight) of measured_at, inspected_at or started_at",
+        ),
         Column("n_rows", INT64, nullable=False, doc="Current (not superseded) rows of the tool on that day"),
-        Column("last_seen", TIMESTAMP, nullable=False,
-               doc="Newest measured_at, inspected_at or coalesce(ended_at, started_at) of those rows (UTC)"),
+        Column(
+            "last_seen",
+            TIMESTAMP,
+            nullable=False,
+            doc="Newest measured_at, inspected_at or coalesce(ended_at, started_at) of those rows (UTC)",
+        ),
     ),
 )
 

@@ -44,8 +44,15 @@ from warehouse import schema
 from warehouse.errors import ConfigError
 from warehouse.plan import PlanEntry
 
-SUPPORTED_STATISTICS = ("site_value", "wafer_mean", "wafer_sd", "wafer_range", "lot_mean", "defect_density",
-                        "adder_density")
+SUPPORTED_STATISTICS = (
+    "site_value",
+    "wafer_mean",
+    "wafer_sd",
+    "wafer_range",
+    "lot_mean",
+    "defect_density",
+    "adder_density",
+)
 """Plan statistics whose points this engine computes."""
 SPLIT_COLUMNS = ("process_tool", "chamber", "metrology_tool", "product")
 FACT_TABLES = ("measurements", "inspections", "defect_counts", "process_history", "spec_limits")
@@ -82,14 +89,17 @@ def spark_session(master: str = DEFAULT_MASTER, *, shuffle_partitions: int | Non
     try:
         from pyspark.sql import SparkSession
     except ImportError as exc:
-        raise ConfigError("the spark extra is not installed", found="no module pyspark",
-                          fix="pip install 'lotline[spark]'") from exc
+        raise ConfigError(
+            "the spark extra is not installed", found="no module pyspark", fix="pip install 'lotline[spark]'"
+        ) from exc
     os.environ.setdefault("PYSPARK_PYTHON", sys.executable)
     os.environ.setdefault("PYSPARK_DRIVER_PYTHON", sys.executable)
     builder = SparkSession.builder.master(master).appName("lotline-evaluate")
     if master.startswith("local"):
         os.environ.setdefault("SPARK_LOCAL_IP", "127.0.0.1")
-        builder = builder.config("spark.driver.bindAddress", "127.0.0.1").config("spark.driver.host", "127.0.0.1")
+        builder = builder.config("spark.driver.bindAddress", "127.0.0.1").config(
+            "spark.driver.host", "127.0.0.1"
+        )
     builder = (
         builder.config("spark.ui.enabled", "false")
         .config("spark.ui.showConsoleProgress", "false")
@@ -110,8 +120,13 @@ def spark_session(master: str = DEFAULT_MASTER, *, shuffle_partitions: int | Non
 
 
 def _spark_type(dtype: str) -> str:
-    return {schema.STRING: "string", schema.INT64: "bigint", schema.FLOAT64: "double",
-            schema.TIMESTAMP: "timestamp_ntz", schema.BOOL: "boolean"}[dtype]
+    return {
+        schema.STRING: "string",
+        schema.INT64: "bigint",
+        schema.FLOAT64: "double",
+        schema.TIMESTAMP: "timestamp_ntz",
+        schema.BOOL: "boolean",
+    }[dtype]
 
 
 def read_current(spark, lake: str | os.PathLike[str], table: str):
@@ -148,9 +163,12 @@ def check_entries(entries) -> None:
     """Refuse plan entries whose statistic this engine cannot compute (names them all)."""
     bad = [f"{e.name} ({e.statistic})" for e in entries if e.statistic not in SUPPORTED_STATISTICS]
     if bad:
-        raise ConfigError("the spark engine cannot evaluate these charts", found=", ".join(bad),
-                          expected=", ".join(SUPPORTED_STATISTICS),
-                          fix="evaluate them with the local engine (`lotline evaluate`)")
+        raise ConfigError(
+            "the spark engine cannot evaluate these charts",
+            found=", ".join(bad),
+            expected=", ".join(SUPPORTED_STATISTICS),
+            fix="evaluate them with the local engine (`lotline evaluate`)",
+        )
 
 
 def _uses_history(e: PlanEntry) -> bool:
@@ -162,8 +180,11 @@ def points_sql(e: PlanEntry, i: int) -> tuple[str, dict]:
 
     Mirrors ``warehouse.points.points_sql`` (scope ``current``); ``i`` makes the argument names unique.
     """
-    a = {f"layer{i}": pts_mod.glob_regex(e.layer), f"product{i}": pts_mod.glob_regex(e.product),
-         f"kind{i}": e.sample_kind}
+    a = {
+        f"layer{i}": pts_mod.glob_regex(e.layer),
+        f"product{i}": pts_mod.glob_regex(e.product),
+        f"kind{i}": e.sample_kind,
+    }
     p = f"{i}"
     if e.is_defect:
         inner = _defect_inner(e, p, a)
@@ -181,28 +202,36 @@ def points_sql(e: PlanEntry, i: int) -> tuple[str, dict]:
         # metrology_tool is a column of w already
     if _uses_history(e):
         a[f"step{i}"] = e.step
-        ctes.insert(0, f"""h AS (
+        ctes.insert(
+            0,
+            f"""h AS (
     SELECT lot_id, wafer_id, process_tool, chamber FROM (
         SELECT ph.lot_id, ph.wafer_id, ph.process_tool, ph.chamber, row_number() OVER (
             PARTITION BY ph.lot_id, ph.wafer_id ORDER BY ph.started_at DESC, ph._source_file_id DESC) AS _rn
-        FROM process_history ph WHERE ph.step = :step{p}) WHERE _rn = 1)""")
-        joins = ("LEFT JOIN h hw ON hw.lot_id = w.lot_id AND hw.wafer_id = w.wafer_id "
-                 "LEFT JOIN h hl ON hl.lot_id = w.lot_id AND hl.wafer_id IS NULL")
+        FROM process_history ph WHERE ph.step = :step{p}) WHERE _rn = 1)""",
+        )
+        joins = (
+            "LEFT JOIN h hw ON hw.lot_id = w.lot_id AND hw.wafer_id = w.wafer_id "
+            "LEFT JOIN h hl ON hl.lot_id = w.lot_id AND hl.wafer_id IS NULL"
+        )
         where = "WHERE coalesce(hw.lot_id, hl.lot_id) IS NOT NULL"
     sel_split = (", " + ", ".join(split_sel)) if split_sel else ""
     joined = f"SELECT w.*{sel_split} FROM w {joins} {where}"
     if e.statistic == "lot_mean":
-        keys = ", ".join(["layer", "parameter", "metrology_tool", *[s for s in e.split if s != "metrology_tool"]])
+        keys = ", ".join(
+            ["layer", "parameter", "metrology_tool", *[s for s in e.split if s != "metrology_tool"]]
+        )
         joined = f"""
 SELECT {keys}, lot_id, CAST(NULL AS STRING) AS wafer_id, concat(lot_id, '|', metrology_tool) AS point_key,
        min(point_at) AS point_at, sum(value * n) / sum(n) AS value, sum(n) AS n, min(vmin) AS vmin,
        max(vmax) AS vmax, CAST(NULL AS DOUBLE) AS area_cm2, any_value(product_any) AS product_any
 FROM ({joined}) j GROUP BY {keys}, lot_id"""
     ctes.append(f"p AS ({joined})")
-    splits = ", ".join(
-        f"p.{s}" if s in e.split else f"CAST(NULL AS STRING) AS {s}" for s in SPLIT_COLUMNS)
-    base = (f"SELECT '{_chart_literal(e.name)}' AS chart, p.layer, p.parameter, {splits}, p.lot_id, p.wafer_id, "
-            "p.point_key, p.point_at, p.value, CAST(p.n AS BIGINT) AS n, p.vmin, p.vmax, p.area_cm2, p.product_any")
+    splits = ", ".join(f"p.{s}" if s in e.split else f"CAST(NULL AS STRING) AS {s}" for s in SPLIT_COLUMNS)
+    base = (
+        f"SELECT '{_chart_literal(e.name)}' AS chart, p.layer, p.parameter, {splits}, p.lot_id, p.wafer_id, "
+        "p.point_key, p.point_at, p.value, CAST(p.n AS BIGINT) AS n, p.vmin, p.vmax, p.area_cm2, p.product_any"
+    )
     if e.is_defect or e.statistic not in ("site_value", "wafer_mean", "lot_mean") or not e.spec_check:
         body = f"{base}, CAST(NULL AS DOUBLE) AS lsl, CAST(NULL AS DOUBLE) AS usl FROM p"
     else:
@@ -213,22 +242,30 @@ FROM ({joined}) j GROUP BY {keys}, lot_id"""
         LEFT JOIN spec_limits s ON s.layer = p.layer AND s.parameter = p.parameter
              AND (s.product = p.product_any OR s.product = '*') AND p.point_at >= s.effective_from
              AND (s.effective_to IS NULL OR p.point_at < s.effective_to)) q) WHERE _rn = 1"""
-    cols = ("chart, layer, parameter, " + ", ".join(SPLIT_COLUMNS) + ", lot_id, wafer_id, point_key, point_at, "
-            "value, n, vmin, vmax, area_cm2, product_any, lsl, usl")
+    cols = (
+        "chart, layer, parameter, " + ", ".join(SPLIT_COLUMNS) + ", lot_id, wafer_id, point_key, point_at, "
+        "value, n, vmin, vmax, area_cm2, product_any, lsl, usl"
+    )
     return f"WITH {', '.join(ctes)}\nSELECT {cols} FROM ({body}) b", a
 
 
 def _chart_literal(name: str) -> str:
     # plan entry names are validated identifiers; refuse anything that could leave the literal
     if "'" in name or "\\" in name:
-        raise ConfigError("chart name not usable by the spark engine", found=name, expected="no quotes or backslashes",
-                          fix="rename the chart in the plan")
+        raise ConfigError(
+            "chart name not usable by the spark engine",
+            found=name,
+            expected="no quotes or backslashes",
+            fix="rename the chart in the plan",
+        )
     return name
 
 
 def _measurement_inner(e: PlanEntry, p: str) -> str:
-    sel = (f"f.layer RLIKE :layer{p} AND f.parameter RLIKE :parameter{p} AND f.product RLIKE :product{p} "
-           f"AND (:stage{p} = '*' OR f.stage = :stage{p}) AND f.sample_kind = :kind{p}")
+    sel = (
+        f"f.layer RLIKE :layer{p} AND f.parameter RLIKE :parameter{p} AND f.product RLIKE :product{p} "
+        f"AND (:stage{p} = '*' OR f.stage = :stage{p}) AND f.sample_kind = :kind{p}"
+    )
     if e.statistic == "site_value":
         return f"""
 SELECT f.layer, f.parameter, f.metrology_tool, f.lot_id, f.wafer_id,
@@ -256,8 +293,10 @@ GROUP BY f.layer, f.parameter, f.metrology_tool, f.lot_id, f.wafer_id {having}""
 
 def _defect_inner(e: PlanEntry, p: str, args: dict) -> str:
     sel = f"f.layer RLIKE :layer{p} AND f.product RLIKE :product{p} AND f.sample_kind = :kind{p}"
-    key = (f"concat(f.lot_id, '|', f.wafer_id, '|', f.inspection_tool, '|', "
-           f"date_format(f.inspected_at, \"{_TS_FORMAT}\"))")
+    key = (
+        f"concat(f.lot_id, '|', f.wafer_id, '|', f.inspection_tool, '|', "
+        f'date_format(f.inspected_at, "{_TS_FORMAT}"))'
+    )
     if e.statistic == "adder_density":
         return f"""
 SELECT f.layer, 'adders' AS parameter, f.inspection_tool AS metrology_tool, f.lot_id, f.wafer_id, {key} AS point_key,
@@ -312,14 +351,33 @@ def plan_points(spark, lake, entries):
     limits = _read_snapshot(spark, lake, "control_limits")
     if limits is not None:
         newest = Window.partitionBy("series_id").orderBy(F.col("version").desc())
-        lim = (limits.withColumn("_rn", F.row_number().over(newest)).where("_rn = 1")
-               .select("series_id", F.col("version").alias("limit_version"), "center",
-                       F.col("sigma").alias("lim_sigma"), "n_ref", "overdispersion"))
+        lim = (
+            limits.withColumn("_rn", F.row_number().over(newest))
+            .where("_rn = 1")
+            .select(
+                "series_id",
+                F.col("version").alias("limit_version"),
+                "center",
+                F.col("sigma").alias("lim_sigma"),
+                "n_ref",
+                "overdispersion",
+            )
+        )
         pts = pts.join(lim, on="series_id", how="left")
     else:
-        pts = pts.select("*", *[F.lit(None).cast(t).alias(c) for c, t in (
-            ("limit_version", "bigint"), ("center", "double"), ("lim_sigma", "double"), ("n_ref", "double"),
-            ("overdispersion", "double"))])
+        pts = pts.select(
+            "*",
+            *[
+                F.lit(None).cast(t).alias(c)
+                for c, t in (
+                    ("limit_version", "bigint"),
+                    ("center", "double"),
+                    ("lim_sigma", "double"),
+                    ("n_ref", "double"),
+                    ("overdispersion", "double"),
+                )
+            ],
+        )
     return pts, cached
 
 
@@ -332,12 +390,22 @@ GROUP_COLUMNS = ("chart", "series_id", "layer", "parameter", *SPLIT_COLUMNS)
 def _arrow_schema():
     import pyarrow as pa
 
-    return pa.schema([
-        ("series_id", pa.int64()), ("chart", pa.string()), ("point_key", pa.string()), ("lot_id", pa.string()),
-        ("wafer_id", pa.string()), ("point_at", pa.timestamp("us")), ("point_seq", pa.int64()),
-        ("rule", pa.string()), ("value", pa.float64()), ("statistic", pa.float64()),
-        ("limit_version", pa.int64()), ("severity", pa.string()),
-    ])
+    return pa.schema(
+        [
+            ("series_id", pa.int64()),
+            ("chart", pa.string()),
+            ("point_key", pa.string()),
+            ("lot_id", pa.string()),
+            ("wafer_id", pa.string()),
+            ("point_at", pa.timestamp("us")),
+            ("point_seq", pa.int64()),
+            ("rule", pa.string()),
+            ("value", pa.float64()),
+            ("statistic", pa.float64()),
+            ("limit_version", pa.int64()),
+            ("severity", pa.string()),
+        ]
+    )
 
 
 def evaluate_series(entries: dict[str, PlanEntry], table):
@@ -357,20 +425,38 @@ def evaluate_series(entries: dict[str, PlanEntry], table):
     sid = df["series_id"][0]
     key = -1 if sid is None else int(sid)
     pts = df.sort("point_at", "point_key").with_columns(
-        pl.lit(key, pl.Int64).alias("series_id"), (pl.int_range(pl.len()) + 1).cast(pl.Int64).alias("seq"))
+        pl.lit(key, pl.Int64).alias("series_id"), (pl.int_range(pl.len()) + 1).cast(pl.Int64).alias("seq")
+    )
     lv = pts["limit_version"][0]
-    limits = {} if lv is None else {key: {
-        "version": int(lv), "center": pts["center"][0], "sigma": pts["lim_sigma"][0], "n_ref": pts["n_ref"][0],
-        "overdispersion": pts["overdispersion"][0]}}
+    limits = (
+        {}
+        if lv is None
+        else {
+            key: {
+                "version": int(lv),
+                "center": pts["center"][0],
+                "sigma": pts["lim_sigma"][0],
+                "n_ref": pts["n_ref"][0],
+                "overdispersion": pts["overdispersion"][0],
+            }
+        }
+    )
     pts = pts.drop("limit_version", "center", "lim_sigma", "n_ref", "overdispersion")
     pts = evaluate._with_limits(SimpleNamespace(limits=limits), e, pts)
     sig, _, _ = evaluate._signals(e, pts, state=None, context=None)
     out = sig.select(
-        pl.lit(sid, pl.Int64).alias("series_id"), pl.lit(e.name).alias("chart"),
-        pl.col("point_key").cast(pl.String), pl.col("lot_id").cast(pl.String), pl.col("wafer_id").cast(pl.String),
-        pl.col("point_at").cast(pl.Datetime("us")), pl.col("seq").cast(pl.Int64).alias("point_seq"),
-        pl.col("rule").cast(pl.String), pl.col("value").cast(pl.Float64), pl.col("statistic").cast(pl.Float64),
-        pl.col("limit_version").cast(pl.Int64), pl.lit(e.severity).alias("severity"),
+        pl.lit(sid, pl.Int64).alias("series_id"),
+        pl.lit(e.name).alias("chart"),
+        pl.col("point_key").cast(pl.String),
+        pl.col("lot_id").cast(pl.String),
+        pl.col("wafer_id").cast(pl.String),
+        pl.col("point_at").cast(pl.Datetime("us")),
+        pl.col("seq").cast(pl.Int64).alias("point_seq"),
+        pl.col("rule").cast(pl.String),
+        pl.col("value").cast(pl.Float64),
+        pl.col("statistic").cast(pl.Float64),
+        pl.col("limit_version").cast(pl.Int64),
+        pl.lit(e.severity).alias("severity"),
     )
     return out.to_arrow().cast(target)
 
@@ -391,8 +477,11 @@ def evaluate_lake(lake: str | os.PathLike[str], *, master: str = DEFAULT_MASTER,
     lake = Path(lake)
     plan = lake_mod.read_lake_plan(lake) if (lake / lake_mod.MANIFEST).exists() else None
     if plan is None:
-        raise ConfigError("the lake holds no monitoring plan", path=str(lake),
-                          fix="load a plan, then run `lotline lake export DIR` to export it with the facts")
+        raise ConfigError(
+            "the lake holds no monitoring plan",
+            path=str(lake),
+            fix="load a plan, then run `lotline lake export DIR` to export it with the facts",
+        )
     check_entries(plan.entries)
     own = spark is None
     t0 = time.perf_counter()
@@ -417,16 +506,23 @@ def _run(spark, lake: Path, plan) -> dict:
     pts, cached = plan_points(spark, lake, plan.entries)
     pts = pts.persist()
     try:
-        counts = pts.agg(F.count(F.lit(1)).alias("points"),
-                         F.count_distinct(*[F.coalesce(F.col(c).cast("string"), F.lit("\x00")) for c in GROUP_COLUMNS])
-                         .alias("series")).collect()[0]
+        counts = pts.agg(
+            F.count(F.lit(1)).alias("points"),
+            F.count_distinct(
+                *[F.coalesce(F.col(c).cast("string"), F.lit("\x00")) for c in GROUP_COLUMNS]
+            ).alias("series"),
+        ).collect()[0]
         fn = functools.partial(evaluate_series, entries)
         with _quiet():
             sig = pts.groupBy(*GROUP_COLUMNS).applyInArrow(fn, schema=SIGNAL_SCHEMA)
         seq = lake_mod.next_snapshot_id(lake)
         out_dir = lake / OUTPUT_TABLE / f"snapshot={seq}"
-        (sig.withColumn("month", F.date_format("point_at", "yyyy-MM"))
-            .write.mode("errorifexists").partitionBy("month").parquet(str(out_dir)))
+        (
+            sig.withColumn("month", F.date_format("point_at", "yyyy-MM"))
+            .write.mode("errorifexists")
+            .partitionBy("month")
+            .parquet(str(out_dir))
+        )
     finally:
         pts.unpersist()
         for df in cached:
@@ -434,8 +530,15 @@ def _run(spark, lake: Path, plan) -> dict:
     files = sorted(str(f) for f in out_dir.rglob("*.parquet"))
     rows = _rows(files)
     lake_mod.register_snapshot(lake, OUTPUT_TABLE, files, rows, seq)
-    return {"table": OUTPUT_TABLE, "snapshot": seq, "series": int(counts["series"]), "points": int(counts["points"]),
-            "signals": rows, "files": len(files), "notices": []}
+    return {
+        "table": OUTPUT_TABLE,
+        "snapshot": seq,
+        "series": int(counts["series"]),
+        "points": int(counts["points"]),
+        "signals": rows,
+        "files": len(files),
+        "notices": [],
+    }
 
 
 def _rows(files: list[str]) -> int:

@@ -104,7 +104,11 @@ def _m4_derived_tables(con: duckdb.DuckDBPyConnection) -> None:
 
 MIGRATIONS: list[Migration] = [
     (1, "canonical fact and operation tables", _m1_core),
-    (2, "monitoring plan, series, control limits, signals, excursions, audit, evaluation state", _m2_monitoring),
+    (
+        2,
+        "monitoring plan, series, control limits, signals, excursions, audit, evaluation state",
+        _m2_monitoring,
+    ),
     (3, "lot first-file index for incremental evaluation", _m3_lot_first_files),
     (4, "derived tables: evaluated chart points, rows and last seen per tool and day", _m4_derived_tables),
 ]
@@ -208,9 +212,16 @@ class Batch:
     MAX_S = 2.0
     MAX_UNITS = 50
 
-    def __init__(self, path: str | os.PathLike[str] | None = None, *, create: bool = False,
-                 wait_s: float = DEFAULT_WAIT_S, max_s: float = MAX_S, max_units: int = MAX_UNITS,
-                 on_open: Callable[[duckdb.DuckDBPyConnection], None] | None = None) -> None:
+    def __init__(
+        self,
+        path: str | os.PathLike[str] | None = None,
+        *,
+        create: bool = False,
+        wait_s: float = DEFAULT_WAIT_S,
+        max_s: float = MAX_S,
+        max_units: int = MAX_UNITS,
+        on_open: Callable[[duckdb.DuckDBPyConnection], None] | None = None,
+    ) -> None:
         self.path, self.create, self.wait_s = path, create, wait_s
         self.max_s, self.max_units, self.on_open = max_s, max_units, on_open
         self._cm = None
@@ -286,7 +297,9 @@ def _connect_with_retry(path: Path, *, read_only: bool, wait_s: float) -> duckdb
             text = str(exc)
             if "lock" not in text.lower():
                 raise WarehouseError(
-                    "cannot open warehouse", path=str(path), details=text.splitlines()[0],
+                    "cannot open warehouse",
+                    path=str(path),
+                    details=text.splitlines()[0],
                     fix="check that the file is a lotline warehouse (a DuckDB file) and readable",
                 ) from exc
             if time.monotonic() + delay > deadline:
@@ -304,7 +317,9 @@ def _connect_with_retry(path: Path, *, read_only: bool, wait_s: float) -> duckdb
             delay = min(delay * 2, 0.5)
         except duckdb.Error as exc:
             raise WarehouseError(
-                "cannot open warehouse", path=str(path), details=str(exc).splitlines()[0],
+                "cannot open warehouse",
+                path=str(path),
+                details=str(exc).splitlines()[0],
                 fix="check that the file is a lotline warehouse (a DuckDB file) made by DuckDB 2",
             ) from exc
 
@@ -333,7 +348,9 @@ def transaction(con: duckdb.DuckDBPyConnection) -> Iterator[duckdb.DuckDBPyConne
 
 def bump_data_version(con: duckdb.DuckDBPyConnection) -> int:
     """Increase the warehouse's data version (call inside the write's transaction); return the new one."""
-    con.execute("UPDATE meta SET value = CAST(CAST(value AS BIGINT) + 1 AS VARCHAR) WHERE key = 'data_version'")
+    con.execute(
+        "UPDATE meta SET value = CAST(CAST(value AS BIGINT) + 1 AS VARCHAR) WHERE key = 'data_version'"
+    )
     return int(con.execute("SELECT value FROM meta WHERE key = 'data_version'").fetchall()[0][0])
 
 

@@ -43,7 +43,9 @@ def _newest_loaded(con, *, below: int | None = None) -> int:
 
 def _covered(con) -> int:
     rows = con.execute("SELECT value FROM meta WHERE key = ?", [META_KEY]).fetchall()
-    return int(rows[0][0]) if rows else 0  # absent: no file yet (migration 4 fills the table of a used warehouse)
+    return (
+        int(rows[0][0]) if rows else 0
+    )  # absent: no file yet (migration 4 fills the table of a used warehouse)
 
 
 def _set_covered(con, file_id: int) -> None:
@@ -80,9 +82,12 @@ def refresh_for_file(con, *, file_id: int, superseded_files: list[int]) -> None:
         return
     lo, hi = (min(superseded_files), max(superseded_files)) if superseded_files else (None, None)
     for kind, table, tool, day, last in SOURCES:
-        old = ("" if lo is None else
-               f" UNION SELECT DISTINCT f.{tool} AS tool, date_trunc('day', f.{day})::TIMESTAMP AS day FROM {table} f"
-               " WHERE f._superseded_by = $fid AND f._source_file_id BETWEEN $lo AND $hi")
+        old = (
+            ""
+            if lo is None
+            else f" UNION SELECT DISTINCT f.{tool} AS tool, date_trunc('day', f.{day})::TIMESTAMP AS day FROM {table} f"
+            " WHERE f._superseded_by = $fid AND f._source_file_id BETWEEN $lo AND $hi"
+        )
         params = {"fid": file_id} if lo is None else {"fid": file_id, "lo": lo, "hi": hi}
         con.execute(
             "CREATE OR REPLACE TEMP TABLE __lotline_tool_days AS "
@@ -142,5 +147,10 @@ ORDER BY d.tool_kind, d.tool
 def freshness_params(*, at: datetime, day_ago: datetime, stale_after_h: float) -> dict:
     """Bound parameters of :func:`freshness_sql`."""
     day0 = day_ago.replace(hour=0, minute=0, second=0, microsecond=0)
-    return {"day0": day0, "day_end": day0 + timedelta(days=1), "day_ago": day_ago, "at": at,
-            "hours": stale_after_h}
+    return {
+        "day0": day0,
+        "day_end": day0 + timedelta(days=1),
+        "day_ago": day_ago,
+        "at": at,
+        "hours": stale_after_h,
+    }

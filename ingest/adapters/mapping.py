@@ -41,7 +41,10 @@ DEFAULT_LIMITS: dict[str, dict[str, Limit]] = {
         "size_nm": Limit(greater_than=0),
     },
     "process_history": {"step_seq": Limit(at_least=1)},
-    "reference_values": {"reference_value": Limit(greater_than=0), "reference_uncertainty": Limit(at_least=0)},
+    "reference_values": {
+        "reference_value": Limit(greater_than=0),
+        "reference_uncertainty": Limit(at_least=0),
+    },
     "spec_limits": {},
     "tool_events": {},
 }
@@ -63,9 +66,14 @@ def raw_name(canon: str) -> str:
     return f"__raw__{canon}"
 
 
-def map_records(raw: pl.DataFrame, profile: Profile, *, table: str | None = None,
-                sources: tuple[Source, ...] | None = None,
-                carried: tuple[str, ...] = ()) -> tuple[pl.DataFrame, pl.DataFrame]:
+def map_records(
+    raw: pl.DataFrame,
+    profile: Profile,
+    *,
+    table: str | None = None,
+    sources: tuple[Source, ...] | None = None,
+    carried: tuple[str, ...] = (),
+) -> tuple[pl.DataFrame, pl.DataFrame]:
     """Map and validate ``raw`` (source columns + ``_line``) into canonical rows of ``table``.
 
     ``sources`` defaults to the profile's columns; ``carried`` names canonical columns already present in
@@ -103,11 +111,16 @@ def map_records(raw: pl.DataFrame, profile: Profile, *, table: str | None = None
         r = pl.col(raw_name(s.canonical))
         src_name = chosen.get(s.canonical, s.names[0])
         if col.dtype == schema.TIMESTAMP:
-            v, why = parse_timestamps(df[raw_name(s.canonical)], fmt=s.time_format or profile.time_format,
-                                      zone=s.time_zone or zone_default)
+            v, why = parse_timestamps(
+                df[raw_name(s.canonical)],
+                fmt=s.time_format or profile.time_format,
+                zone=s.time_zone or zone_default,
+            )
             ts_cols[s.canonical] = (v, why)
             typed.append(pl.lit(v).alias(s.canonical))
-            checks.append(_Check(pl.col(f"__why__{s.canonical}").is_not_null(), src_name, r, "__ts__" + s.canonical))
+            checks.append(
+                _Check(pl.col(f"__why__{s.canonical}").is_not_null(), src_name, r, "__ts__" + s.canonical)
+            )
             continue
         expr, more = _typed(col, r, s, profile, src_name, df.schema[raw_name(s.canonical)], s.canonical)
         typed.append(expr.alias(s.canonical))
@@ -140,7 +153,8 @@ def map_records(raw: pl.DataFrame, profile: Profile, *, table: str | None = None
     # 2. derived columns
     if t.name in ("measurements", "reference_values") and "unit" not in by_canon:
         df = df.with_columns(
-            pl.col("parameter").replace_strict(schema.PARAMETER_UNITS, default="nm", return_dtype=pl.String)
+            pl.col("parameter")
+            .replace_strict(schema.PARAMETER_UNITS, default="nm", return_dtype=pl.String)
             .alias("unit")
         )
     if t.name == "measurements" and not wide:
@@ -148,7 +162,9 @@ def map_records(raw: pl.DataFrame, profile: Profile, *, table: str | None = None
         factor = units.length_factor(vsrc.unit, "nm") if vsrc is not None and vsrc.unit else 1.0
         if factor != 1.0:  # lengths only: an angle (deg) keeps its value
             df = df.with_columns(
-                pl.when(pl.col("unit") == "nm").then(pl.col("value") * factor).otherwise(pl.col("value"))
+                pl.when(pl.col("unit") == "nm")
+                .then(pl.col("value") * factor)
+                .otherwise(pl.col("value"))
                 .alias("value")
             )
 
@@ -163,21 +179,41 @@ def map_records(raw: pl.DataFrame, profile: Profile, *, table: str | None = None
         if wide and name == profile.wide_value_column:
             rawc, src_name = pl.col("__wide_raw"), pl.col("__wide_src")
         if not c.nullable:
-            checks.append(_Check(pl.col(name).is_null() & rawc.is_null(), src_name, rawc, "missing required value"))
+            checks.append(
+                _Check(pl.col(name).is_null() & rawc.is_null(), src_name, rawc, "missing required value")
+            )
         if name in ALLOWED and (src is not None or name in profile.constants):
             allowed = ALLOWED[name]
-            checks.append(_Check(pl.col(name).is_not_null() & ~pl.col(name).is_in(list(allowed)), src_name, rawc,
-                                 "unknown value (expected one of " + ", ".join(allowed) + ")"))
+            checks.append(
+                _Check(
+                    pl.col(name).is_not_null() & ~pl.col(name).is_in(list(allowed)),
+                    src_name,
+                    rawc,
+                    "unknown value (expected one of " + ", ".join(allowed) + ")",
+                )
+            )
         lim = _merge(DEFAULT_LIMITS.get(t.name, {}).get(name), profile.limits.get(name))
         if lim is not None:
             checks.extend(_range_checks(pl.col(name), lim, src_name, rawc))
     if t.name == "measurements":
         vname = pl.col("__wide_src") if wide else chosen.get("value", "value")
-        checks.append(_Check(pl.col("value").is_finite() & (pl.col("unit") == "nm") & (pl.col("value") <= 0),
-                             vname, _vraw(df, wide), "a length must be > 0"))
+        checks.append(
+            _Check(
+                pl.col("value").is_finite() & (pl.col("unit") == "nm") & (pl.col("value") <= 0),
+                vname,
+                _vraw(df, wide),
+                "a length must be > 0",
+            )
+        )
     if t.name == "process_history" and "ended_at" in df.columns:
-        checks.append(_Check(pl.col("ended_at") < pl.col("started_at"), chosen.get("ended_at", "ended_at"),
-                             pl.col(raw_name("ended_at")), "step ends before it starts"))
+        checks.append(
+            _Check(
+                pl.col("ended_at") < pl.col("started_at"),
+                chosen.get("ended_at", "ended_at"),
+                pl.col(raw_name("ended_at")),
+                "step ends before it starts",
+            )
+        )
 
     # 4. evaluate every check at once; rejects are one row per (record, problem)
     bad, found = _evaluate(df, checks)
@@ -215,12 +251,14 @@ def _evaluate(df: pl.DataFrame, checks: list[_Check]) -> tuple[pl.Series, list[p
         else:
             reason = pl.lit(ch.reason)
         column = ch.column if isinstance(ch.column, pl.Expr) else pl.lit(ch.column, dtype=pl.String)
-        parts.append(hit.select(
-            pl.col(LINE).alias("line"),
-            column.cast(pl.String).alias("column"),
-            ch.raw.cast(pl.String).alias("value"),
-            reason.cast(pl.String).alias("reason"),
-        ))
+        parts.append(
+            hit.select(
+                pl.col(LINE).alias("line"),
+                column.cast(pl.String).alias("column"),
+                ch.raw.cast(pl.String).alias("value"),
+                reason.cast(pl.String).alias("reason"),
+            )
+        )
     return any_bad, parts
 
 
@@ -272,19 +310,34 @@ def _range_checks(v: pl.Expr, lim: Limit, column: str | pl.Expr | None, raw: pl.
     out = []
     v = pl.when(v.cast(pl.Float64).is_nan()).then(None).otherwise(v)  # NaN is reported as not finite
     if lim.greater_than is not None:
-        out.append(_Check(v <= lim.greater_than, column, raw, f"out of range (must be > {lim.greater_than:g})"))
+        out.append(
+            _Check(v <= lim.greater_than, column, raw, f"out of range (must be > {lim.greater_than:g})")
+        )
     if lim.at_least is not None:
         out.append(_Check(v < lim.at_least, column, raw, f"out of range (must be >= {lim.at_least:g})"))
     if lim.less_than is not None:
         out.append(_Check(v >= lim.less_than, column, raw, f"out of range (must be < {lim.less_than:g})"))
     if lim.at_most is not None:
-        out.append(_Check(v > lim.at_most, column, raw,
-                          f"out of range (must be <= {lim.at_most:g}; a unit mix-up such as µm read as nm?)"))
+        out.append(
+            _Check(
+                v > lim.at_most,
+                column,
+                raw,
+                f"out of range (must be <= {lim.at_most:g}; a unit mix-up such as µm read as nm?)",
+            )
+        )
     return out
 
 
-def _typed(col: schema.Column, r: pl.Expr, s: Source, profile: Profile, src_name: str,
-           raw_dtype: pl.DataType, alias: str) -> tuple[pl.Expr, list[_Check]]:
+def _typed(
+    col: schema.Column,
+    r: pl.Expr,
+    s: Source,
+    profile: Profile,
+    src_name: str,
+    raw_dtype: pl.DataType,
+    alias: str,
+) -> tuple[pl.Expr, list[_Check]]:
     """Typed canonical value of one raw column plus its parse checks (values are kept exactly as exported)."""
     checks: list[_Check] = []
     is_text = raw_dtype == pl.String or raw_dtype == pl.Null
@@ -293,34 +346,59 @@ def _typed(col: schema.Column, r: pl.Expr, s: Source, profile: Profile, src_name
         mapping = profile.values.get(col.name)
         if mapping:
             mapped = e.replace_strict(mapping, default=None, return_dtype=pl.String)
-            checks.append(_Check(e.is_not_null() & pl.col(alias).is_null(), src_name, r,
-                                 "unknown value (expected one of " + ", ".join(mapping) + ")"))
+            checks.append(
+                _Check(
+                    e.is_not_null() & pl.col(alias).is_null(),
+                    src_name,
+                    r,
+                    "unknown value (expected one of " + ", ".join(mapping) + ")",
+                )
+            )
             e = mapped
         return e, checks
     if col.dtype in (schema.FLOAT64, schema.INT64):
         target = pl.Float64 if col.dtype == schema.FLOAT64 else pl.Int64
         what = "not a number" if target == pl.Float64 else "not an integer"
         if is_text and profile.decimal == ",":
-            checks.append(_Check(r.str.contains(".", literal=True), src_name, r,
-                                 'not a number (the profile\'s decimal mark is ","; found ".")'))
+            checks.append(
+                _Check(
+                    r.str.contains(".", literal=True),
+                    src_name,
+                    r,
+                    'not a number (the profile\'s decimal mark is ","; found ".")',
+                )
+            )
             num = r.str.replace(",", ".", literal=True).cast(target, strict=False)
             reason: str | pl.Expr = what
         else:
             num = r.cast(target, strict=False)
-            reason = (pl.when(r.cast(pl.String).str.contains(",", literal=True))
-                      .then(pl.lit(what + ' (the profile\'s decimal mark is "."; found ",")'))
-                      .otherwise(pl.lit(what)))
+            reason = (
+                pl.when(r.cast(pl.String).str.contains(",", literal=True))
+                .then(pl.lit(what + ' (the profile\'s decimal mark is "."; found ",")'))
+                .otherwise(pl.lit(what))
+            )
         checks.append(_Check(r.is_not_null() & pl.col(alias).is_null(), src_name, r, reason))
         if col.dtype == schema.FLOAT64:
-            checks.append(_Check(pl.col(alias).is_not_null() & ~pl.col(alias).is_finite(), src_name, r,
-                                 "not a finite number"))
+            checks.append(
+                _Check(
+                    pl.col(alias).is_not_null() & ~pl.col(alias).is_finite(),
+                    src_name,
+                    r,
+                    "not a finite number",
+                )
+            )
             factor = _factor(col, s.unit) if col.name != "value" or profile.is_wide else 1.0
             if factor != 1.0:
                 num = num * factor
         return num, checks
     if col.dtype == schema.BOOL:
-        e = r.cast(pl.String).str.to_lowercase().replace_strict(
-            {"true": True, "false": False, "1": True, "0": False}, default=None, return_dtype=pl.Boolean)
+        e = (
+            r.cast(pl.String)
+            .str.to_lowercase()
+            .replace_strict(
+                {"true": True, "false": False, "1": True, "0": False}, default=None, return_dtype=pl.Boolean
+            )
+        )
         checks.append(_Check(r.is_not_null() & e.is_null(), src_name, r, "not true/false"))
         return e, checks
     raise AssertionError(col.dtype)
@@ -339,14 +417,18 @@ def _factor(col: schema.Column, unit: str | None) -> float:
 def _unpivot_wide(df: pl.DataFrame, profile: Profile, chosen: dict[str, str]) -> pl.DataFrame:
     keys = [s.canonical for s in profile.wide_sources]
     vcol, ncol = profile.wide_value_column or "value", profile.wide_name_column or "parameter"
-    others = [c for c in df.columns if not c.startswith("__wide__") and not c.startswith(raw_name("__wide__"))]
+    others = [
+        c for c in df.columns if not c.startswith("__wide__") and not c.startswith(raw_name("__wide__"))
+    ]
     parts = []
     for k in keys:
-        parts.append(df.select(
-            *others,
-            pl.lit(k).alias(ncol),
-            pl.col("__wide__" + k).alias(vcol),
-            pl.col(raw_name("__wide__" + k)).cast(pl.String).alias("__wide_raw"),
-            pl.lit(chosen["__wide__" + k], dtype=pl.String).alias("__wide_src"),
-        ))
+        parts.append(
+            df.select(
+                *others,
+                pl.lit(k).alias(ncol),
+                pl.col("__wide__" + k).alias(vcol),
+                pl.col(raw_name("__wide__" + k)).cast(pl.String).alias("__wide_raw"),
+                pl.lit(chosen["__wide__" + k], dtype=pl.String).alias("__wide_src"),
+            )
+        )
     return pl.concat(parts).sort(LINE, maintain_order=True)

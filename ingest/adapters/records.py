@@ -52,23 +52,43 @@ def jsonl_keys(data: bytes, *, path: str, scan: int = 100) -> tuple[list[str], i
             rec = json.loads(line)
         except ValueError as exc:
             first_bad = first_bad or IngestError(
-                "first record is not valid JSON", path=path, line=i, column=getattr(exc, "colno", 1),
-                found=line[:60].decode("utf-8", "replace"), expected="one JSON object per line",
-                fix="export JSON lines (one object per line)")
+                "first record is not valid JSON",
+                path=path,
+                line=i,
+                column=getattr(exc, "colno", 1),
+                found=line[:60].decode("utf-8", "replace"),
+                expected="one JSON object per line",
+                fix="export JSON lines (one object per line)",
+            )
             continue
         if not isinstance(rec, dict):
             first_bad = first_bad or IngestError(
-                "first record is not a JSON object", path=path, line=i, column=1, found=type(rec).__name__,
-                expected="an object", fix="export one object per line")
+                "first record is not a JSON object",
+                path=path,
+                line=i,
+                column=1,
+                found=type(rec).__name__,
+                expected="an object",
+                fix="export one object per line",
+            )
             continue
         return list(rec), i
     if first_bad is not None:
         raise first_bad
-    raise IngestError("file has no records", path=path, line=1, column=1, found="only blank lines",
-                      expected="one JSON object per line", fix="re-export the file")
+    raise IngestError(
+        "file has no records",
+        path=path,
+        line=1,
+        column=1,
+        found="only blank lines",
+        expected="one JSON object per line",
+        fix="re-export the file",
+    )
 
 
-def parse_jsonl_chunk(data: bytes, profile: Profile, *, first_line: int) -> tuple[dict[str, pl.DataFrame], pl.DataFrame]:
+def parse_jsonl_chunk(
+    data: bytes, profile: Profile, *, first_line: int
+) -> tuple[dict[str, pl.DataFrame], pl.DataFrame]:
     """JSON lines (UTF-8) -> canonical frames per table + rejects."""
     top_fields = {n for s in profile.columns for n in s.names}
     cols: dict[str, list[str | None]] = {f: [] for f in top_fields}
@@ -84,7 +104,14 @@ def parse_jsonl_chunk(data: bytes, profile: Profile, *, first_line: int) -> tupl
         try:
             rec = json.loads(raw)
         except ValueError as exc:
-            rej.append((line, None, raw[:200].decode("utf-8", "replace"), f"not valid JSON ({exc.args[0].split(':')[0]})"))
+            rej.append(
+                (
+                    line,
+                    None,
+                    raw[:200].decode("utf-8", "replace"),
+                    f"not valid JSON ({exc.args[0].split(':')[0]})",
+                )
+            )
             continue
         if not isinstance(rec, dict):
             rej.append((line, None, raw[:200].decode("utf-8", "replace"), "record is not a JSON object"))
@@ -110,17 +137,22 @@ def parse_jsonl_chunk(data: bytes, profile: Profile, *, first_line: int) -> tupl
                         store[f].append(_text(item.get(f)))
                 store[LINE].append(line)
     raw_df = pl.DataFrame({f: pl.Series(f, v, dtype=pl.String) for f, v in cols.items()}).with_columns(
-        pl.Series(LINE, lines, dtype=pl.Int64))
+        pl.Series(LINE, lines, dtype=pl.Int64)
+    )
     parent, rejects = map_records(raw_df, profile)
     frames = {profile.kind: parent}
     parts = [rejects, pl.DataFrame(rej, schema=REJECT_SCHEMA, orient="row")]
     carried_keys = [c for c in schema.table(profile.kind).names if c in _shared_keys(profile)]
     for n in profile.nested:
         store = nested_rows[n.table]
-        nraw = pl.DataFrame({k: pl.Series(k, v, dtype=pl.Int64 if k == LINE else pl.String) for k, v in store.items()})
+        nraw = pl.DataFrame(
+            {k: pl.Series(k, v, dtype=pl.Int64 if k == LINE else pl.String) for k, v in store.items()}
+        )
         keys = parent.select(pl.col(schema.C_SOURCE_LINE).alias(LINE), *carried_keys)
         nraw = nraw.join(keys, on=LINE, how="inner")
-        child, crej = map_records(nraw, profile, table=n.table, sources=n.columns, carried=tuple(carried_keys))
+        child, crej = map_records(
+            nraw, profile, table=n.table, sources=n.columns, carried=tuple(carried_keys)
+        )
         frames[n.table] = child
         parts.append(crej)
     rejects = pl.concat(parts).sort("line", maintain_order=True)
@@ -144,22 +176,43 @@ def parquet_columns(data: bytes, *, path: str) -> list[str]:
     try:
         return list(pl.read_parquet_schema(io.BytesIO(data)))
     except Exception as exc:  # polars raises several types for corrupt files
-        raise IngestError("file is not readable Parquet", path=path, line=1, column=1,
-                          details=str(exc).splitlines()[0][:200], expected="a Parquet file",
-                          fix="re-export the file, or rename it if it is not Parquet") from None
+        raise IngestError(
+            "file is not readable Parquet",
+            path=path,
+            line=1,
+            column=1,
+            details=str(exc).splitlines()[0][:200],
+            expected="a Parquet file",
+            fix="re-export the file, or rename it if it is not Parquet",
+        ) from None
 
 
-def parse_parquet(data: bytes, profile: Profile, *, path: str) -> tuple[dict[str, pl.DataFrame], pl.DataFrame]:
+def parse_parquet(
+    data: bytes, profile: Profile, *, path: str
+) -> tuple[dict[str, pl.DataFrame], pl.DataFrame]:
     """Parquet bytes -> canonical frames + rejects; the record number (1-based row) stands for the line."""
     try:
         df = pl.read_parquet(io.BytesIO(data))
     except Exception as exc:
-        raise IngestError("file is not readable Parquet", path=path, line=1, column=1,
-                          details=str(exc).splitlines()[0][:200], expected="a Parquet file",
-                          fix="re-export the file") from None
+        raise IngestError(
+            "file is not readable Parquet",
+            path=path,
+            line=1,
+            column=1,
+            details=str(exc).splitlines()[0][:200],
+            expected="a Parquet file",
+            fix="re-export the file",
+        ) from None
     if df.height == 0:
-        raise IngestError("file has a header but no data rows", path=path, line=1, column=1, found="0 rows",
-                          expected="at least one row", fix="re-export the file; nothing was loaded")
+        raise IngestError(
+            "file has a header but no data rows",
+            path=path,
+            line=1,
+            column=1,
+            found="0 rows",
+            expected="at least one row",
+            fix="re-export the file; nothing was loaded",
+        )
     df = df.with_columns(pl.int_range(1, df.height + 1, dtype=pl.Int64).alias(LINE))
     frame, rejects = map_records(df, profile)
     return {profile.kind: frame}, rejects

@@ -44,14 +44,35 @@ def bom_encoding(head: bytes) -> str | None:
 def sniff(head: bytes, *, path: str, expected: str) -> None:
     """Fail early on bytes that cannot be a text export of format ``expected`` (csv or jsonl)."""
     if not head:
-        raise IngestError("file is empty", path=path, line=1, column=1, found="0 bytes",
-                          expected=f"a {expected} header line", fix="re-export the file; nothing was loaded")
+        raise IngestError(
+            "file is empty",
+            path=path,
+            line=1,
+            column=1,
+            found="0 bytes",
+            expected=f"a {expected} header line",
+            fix="re-export the file; nothing was loaded",
+        )
     if head.startswith(b"PAR1"):
-        raise IngestError("file holds Parquet bytes but its name says text", path=path, line=1, column=1,
-                          found="PAR1", expected=expected, fix="rename it to .parquet")
+        raise IngestError(
+            "file holds Parquet bytes but its name says text",
+            path=path,
+            line=1,
+            column=1,
+            found="PAR1",
+            expected=expected,
+            fix="rename it to .parquet",
+        )
     if head.startswith(b"\x1f\x8b"):
-        raise IngestError("file holds gzip bytes but its name lacks .gz", path=path, line=1, column=1,
-                          found="1f 8b", expected=expected, fix="rename it to end in .gz")
+        raise IngestError(
+            "file holds gzip bytes but its name lacks .gz",
+            path=path,
+            line=1,
+            column=1,
+            found="1f 8b",
+            expected=expected,
+            fix="rename it to end in .gz",
+        )
     enc = bom_encoding(head)
     if enc == "utf-16":
         return
@@ -62,9 +83,15 @@ def sniff(head: bytes, *, path: str, expected: str) -> None:
         pos = nul if nul >= 0 else next(i for i, b in enumerate(sample) if b < 32 and b not in (9, 10, 13))
         line = sample[:pos].count(b"\n") + 1
         col = pos - (sample.rfind(b"\n", 0, pos) + 1) + 1
-        raise IngestError("file is binary, not a text export", path=path, line=line, column=col,
-                          found=f"byte 0x{sample[pos]:02x}", expected=f"{expected} text",
-                          fix="check that the right file was exported (a text file without NUL bytes)")
+        raise IngestError(
+            "file is binary, not a text export",
+            path=path,
+            line=line,
+            column=col,
+            found=f"byte 0x{sample[pos]:02x}",
+            expected=f"{expected} text",
+            fix="check that the right file was exported (a text file without NUL bytes)",
+        )
 
 
 def decode_head(head: bytes, encoding: str) -> str:
@@ -97,8 +124,15 @@ class LineChunker:
     for bytes invalid in the encoding and for a line longer than :data:`MAX_LINE_BYTES`.
     """
 
-    def __init__(self, *, path: str, encoding: str, skip_lines: int, chunk_bytes: int,
-                 max_line_bytes: int = MAX_LINE_BYTES) -> None:
+    def __init__(
+        self,
+        *,
+        path: str,
+        encoding: str,
+        skip_lines: int,
+        chunk_bytes: int,
+        max_line_bytes: int = MAX_LINE_BYTES,
+    ) -> None:
         self.path = path
         self.encoding = encoding
         self.skip = skip_lines
@@ -135,8 +169,12 @@ class LineChunker:
         line = self.next_line + before + block[: exc.start].count(b"\n")
         col = exc.start - (block.rfind(b"\n", 0, exc.start) + 1) + 1
         return IngestError(
-            f"bytes invalid in encoding {self.encoding}", path=self.path, line=line, column=col,
-            found=f"byte 0x{block[exc.start]:02x}", expected=self.encoding,
+            f"bytes invalid in encoding {self.encoding}",
+            path=self.path,
+            line=line,
+            column=col,
+            found=f"byte 0x{block[exc.start]:02x}",
+            expected=self.encoding,
             fix="set the right [csv] encoding in the profile (utf-8, utf-8-sig, utf-16, latin-1, cp1252)",
         )
 
@@ -151,7 +189,7 @@ class LineChunker:
                 nl = buf.find(b"\n")
                 if nl < 0:
                     break
-                buf = buf[nl + 1:]
+                buf = buf[nl + 1 :]
                 self.next_line += 1
                 self.skip -= 1
             if self.skip and not final:
@@ -183,7 +221,7 @@ class LineChunker:
             self._check_long(buf)
             self._parts = [buf]
             return out
-        chunk, rest = buf[: cut + 1], buf[cut + 1:]
+        chunk, rest = buf[: cut + 1], buf[cut + 1 :]
         self._parts, self._size = ([rest] if rest else []), len(rest)
         self._check_long(rest)
         self._check_utf8(chunk)
@@ -197,9 +235,12 @@ class LineChunker:
 
     def _too_long(self, n: int) -> None:
         raise IngestError(
-            f"line is longer than {self.max_line} bytes", path=self.path,
-            line=self.next_line + sum(p.count(b"\n") for p in self._parts), column=1,
-            found=f"no newline within {self.max_line} bytes", expected="one record per line",
+            f"line is longer than {self.max_line} bytes",
+            path=self.path,
+            line=self.next_line + sum(p.count(b"\n") for p in self._parts),
+            column=1,
+            found=f"no newline within {self.max_line} bytes",
+            expected="one record per line",
             fix="check that the file is a line-oriented export (not a binary or a single-line dump)",
         )
 
@@ -211,17 +252,22 @@ class LineChunker:
         except UnicodeDecodeError as exc:
             line = self.next_line + chunk[: exc.start].count(b"\n")
             start = chunk.rfind(b"\n", 0, exc.start) + 1
-            col = len(chunk[start: exc.start].decode("utf-8", errors="replace")) + 1
+            col = len(chunk[start : exc.start].decode("utf-8", errors="replace")) + 1
             raise IngestError(
-                "bytes invalid in encoding utf-8", path=self.path, line=line, column=col,
-                found=f"byte 0x{chunk[exc.start]:02x}", expected="utf-8",
+                "bytes invalid in encoding utf-8",
+                path=self.path,
+                line=line,
+                column=col,
+                found=f"byte 0x{chunk[exc.start]:02x}",
+                expected="utf-8",
                 fix='the file is probably Latin-1 or Windows-1252: set encoding = "cp1252" (or "latin-1") '
-                    "under [csv] in its profile",
+                "under [csv] in its profile",
             ) from None
 
 
-def parse_csv_chunk(data: bytes, *, header: list[str], delimiter: str, first_line: int,
-                    source: str) -> tuple[pl.DataFrame, pl.DataFrame]:
+def parse_csv_chunk(
+    data: bytes, *, header: list[str], delimiter: str, first_line: int, source: str
+) -> tuple[pl.DataFrame, pl.DataFrame]:
     """Parse UTF-8 CSV lines (no header) into all-string columns plus ``_line``; ragged rows are rejects.
 
     Blank lines are skipped. Returns (raw frame, rejects).
@@ -232,12 +278,22 @@ def parse_csv_chunk(data: bytes, *, header: list[str], delimiter: str, first_lin
         return _parse_quoted(data, header=header, delimiter=delimiter, first_line=first_line)
     d = delimiter.encode()
     try:
-        df = pl.read_csv(io.BytesIO(data), has_header=False, schema=schema, separator=delimiter, quote_char=None,
-                         raise_if_empty=False, truncate_ragged_lines=False)
+        df = pl.read_csv(
+            io.BytesIO(data),
+            has_header=False,
+            schema=schema,
+            separator=delimiter,
+            quote_char=None,
+            raise_if_empty=False,
+            truncate_ragged_lines=False,
+        )
         lines = data.count(b"\n") + (0 if data.endswith(b"\n") else 1)
         has_blank = b"\n\n" in data or b"\n\r\n" in data or data[:1] in (b"\n", b"\r")
-        blank = (data.count(b"\n\n") + data.count(b"\n\r\n") + (1 if data[:1] in (b"\n", b"\r") else 0)
-                 if has_blank else 0)
+        blank = (
+            data.count(b"\n\n") + data.count(b"\n\r\n") + (1 if data[:1] in (b"\n", b"\r") else 0)
+            if has_blank
+            else 0
+        )
         consistent = df.height == lines and data.count(d) == (lines - blank) * (ncols - 1)
     except pl.exceptions.PolarsError:
         consistent = False
@@ -254,8 +310,9 @@ def _drop_blank(df: pl.DataFrame, header: list[str]) -> pl.DataFrame:
     return df.filter(~blank)
 
 
-def _parse_ragged(data: bytes, *, header: list[str], delimiter: str,
-                  first_line: int) -> tuple[pl.DataFrame, pl.DataFrame]:
+def _parse_ragged(
+    data: bytes, *, header: list[str], delimiter: str, first_line: int
+) -> tuple[pl.DataFrame, pl.DataFrame]:
     ncols = len(header)
     d = delimiter.encode()
     lines = data.split(b"\n")
@@ -271,23 +328,30 @@ def _parse_ragged(data: bytes, *, header: list[str], delimiter: str,
         n = text.count(d) + 1
         if n != ncols:
             shown = text[:200].decode("utf-8", errors="replace")
-            rej.append((first_line + i, None, shown,
-                        f"row has {n} fields, the header has {ncols} (ragged row)"))
+            rej.append(
+                (first_line + i, None, shown, f"row has {n} fields, the header has {ncols} (ragged row)")
+            )
             continue
         keep.append(text)
         keep_lines.append(first_line + i)
     schema = {h: pl.String for h in header}
     if keep:
-        df = pl.read_csv(io.BytesIO(b"\n".join(keep) + b"\n"), has_header=False, schema=schema,
-                         separator=delimiter, quote_char=None)
+        df = pl.read_csv(
+            io.BytesIO(b"\n".join(keep) + b"\n"),
+            has_header=False,
+            schema=schema,
+            separator=delimiter,
+            quote_char=None,
+        )
     else:
         df = pl.DataFrame(schema=schema)
     df = df.with_columns(pl.Series(LINE, keep_lines, dtype=pl.Int64))
     return _drop_blank(df, header), pl.DataFrame(rej, schema=REJECT_SCHEMA, orient="row")
 
 
-def _parse_quoted(data: bytes, *, header: list[str], delimiter: str,
-                  first_line: int) -> tuple[pl.DataFrame, pl.DataFrame]:
+def _parse_quoted(
+    data: bytes, *, header: list[str], delimiter: str, first_line: int
+) -> tuple[pl.DataFrame, pl.DataFrame]:
     ncols = len(header)
     reader = csv.reader(io.StringIO(data.decode("utf-8"), newline=""), delimiter=delimiter)
     cols: list[list[str | None]] = [[] for _ in header]
@@ -301,15 +365,26 @@ def _parse_quoted(data: bytes, *, header: list[str], delimiter: str,
             if not row or all(not f.strip() for f in row) and len(row) <= 1:
                 continue
             if len(row) != ncols:
-                rej.append((line, None, delimiter.join(row)[:200],
-                            f"row has {len(row)} fields, the header has {ncols} (ragged row)"))
+                rej.append(
+                    (
+                        line,
+                        None,
+                        delimiter.join(row)[:200],
+                        f"row has {len(row)} fields, the header has {ncols} (ragged row)",
+                    )
+                )
                 continue
             for c, v in zip(cols, row, strict=True):
                 c.append(v if v != "" else None)
             line_no.append(line)
     except csv.Error as exc:
-        raise IngestError("unreadable CSV quoting", path=None, line=first_line + start - 1,
-                          details=str(exc), fix="check the quotes of that line") from None
+        raise IngestError(
+            "unreadable CSV quoting",
+            path=None,
+            line=first_line + start - 1,
+            details=str(exc),
+            fix="check the quotes of that line",
+        ) from None
     df = pl.DataFrame({h: pl.Series(h, c, dtype=pl.String) for h, c in zip(header, cols, strict=True)})
     df = df.with_columns(pl.Series(LINE, line_no, dtype=pl.Int64))
     return df, pl.DataFrame(rej, schema=REJECT_SCHEMA, orient="row")

@@ -58,8 +58,12 @@ def test_exports_wide_cdsem_files_have_the_documented_header_and_encoding(small_
 
 
 def test_exports_lot_history_reference_and_native_headers(small_demo):
-    assert _first_line(_files(small_demo, "exports/lot_history/*.csv")[0]) == _header_from_doc("lot_history_csv")
-    assert _first_line(small_demo / "exports/reference/reference_values.csv") == _header_from_doc("reference_csv")
+    assert _first_line(_files(small_demo, "exports/lot_history/*.csv")[0]) == _header_from_doc(
+        "lot_history_csv"
+    )
+    assert _first_line(small_demo / "exports/reference/reference_values.csv") == _header_from_doc(
+        "reference_csv"
+    )
     native = re.findall(r"`([a-z_,]+)`", _section("lotline native"))
     assert _first_line(small_demo / "exports/spec_limits.csv") in native
     assert _first_line(small_demo / "exports/tool_events.csv") in native
@@ -69,8 +73,11 @@ def test_exports_parquet_inspections_have_the_documented_columns(small_demo):
     want = re.findall(r"`([A-Z_0-9]+)`", _section("inspection_parquet"))
     truth = json.loads((small_demo / "truth.json").read_text())
     failed = {f["file"] for f in truth["planned_failed_files"]}
-    files = [p for p in _files(small_demo, "exports/inspection_parquet/*.parquet")
-             if str(p.relative_to(small_demo)) not in failed]
+    files = [
+        p
+        for p in _files(small_demo, "exports/inspection_parquet/*.parquet")
+        if str(p.relative_to(small_demo)) not in failed
+    ]
     frame = pl.read_parquet(files[0])
     assert frame.columns == [w for w in want if w not in ("PROD", "MON", "STD")]
     assert frame.schema["INSPECT_TIME"] == pl.Datetime("us")
@@ -111,17 +118,43 @@ def test_exports_long_times_are_utc_and_codes_are_documented(small_demo):
 
 # --------------------------------------------------------------------------------------- truth
 
-FAULT_KEYS = {"id", "kind", "layer", "parameter", "start", "end", "magnitude", "unit", "responsible", "lots",
-              "series_hint", "description"}
+FAULT_KEYS = {
+    "id",
+    "kind",
+    "layer",
+    "parameter",
+    "start",
+    "end",
+    "magnitude",
+    "unit",
+    "responsible",
+    "lots",
+    "series_hint",
+    "description",
+}
 RESPONSIBLE_KEYS = {"process_tool", "chamber", "metrology_tool", "inspection_tool"}
-REQUIRED_KINDS = {"chamber_shift", "slow_drift", "bake_plate_edge", "metrology_offset", "defect_burst", "scratch",
-                  "tool_stops_reporting", "corrected_reexport"}
+REQUIRED_KINDS = {
+    "chamber_shift",
+    "slow_drift",
+    "bake_plate_edge",
+    "metrology_offset",
+    "defect_burst",
+    "scratch",
+    "tool_stops_reporting",
+    "corrected_reexport",
+}
 ISO_Z = r"\d{4}-\d{2}-\d{2}T\d{2}:\d{2}:\d{2}Z"
 
 
 def test_truth_json_has_the_documented_structure(small_demo):
     truth = json.loads((small_demo / "truth.json").read_text())
-    assert {"faults", "planned_rejects", "planned_failed_files", "corrected_reexports", "expected_rows"} <= set(truth)
+    assert {
+        "faults",
+        "planned_rejects",
+        "planned_failed_files",
+        "corrected_reexports",
+        "expected_rows",
+    } <= set(truth)
     kinds = set()
     for f in truth["faults"]:
         assert FAULT_KEYS <= set(f), f["id"]
@@ -164,7 +197,9 @@ def test_corrected_reexport_differs_from_the_original_by_the_planned_offset(smal
     truth = json.loads((small_demo / "truth.json").read_text())
     rx = truth["corrected_reexports"][0]
     key = ["LotID", "WaferID", "Layer", "Parameter", "Site", "MeasTime"]
-    orig = pl.read_csv(small_demo / rx["original_file"], infer_schema=False).filter(pl.col("LotID") == rx["lot"])
+    orig = pl.read_csv(small_demo / rx["original_file"], infer_schema=False).filter(
+        pl.col("LotID") == rx["lot"]
+    )
     corr = pl.read_csv(small_demo / rx["corrected_file"], infer_schema=False)
     assert corr.height == rx["rows"] == orig.filter(pl.col("Layer") == rx["layer"]).height
     both = orig.join(corr, on=key, suffix="_c")

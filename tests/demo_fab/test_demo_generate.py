@@ -68,8 +68,14 @@ def _nested_anova(y: np.ndarray, group: np.ndarray) -> dict[str, float]:
     df_e, df_w, df_l = a * b * (n - 1), a * (b - 1), a - g
     ms_e, ms_w, ms_l = ss_e / df_e, ss_w / df_w, ss_l / df_l
     return {
-        "site": ms_e, "wafer": (ms_w - ms_e) / n, "lot": (ms_l - ms_w) / (b * n),
-        "df_e": df_e, "df_w": df_w, "df_l": df_l, "b": b, "n": n,
+        "site": ms_e,
+        "wafer": (ms_w - ms_e) / n,
+        "lot": (ms_l - ms_w) / (b * n),
+        "df_e": df_e,
+        "df_w": df_w,
+        "df_l": df_l,
+        "b": b,
+        "n": n,
     }
 
 
@@ -86,16 +92,25 @@ def _se(est: dict[str, float], s_e2: float, s_w2: float, s_l2: float) -> dict[st
 def _balanced_layer(data, layer: fabmod.MeasuredLayer, tools: list[str]):
     cfg = data.config
     m = data.measurements.filter(
-        (pl.col("layer") == layer.name) & (pl.col("parameter") == "cd_mid")
-        & (pl.col("sample_kind") == "production") & pl.col("metrology_tool").is_in(tools)
+        (pl.col("layer") == layer.name)
+        & (pl.col("parameter") == "cd_mid")
+        & (pl.col("sample_kind") == "production")
+        & pl.col("metrology_tool").is_in(tools)
     )
     # a lot measured on two CD-SEMs would count its lot effect twice: keep lots seen by one tool only
-    one_tool = m.group_by("lot_id").agg(pl.col("metrology_tool").n_unique().alias("k")).filter(pl.col("k") == 1)
+    one_tool = (
+        m.group_by("lot_id").agg(pl.col("metrology_tool").n_unique().alias("k")).filter(pl.col("k") == 1)
+    )
     m = m.join(one_tool.select("lot_id"), on="lot_id")
-    complete = (m.group_by("lot_id").agg(pl.len().alias("n"), pl.col("wafer_id").n_unique().alias("w"))
-                .filter((pl.col("n") == 27) & (pl.col("w") == 3)))
+    complete = (
+        m.group_by("lot_id")
+        .agg(pl.len().alias("n"), pl.col("wafer_id").n_unique().alias("w"))
+        .filter((pl.col("n") == 27) & (pl.col("w") == 3))
+    )
     m = m.join(complete.select("lot_id"), on="lot_id")
-    hist = data.process_history.filter(pl.col("step") == layer.step).select("lot_id", "process_tool", "chamber")
+    hist = data.process_history.filter(pl.col("step") == layer.step).select(
+        "lot_id", "process_tool", "chamber"
+    )
     m = m.join(hist, on="lot_id").sort("lot_id", "wafer_id", "site_id")
     # remove the configured radial signature, computed here from the site coordinates
     r = np.hypot(m["x_mm"].to_numpy(), m["y_mm"].to_numpy())
@@ -103,8 +118,15 @@ def _balanced_layer(data, layer: fabmod.MeasuredLayer, tools: list[str]):
     lots = m["lot_id"].unique(maintain_order=True).len()
     y = y.reshape(lots, 3, 9)
     first = m.gather_every(27)
-    group = (first["product"] + "|" + first["process_tool"] + "|" + first["chamber"] + "|"
-             + first["metrology_tool"]).to_numpy()
+    group = (
+        first["product"]
+        + "|"
+        + first["process_tool"]
+        + "|"
+        + first["chamber"]
+        + "|"
+        + first["metrology_tool"]
+    ).to_numpy()
     prec = {s.tool: s.precision_nm for s in cfg.fab.cdsems}
     meas_var = float(np.mean([prec[t] ** 2 for t in m["metrology_tool"].to_list()]))
     return y, group, meas_var
@@ -128,11 +150,20 @@ def test_simulate_nested_variance_components_match_configured(small_data):
         tools = _clean_tools(small_data, "litho" if layer.stage == "develop" else "etch")
         y, group, meas_var = _balanced_layer(small_data, layer, tools)
         est = _nested_anova(y, group)
-        want = {"site": layer.sigma_site_nm**2 + meas_var, "wafer": layer.sigma_wafer_nm**2,
-                "lot": layer.sigma_lot_nm**2}
+        want = {
+            "site": layer.sigma_site_nm**2 + meas_var,
+            "wafer": layer.sigma_wafer_nm**2,
+            "lot": layer.sigma_lot_nm**2,
+        }
         se = _se(est, want["site"], want["wafer"], want["lot"])
         for level in ("site", "wafer", "lot"):
-            assert abs(est[level] - want[level]) < 4 * se[level], (layer.name, level, est[level], want[level], se[level])
+            assert abs(est[level] - want[level]) < 4 * se[level], (
+                layer.name,
+                level,
+                est[level],
+                want[level],
+                se[level],
+            )
             checked += 1
     assert checked == 3 * len(layers)
 
@@ -175,8 +206,9 @@ def test_simulate_defect_density_matches_configured_d0(small_data):
 def test_simulate_scratch_defects_lie_on_one_line(small_data):
     f = next(f for f in small_data.faults if f.kind == "scratch")
     lot = small_data.fault_lots[f.id][0]
-    d = small_data.defects.filter((pl.col("lot_id") == lot) & (pl.col("layer") == f.layer)
-                                  & (pl.col("defect_class") == "scratch"))
+    d = small_data.defects.filter(
+        (pl.col("lot_id") == lot) & (pl.col("layer") == f.layer) & (pl.col("defect_class") == "scratch")
+    )
     assert d.height >= f.magnitude
     x, y = d["x_mm"].to_numpy(), d["y_mm"].to_numpy()
     # principal axis of the points: the spread across the line is tiny next to the spread along it
@@ -189,7 +221,11 @@ def test_simulate_standard_wafer_capture_falls_on_degraded_tool_only(small_data)
     std = small_data.inspections.filter(pl.col("sample_kind") == "standard_defect")
     late = pl.col("inspected_at") >= f.end - (f.end - f.start) / 3
     early = pl.col("inspected_at") < f.start
-    by = std.group_by("inspection_tool", late.alias("late")).agg(pl.col("defect_count").mean()).sort("inspection_tool")
+    by = (
+        std.group_by("inspection_tool", late.alias("late"))
+        .agg(pl.col("defect_count").mean())
+        .sort("inspection_tool")
+    )
     early_b2 = std.filter(early & (pl.col("inspection_tool") == f.inspection_tool))["defect_count"].mean()
     late_b2 = std.filter(late & (pl.col("inspection_tool") == f.inspection_tool))["defect_count"].mean()
     assert late_b2 < 0.9 * early_b2, by
@@ -202,8 +238,9 @@ def test_simulate_standard_wafer_capture_falls_on_degraded_tool_only(small_data)
 
 def test_simulate_monitor_wafer_shows_the_metrology_offset(small_data):
     f = next(f for f in small_data.faults if f.kind == "metrology_offset")
-    mon = small_data.measurements.filter((pl.col("sample_kind") == "monitor")
-                                         & (pl.col("metrology_tool") == f.metrology_tool))
+    mon = small_data.measurements.filter(
+        (pl.col("sample_kind") == "monitor") & (pl.col("metrology_tool") == f.metrology_tool)
+    )
     before = mon.filter(pl.col("measured_at") < f.start)["value"].mean()
     after = mon.filter(pl.col("measured_at") >= f.start)["value"].mean()
     assert after - before == pytest.approx(f.magnitude, abs=0.25)
@@ -211,8 +248,12 @@ def test_simulate_monitor_wafer_shows_the_metrology_offset(small_data):
 
 def test_simulate_resist_repeats_shrink_under_the_beam(small_data):
     cfg = small_data.config
-    rep = (small_data.measurements.filter(pl.col("sample_kind") == "repeat_study")
-           .group_by("repeat").agg(pl.col("value").mean()).sort("repeat"))
+    rep = (
+        small_data.measurements.filter(pl.col("sample_kind") == "repeat_study")
+        .group_by("repeat")
+        .agg(pl.col("value").mean())
+        .sort("repeat")
+    )
     v = rep["value"].to_numpy()
     want = cfg.shrink_amplitude_nm * (1 - math.exp(-(cfg.repeat_study_repeats - 1) / cfg.shrink_tau))
     assert v[0] - v[-1] == pytest.approx(want, abs=0.2)
@@ -228,8 +269,11 @@ def test_simulate_stale_cdsem_exports_nothing_after_its_stop(small_data):
 
 def test_simulate_chamber_shift_follows_a_maintenance_event(small_data):
     f = next(f for f in small_data.faults if f.kind == "chamber_shift")
-    ev = small_data.tool_events.filter((pl.col("tool") == f.process_tool) & (pl.col("chamber") == f.chamber)
-                                       & (pl.col("event_kind") == "preventive_maintenance"))
+    ev = small_data.tool_events.filter(
+        (pl.col("tool") == f.process_tool)
+        & (pl.col("chamber") == f.chamber)
+        & (pl.col("event_kind") == "preventive_maintenance")
+    )
     gaps = [(f.start - t).total_seconds() / 3600 for t in ev["event_at"].to_list()]
     assert any(0 < g <= 6 for g in gaps)
 
@@ -239,10 +283,15 @@ def test_simulate_lot_and_wafer_ids_follow_the_fab_pattern(small_data):
     assert m["lot_id"].str.contains(r"^HC\d{4}-\d{3}$").all()
     assert (m["wafer_id"].str.slice(0, 10) == m["lot_id"]).all()
     assert m["wafer_id"].str.contains(r"^HC\d{4}-\d{3}-(0[1-9]|1\d|2[0-5])$").all()
-    sites = m.group_by("lot_id", "wafer_id", "layer", "metrology_tool").agg(pl.col("site_id").n_unique().alias("n"))
+    sites = m.group_by("lot_id", "wafer_id", "layer", "metrology_tool").agg(
+        pl.col("site_id").n_unique().alias("n")
+    )
     assert set(sites["n"].unique().to_list()) <= {9, 13}
-    per_day = (m.filter(pl.col("layer") == "GATE_DEV").group_by(pl.col("measured_at").dt.date())
-               .agg(pl.col("lot_id").n_unique().alias("lots")))
+    per_day = (
+        m.filter(pl.col("layer") == "GATE_DEV")
+        .group_by(pl.col("measured_at").dt.date())
+        .agg(pl.col("lot_id").n_unique().alias("lots"))
+    )
     assert 20 <= per_day["lots"].median() <= 60
 
 

@@ -48,7 +48,10 @@ def test_demo_ingest_rejects_exactly_the_planned_rows(ingested):
     with store.open_warehouse(db, read_only=True) as con:
         rej = load.list_rejects(con, limit=100_000)
     got = sorted((_rel(root, p), int(line), col, v, reason) for p, line, col, v, reason in rej.iter_rows())
-    want = sorted((r["file"], r["line"], r["column"], r["value"], r["reason_contains"]) for r in truth["planned_rejects"])
+    want = sorted(
+        (r["file"], r["line"], r["column"], r["value"], r["reason_contains"])
+        for r in truth["planned_rejects"]
+    )
     assert [g[:2] for g in got] == [w[:2] for w in want]
     for (_, _, col, value, reason), (_, _, want_col, want_value, want_reason) in zip(got, want, strict=True):
         assert want_reason.lower() in reason.lower(), reason
@@ -67,6 +70,13 @@ def test_demo_ingest_stores_the_expected_rows_and_supersedes_the_corrected_lot(i
     assert superseded == rx["rows"]
     expected = truth["expected_rows"]
     assert counts["measurements"] == expected["measurements"] + rx["rows"]
-    for table in ("inspections", "defect_counts", "defects", "process_history", "tool_events", "spec_limits",
-                  "reference_values"):
+    for table in (
+        "inspections",
+        "defect_counts",
+        "defects",
+        "process_history",
+        "tool_events",
+        "spec_limits",
+        "reference_values",
+    ):
         assert counts[table] == expected[table], table

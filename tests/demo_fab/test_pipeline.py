@@ -34,7 +34,10 @@ def demo(tmp_path_factory, cli):
 def test_demo_no_serve_summary_reports_the_planned_rejects_and_failed_file(demo):
     out, output, truth = demo
     reexport = truth["faults"][[f["kind"] for f in truth["faults"]].index("corrected_reexport")]["reexport"]
-    assert f"{len(truth['planned_rejects'])} rejected, {reexport['rows']} superseded by a corrected re-export" in output
+    assert (
+        f"{len(truth['planned_rejects'])} rejected, {reexport['rows']} superseded by a corrected re-export"
+        in output
+    )
     failed = [Path(f["file"]).name for f in truth["planned_failed_files"]]
     assert f"failed files {len(failed)} ({', '.join(failed)})" in output
     assert (out / "lotline.duckdb").exists()
@@ -72,8 +75,19 @@ def test_demo_score_false_rate_is_false_excursions_over_chart_points(score):
     assert 0 <= score["false_excursions"] <= score["excursions"]
 
 
-@pytest.mark.parametrize("kind", ["chamber_shift", "slow_drift", "bake_plate_edge", "metrology_offset",
-                                  "defect_burst", "scratch", "tool_stops_reporting", "corrected_reexport"])
+@pytest.mark.parametrize(
+    "kind",
+    [
+        "chamber_shift",
+        "slow_drift",
+        "bake_plate_edge",
+        "metrology_offset",
+        "defect_burst",
+        "scratch",
+        "tool_stops_reporting",
+        "corrected_reexport",
+    ],
+)
 def test_demo_score_finds_each_fault_of_the_issue(score, kind):
     # Issue 5's fault list; the responsible tool or chamber must be attributed where one is named.
     row = next(r for r in score["faults"] if r["kind"] == kind)
@@ -84,4 +98,7 @@ def test_demo_score_finds_each_fault_of_the_issue(score, kind):
 def test_demo_score_without_a_demo_says_how_to_make_one(tmp_path, cli):
     result = CliRunner().invoke(cli, ["demo", "--dir", str(tmp_path / "none"), "--score"])
     assert result.exit_code == 2
-    assert f"{tmp_path / 'none'}/truth.json not found. Fix: run `lotline demo --dir {tmp_path / 'none'}` first." in result.output
+    assert (
+        f"{tmp_path / 'none'}/truth.json not found. Fix: run `lotline demo --dir {tmp_path / 'none'}` first."
+        in result.output
+    )

@@ -81,6 +81,9 @@ chart = "laney_u"
 severity = "high"
 """
 
+
 def build_demo_warehouse(path: Path, *, days: int = DEMO_DAYS, seed: int = DEMO_SEED) -> DemoData:
     """Simulate the demo fab, store its frames in a new warehouse at ``path``, load the plan, evaluate."""
-    return build_simulated_warehouse(path, plan_text=PLAN_TEXT, plan_name="drilldown_plan.toml", days=days, seed=seed)
+    return build_simulated_warehouse(
+        path, plan_text=PLAN_TEXT, plan_name="drilldown_plan.toml", days=days, seed=seed
+    )

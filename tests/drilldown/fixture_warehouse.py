@@ -124,7 +124,9 @@ def build_frames(seed: int = 11) -> dict[str, pl.DataFrame]:
     repro = rng.normal(0.0, 0.08, DAYS * len(SEMS))[day * len(SEMS) + tool_i]
     sem = np.array(SEMS)[tool_i]
     bias = np.where((sem == METROLOGY_TOOL) & (when >= METROLOGY_FROM_DAY), METROLOGY_OFFSET_NM, 0.0)
-    value = 45.0 + np.array([0.0, 0.1, -0.1, 0.05, -0.05])[site] + repro + bias + rng.normal(0.0, 0.2, when.size)
+    value = (
+        45.0 + np.array([0.0, 0.1, -0.1, 0.05, -0.05])[site] + repro + bias + rng.normal(0.0, 0.2, when.size)
+    )
     mon = _measurements(np.full(when.size, "GOLD-1"), np.zeros(when.size, int), site,
                         np.array([s[0] for s in SITES])[site], np.array([s[1] for s in SITES])[site], "L1_ETCH",
                         value, when, sem, "monitor", repeat=rep + 1, feature="MON-45")  # fmt: skip

@@ -24,7 +24,11 @@ def test_explain_process_fault_ranks_planted_chamber_first(explained):
     proc, _ = explained
     top = proc.commonality.row(0, named=True)
     assert (top["step"], top["kind"], top["process_tool"], top["chamber"]) == (
-        "S2_ETCH", "chamber", fw.PROCESS_TOOL, fw.PROCESS_CHAMBER)
+        "S2_ETCH",
+        "chamber",
+        fw.PROCESS_TOOL,
+        fw.PROCESS_CHAMBER,
+    )
     assert top["n_affected"] == len(proc.affected_lots)
     assert top["q_best"] < 0.01
 

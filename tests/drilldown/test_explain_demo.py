@@ -55,10 +55,14 @@ def test_explain_demo_fault_excursion_ranks_the_responsible_chamber_first(demo, 
     fault, overlap, ex = demo[kind]
     assert overlap >= 1, f"{fault.id}: no excursion holds a lot of the fault"
     if len(ex.affected_lots) < MIN_LOTS_FOR_RANKING:
-        pytest.skip(f"{fault.id}: its excursion has {len(ex.affected_lots)} lot(s); too few to rank (see the scratch "
-                    "cluster check instead)")
+        pytest.skip(
+            f"{fault.id}: its excursion has {len(ex.affected_lots)} lot(s); too few to rank (see the scratch "
+            "cluster check instead)"
+        )
     top = ex.commonality.row(0, named=True)
-    assert (top["process_tool"], top["chamber"]) == (fault.process_tool, fault.chamber), ex.commonality.head(5)
+    assert (top["process_tool"], top["chamber"]) == (fault.process_tool, fault.chamber), ex.commonality.head(
+        5
+    )
 
 
 def test_explain_demo_metrology_offset_is_likely_metrology(demo):

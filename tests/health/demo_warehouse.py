@@ -49,6 +49,9 @@ baseline = { first = 20 }
 severity = "medium"
 """
 
+
 def build_demo_warehouse(path: Path, *, days: int = DEMO_DAYS, seed: int = 7) -> DemoData:
     """Simulate the demo fab, store its frames in a new warehouse at ``path``, load the plan, evaluate."""
-    return build_simulated_warehouse(path, plan_text=PLAN_TEXT, plan_name="tool_health_plan.toml", days=days, seed=seed)
+    return build_simulated_warehouse(
+        path, plan_text=PLAN_TEXT, plan_name="tool_health_plan.toml", days=days, seed=seed
+    )

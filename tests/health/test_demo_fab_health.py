@@ -25,7 +25,9 @@ def test_weekly_health_demo_names_the_drifting_cdsem(demo_fab, demo_health):
     assert card["tool"].to_list() == [drift.metrology_tool]
     # the drift is downward in truth (negative magnitude) and in the fitted rate
     assert drift.magnitude < 0 and card["drift_rate_nm_per_day"][0] < 0
-    assert any(a.startswith(f"CD-SEM {drift.metrology_tool}: monitor drifting") for a in demo_health.attention)
+    assert any(
+        a.startswith(f"CD-SEM {drift.metrology_tool}: monitor drifting") for a in demo_health.attention
+    )
 
 
 def test_weekly_health_demo_names_the_offset_cdsem_with_its_step(demo_fab, demo_health):
@@ -48,17 +50,26 @@ def test_weekly_health_demo_names_the_inspection_tool_whose_capture_fell(demo_fa
 def test_weekly_health_demo_worst_ooc_chamber_is_a_faulty_chamber(demo_fab, demo_health):
     _, data = demo_fab
     wk = demo_health.week
-    active = {(f.process_tool, f.chamber) for f in data.faults
-              if f.kind in ("chamber_shift", "slow_drift") and f.start < wk.end and f.end > wk.start}
-    worst = demo_health.process.filter(pl.col("ooc_rate").is_not_null()).sort("ooc_rate", descending=True).row(
-        0, named=True)
+    active = {
+        (f.process_tool, f.chamber)
+        for f in data.faults
+        if f.kind in ("chamber_shift", "slow_drift") and f.start < wk.end and f.end > wk.start
+    }
+    worst = (
+        demo_health.process.filter(pl.col("ooc_rate").is_not_null())
+        .sort("ooc_rate", descending=True)
+        .row(0, named=True)
+    )
     assert (worst["process_tool"], worst["chamber"]) in active
 
 
 def test_weekly_report_demo_names_the_unhealthy_tools(demo_fab, demo_report):
     _, data = demo_fab
     text = demo_report.read_text(encoding="utf-8")
-    for kind, attr in (("metrology_drift", "metrology_tool"), ("metrology_offset", "metrology_tool"),
-                       ("capture_loss", "inspection_tool")):
+    for kind, attr in (
+        ("metrology_drift", "metrology_tool"),
+        ("metrology_offset", "metrology_tool"),
+        ("capture_loss", "inspection_tool"),
+    ):
         assert getattr(_fault(data, kind), attr) in text
     assert "Process chamber" in text and "OOC rate" in text

@@ -28,29 +28,99 @@ def small_db(tmp_path_factory):
             day_effect = rng.normal(0, 0.05)
             for s in range(1, SITES + 1):
                 for r in range(1, REPEATS + 1):
-                    rows.append(dict(lot_id="MON", wafer_id="MON-01", site_id=str(s), product="ENG", layer="MON",
-                                     stage="etch", parameter="cd_mid", feature="M45",
-                                     value=round(45.0 + off + 0.2 * s + day_effect + rng.normal(0, 0.2), 4), unit="nm",
-                                     measured_at=T0 + timedelta(days=d, hours=6, minutes=10 * s + r),
-                                     metrology_tool=t, repeat=r, sample_kind="monitor"))
-            prod.append(dict(lot_id=f"L{d:02d}{t[-1]}", wafer_id=f"L{d:02d}{t[-1]}.1", site_id="1", product="P1",
-                             layer="L1", stage="etch", parameter="cd_mid", feature=None, value=40.0, unit="nm",
-                             measured_at=T0 + timedelta(days=d, hours=9), metrology_tool=t, repeat=1,
-                             sample_kind="production"))
+                    rows.append(
+                        dict(
+                            lot_id="MON",
+                            wafer_id="MON-01",
+                            site_id=str(s),
+                            product="ENG",
+                            layer="MON",
+                            stage="etch",
+                            parameter="cd_mid",
+                            feature="M45",
+                            value=round(45.0 + off + 0.2 * s + day_effect + rng.normal(0, 0.2), 4),
+                            unit="nm",
+                            measured_at=T0 + timedelta(days=d, hours=6, minutes=10 * s + r),
+                            metrology_tool=t,
+                            repeat=r,
+                            sample_kind="monitor",
+                        )
+                    )
+            prod.append(
+                dict(
+                    lot_id=f"L{d:02d}{t[-1]}",
+                    wafer_id=f"L{d:02d}{t[-1]}.1",
+                    site_id="1",
+                    product="P1",
+                    layer="L1",
+                    stage="etch",
+                    parameter="cd_mid",
+                    feature=None,
+                    value=40.0,
+                    unit="nm",
+                    measured_at=T0 + timedelta(days=d, hours=9),
+                    metrology_tool=t,
+                    repeat=1,
+                    sample_kind="production",
+                )
+            )
         for tool, found in (("INS-1", 228), ("INS-2", 228 if d < 21 else 190)):
-            insp.append(dict(lot_id="STD", wafer_id="STD-01", product="ENG", layer="STD", inspection_tool=tool,
-                             inspected_at=T0 + timedelta(days=d, hours=4), inspected_area_cm2=679.0,
-                             defect_count=found, sample_kind="standard_defect"))
-    ref = pl.DataFrame(dict(feature=["F1", "F2", "F3", "F4"], layer="L1", parameter="cd_mid",
-                            reference_value=[30.0, 45.0, 60.0, 75.0], reference_uncertainty=0.4, unit="nm",
-                            reference_method="xsem_tem"))
-    refm = [dict(lot_id="REF", wafer_id="REF-01", site_id=f, product="ENG", layer="L1", stage="etch",
-                 parameter="cd_mid", feature=f, value=v + 0.5 + 0.1 * r, unit="nm",
-                 measured_at=T0 + timedelta(days=1, hours=12, minutes=r), metrology_tool="SEM-A", repeat=r,
-                 sample_kind="reference_feature")
-            for f, v in zip(["F1", "F2", "F3", "F4"], [30.0, 45.0, 60.0, 75.0], strict=True) for r in (1, 2)]
-    spec = pl.DataFrame(dict(product="*", layer="L1", parameter="cd_mid", lsl=36.0, target=40.0, usl=44.0, unit="nm",
-                             effective_from=datetime(2026, 1, 1)))
+            insp.append(
+                dict(
+                    lot_id="STD",
+                    wafer_id="STD-01",
+                    product="ENG",
+                    layer="STD",
+                    inspection_tool=tool,
+                    inspected_at=T0 + timedelta(days=d, hours=4),
+                    inspected_area_cm2=679.0,
+                    defect_count=found,
+                    sample_kind="standard_defect",
+                )
+            )
+    ref = pl.DataFrame(
+        dict(
+            feature=["F1", "F2", "F3", "F4"],
+            layer="L1",
+            parameter="cd_mid",
+            reference_value=[30.0, 45.0, 60.0, 75.0],
+            reference_uncertainty=0.4,
+            unit="nm",
+            reference_method="xsem_tem",
+        )
+    )
+    refm = [
+        dict(
+            lot_id="REF",
+            wafer_id="REF-01",
+            site_id=f,
+            product="ENG",
+            layer="L1",
+            stage="etch",
+            parameter="cd_mid",
+            feature=f,
+            value=v + 0.5 + 0.1 * r,
+            unit="nm",
+            measured_at=T0 + timedelta(days=1, hours=12, minutes=r),
+            metrology_tool="SEM-A",
+            repeat=r,
+            sample_kind="reference_feature",
+        )
+        for f, v in zip(["F1", "F2", "F3", "F4"], [30.0, 45.0, 60.0, 75.0], strict=True)
+        for r in (1, 2)
+    ]
+    spec = pl.DataFrame(
+        dict(
+            product="*",
+            layer="L1",
+            parameter="cd_mid",
+            lsl=36.0,
+            target=40.0,
+            usl=44.0,
+            unit="nm",
+            effective_from=datetime(2026, 1, 1),
+        )
+    )
     path = tmp_path_factory.mktemp("small") / "small.duckdb"
     with store.open_warehouse(path, create=True) as con, store.transaction(con):
         insert_frame(con, schema.MEASUREMENTS, pl.DataFrame(rows + prod + refm), file_id=1)
@@ -81,12 +151,17 @@ def test_weekly_health_default_week_and_monitor_rows(small_db):
 def test_weekly_health_fleet_offset_and_repeatability_equal_direct_computation(small_db):
     path, rows = small_db
     h = health.read_weekly_health(path, week="2026-W48")
-    wk = rows.filter(pl.col("measured_at") >= h.week.start).with_columns(pl.col("measured_at").dt.date().alias("day"))
-    daily = wk.group_by("metrology_tool", "site_id", "day").agg(pl.col("value").mean().alias("m"),
-                                                               pl.col("value").var(ddof=1).alias("v"))
+    wk = rows.filter(pl.col("measured_at") >= h.week.start).with_columns(
+        pl.col("measured_at").dt.date().alias("day")
+    )
+    daily = wk.group_by("metrology_tool", "site_id", "day").agg(
+        pl.col("value").mean().alias("m"), pl.col("value").var(ddof=1).alias("v")
+    )
     daily = daily.with_columns((pl.col("m") - pl.col("m").mean().over("site_id", "day")).alias("off"))
     for tool in TOOLS:
-        per_day = daily.filter(pl.col("metrology_tool") == tool).group_by("day").agg(pl.col("off").mean())["off"]
+        per_day = (
+            daily.filter(pl.col("metrology_tool") == tool).group_by("day").agg(pl.col("off").mean())["off"]
+        )
         x = per_day.to_numpy()
         half = stats.t.ppf(0.975, x.size - 1) * x.std(ddof=1) / np.sqrt(x.size)
         row = h.cdsem.filter(pl.col("tool") == tool).row(0, named=True)
@@ -103,8 +178,9 @@ def test_weekly_health_fleet_offset_and_repeatability_equal_direct_computation(s
 
 def test_weekly_health_capture_rate_equals_exact_binomial_interval(small_db):
     path, _ = small_db
-    h = health.read_weekly_health(path, week="2026-W48",
-                                  settings=health.HealthSettings(standard_placed=PLACED))
+    h = health.read_weekly_health(
+        path, week="2026-W48", settings=health.HealthSettings(standard_placed=PLACED)
+    )
     row = h.inspection.filter(pl.col("tool") == "INS-2").row(0, named=True)
     ci = stats.binomtest(190 * 7, PLACED * 7).proportion_ci(0.95, method="exact")  # Clopper-Pearson (scipy)
     assert row["capture_rate"] == pytest.approx(190 / PLACED)

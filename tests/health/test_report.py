@@ -35,8 +35,19 @@ def test_report_weekly_cli_writes_the_html_and_lists_what_needs_a_look(demo_fab,
 
 
 def test_report_weekly_cli_bad_week_reports_the_expected_form(demo_fab, tmp_path):
-    res = CliRunner().invoke(lotline.cli, ["report", "weekly", "--db", str(demo_fab[0]), "--week", "2026-48",
-                                           "--out", str(tmp_path / "x.html")])
+    res = CliRunner().invoke(
+        lotline.cli,
+        [
+            "report",
+            "weekly",
+            "--db",
+            str(demo_fab[0]),
+            "--week",
+            "2026-48",
+            "--out",
+            str(tmp_path / "x.html"),
+        ],
+    )
     assert res.exit_code == 1
     assert res.output == (
         'Error: not an ISO week (found "2026-48", expected YYYY-Www, e.g. 2026-W48).\n'
@@ -48,9 +59,25 @@ def test_capacity_cli_times_follow_the_shot_noise_scaling():
     # common practice: rate = k * beams * J * C^2 * pixel^4, k from the reference point (computed here by hand)
     k = 0.8 / (1 * 0.5 * 0.3**2 * 10.0**4)
     rate = k * 9 * 0.5 * 0.3**2 * 10.0**4
-    res = CliRunner().invoke(lotline.cli, ["capacity", "--beams", "9", "--current-density", "0.5", "--contrast", "0.3",
-                                           "--pixel-nm", "10", "--care-area-cm2", "5", "--reference", "1,0.5,0.3,10,0.8",
-                                           "--json"])
+    res = CliRunner().invoke(
+        lotline.cli,
+        [
+            "capacity",
+            "--beams",
+            "9",
+            "--current-density",
+            "0.5",
+            "--contrast",
+            "0.3",
+            "--pixel-nm",
+            "10",
+            "--care-area-cm2",
+            "5",
+            "--reference",
+            "1,0.5,0.3,10,0.8",
+            "--json",
+        ],
+    )
     assert res.exit_code == 0, res.output
     out = json.loads(res.output)
     assert out["area_rate_cm2_per_h"] == pytest.approx(rate)
@@ -60,7 +87,24 @@ def test_capacity_cli_times_follow_the_shot_noise_scaling():
 
 
 def test_capacity_cli_without_reference_prints_only_the_relative_cost():
-    res = CliRunner().invoke(lotline.cli, ["capacity", "--beams", "1", "--current-density", "0.5", "--contrast", "0.3",
-                                           "--pixel-nm", "10", "--care-area-cm2", "5"])
+    res = CliRunner().invoke(
+        lotline.cli,
+        [
+            "capacity",
+            "--beams",
+            "1",
+            "--current-density",
+            "0.5",
+            "--contrast",
+            "0.3",
+            "--pixel-nm",
+            "10",
+            "--care-area-cm2",
+            "5",
+        ],
+    )
     assert res.exit_code == 0
-    assert res.output.splitlines()[0] == "half the defect size: 16x the scan time (rate ∝ pixel⁴ at fixed current density)."
+    assert (
+        res.output.splitlines()[0]
+        == "half the defect size: 16x the scan time (rate ∝ pixel⁴ at fixed current density)."
+    )

@@ -23,7 +23,9 @@ def test_compare_step_and_ramp_matches_numpy_line_and_loop_change_point():
     frames, ys = [], {}
     for tool, kind in (("A", "ramp"), ("B", "step"), ("C", "flat")):
         x = np.arange(30.0)
-        y = {"ramp": 0.05 * x, "step": np.where(x >= 12, 1.0, 0.0), "flat": 0.0 * x}[kind] + rng.normal(0, 0.1, 30)
+        y = {"ramp": 0.05 * x, "step": np.where(x >= 12, 1.0, 0.0), "flat": 0.0 * x}[kind] + rng.normal(
+            0, 0.1, 30
+        )
         ys[tool] = y
         frames.append(pl.DataFrame({"tool": tool, "seq": x, "value": y}))
     out = compare_step_and_ramp(pl.concat(frames)).sort("tool")

@@ -38,5 +38,3 @@ def case(tmp_path: Path):
         return dst
 
     return _case
-
-

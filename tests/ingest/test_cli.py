@@ -32,7 +32,9 @@ def test_cli_ingest_prints_summary_table_and_exits_0(db, case):
     again = _run("ingest", p, "--db", db)
     assert again.exit_code == 0
     # columns: file, profile (width of "profile"), then right-aligned counts under their headers
-    assert again.stdout.splitlines()[1] == f"{p}  {'-':<7}  {'0':>6}  {'0':>8}  {'0':>10}  {'0':>7}  duplicate"
+    assert (
+        again.stdout.splitlines()[1] == f"{p}  {'-':<7}  {'0':>6}  {'0':>8}  {'0':>10}  {'0':>7}  duplicate"
+    )
 
 
 def test_cli_ingest_rejected_rows_exit_1_and_rejects_lists_them(db, write):
@@ -50,7 +52,10 @@ def test_cli_ingest_failed_file_prints_error_on_stderr_and_exits_1(db, write):
     r = _run("ingest", p, "--db", db)
     assert r.exit_code == 1
     assert r.stdout.splitlines()[1].endswith("failed")
-    assert r.stderr.splitlines()[0] == f'Error: {p}:1:1: file is empty (found "0 bytes", expected a csv header line).'
+    assert (
+        r.stderr.splitlines()[0]
+        == f'Error: {p}:1:1: file is empty (found "0 bytes", expected a csv header line).'
+    )
 
 
 def test_cli_ingest_json_output(db, case):
@@ -60,7 +65,11 @@ def test_cli_ingest_json_output(db, case):
     doc = json.loads(r.stdout)
     assert doc["exit_code"] == 0
     assert {k: doc["files"][0][k] for k in ("path", "status", "profile", "rows_loaded")} == {
-        "path": str(p), "status": "loaded", "profile": "cdsem_long_v2", "rows_loaded": 5}
+        "path": str(p),
+        "status": "loaded",
+        "profile": "cdsem_long_v2",
+        "rows_loaded": 5,
+    }
 
 
 def test_cli_ingest_missing_path_is_usage_error_2(db, tmp_path):
@@ -74,8 +83,10 @@ def test_cli_ingest_bad_profile_folder_is_exit_2(db, case, tmp_path):
     (tmp_path / "profiles" / "x.toml").write_text('name = "x"\nkind = "measurements"\nformat = "xlsx"\n')
     r = _run("ingest", case("measurements/native.csv"), "--db", db, "--profiles", tmp_path / "profiles")
     assert r.exit_code == 2
-    assert r.stderr.splitlines()[0] == (f'Error: {tmp_path / "profiles" / "x.toml"}: unknown format '
-                                        '(found "xlsx", expected csv, parquet, jsonl).')
+    assert r.stderr.splitlines()[0] == (
+        f"Error: {tmp_path / 'profiles' / 'x.toml'}: unknown format "
+        '(found "xlsx", expected csv, parquet, jsonl).'
+    )
 
 
 def test_cli_watch_once_ingests_new_files_once(db, case, tmp_path):
@@ -84,6 +95,7 @@ def test_cli_watch_once_ingests_new_files_once(db, case, tmp_path):
     r = _run("watch", drop, "--db", db, "--once")
     assert r.exit_code == 0
     assert r.stdout.splitlines() == [
-        f"{drop / 'cdsem_long_v2.csv'}  cdsem_long_v2  {'5':>6}  {'0':>8}  {'0':>10}  {'0':>7}  loaded"]
+        f"{drop / 'cdsem_long_v2.csv'}  cdsem_long_v2  {'5':>6}  {'0':>8}  {'0':>10}  {'0':>7}  loaded"
+    ]
     assert _run("watch", drop, "--db", db, "--once").stdout == ""  # nothing new
     assert (drop / "cdsem_long_v2.csv").exists()  # never moved or deleted

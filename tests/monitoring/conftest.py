@@ -30,15 +30,36 @@ severity = "high"
 
 def site_rows(lot: str, wafer: str, values, at: datetime, *, tool="CDS-1", layer="M1_DEV"):
     return [
-        dict(lot_id=lot, wafer_id=wafer, site_id=str(i + 1), x_mm=float(i), y_mm=0.0, product="AX14", layer=layer,
-             stage="develop", parameter="cd_mid", value=float(v), unit="nm", measured_at=at + timedelta(seconds=i),
-             metrology_tool=tool, repeat=1, sample_kind="production")
+        dict(
+            lot_id=lot,
+            wafer_id=wafer,
+            site_id=str(i + 1),
+            x_mm=float(i),
+            y_mm=0.0,
+            product="AX14",
+            layer=layer,
+            stage="develop",
+            parameter="cd_mid",
+            value=float(v),
+            unit="nm",
+            measured_at=at + timedelta(seconds=i),
+            metrology_tool=tool,
+            repeat=1,
+            sample_kind="production",
+        )
         for i, v in enumerate(values)
     ]
 
 
-def make_lots(n_lots: int, *, seed: int = 1, drift_from: int | None = None, drift_per_lot: float = 0.0,
-              tool="CDS-1", start=datetime(2026, 9, 1)):
+def make_lots(
+    n_lots: int,
+    *,
+    seed: int = 1,
+    drift_from: int | None = None,
+    drift_per_lot: float = 0.0,
+    tool="CDS-1",
+    start=datetime(2026, 9, 1),
+):
     """Per lot one wafer of 5 sites: 45 nm + lot effect (sd 0.5) + site noise (sd 0.3), optional linear drift."""
     rng = np.random.default_rng(seed)
     out = []

@@ -13,7 +13,9 @@ import polars as pl
 from warehouse import schema, store
 
 
-def insert_facts(con, table: schema.Table, rows: list[dict], *, path: str = "test.csv", supersede: bool = False) -> int:
+def insert_facts(
+    con, table: schema.Table, rows: list[dict], *, path: str = "test.csv", supersede: bool = False
+) -> int:
     """Insert ``rows`` (dicts of canonical columns) as one new source file; return its file_id.
 
     With ``supersede=True`` the current rows with the same supersede key are marked superseded by it first.

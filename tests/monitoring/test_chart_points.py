@@ -28,7 +28,9 @@ def _assert_stored_equals_facts(path: Path) -> int:
     n = 0
     with store.open_warehouse(path, read_only=True) as con:
         plan = current_plan(con)
-        for sid, chart in con.execute("SELECT series_id, chart FROM chart_series ORDER BY series_id").fetchall():
+        for sid, chart in con.execute(
+            "SELECT series_id, chart FROM chart_series ORDER BY series_id"
+        ).fetchall():
             stored = evaluate._stored_points(con, plan.entry(chart), series_id=sid)
             assert stored is not None, f"series {sid}: chart_points not current after an evaluation"
             facts = evaluate.series_points_from_facts(con, series_id=sid)
@@ -110,7 +112,9 @@ def test_series_points_after_a_new_limit_version_falls_back_to_the_facts(tmp):
     with store.open_warehouse(db, read_only=True) as con:
         plan = current_plan(con)
         for sid in _series_ids(db):
-            e = plan.entry(con.execute("SELECT chart FROM chart_series WHERE series_id = ?", [sid]).fetchall()[0][0])
+            e = plan.entry(
+                con.execute("SELECT chart FROM chart_series WHERE series_id = ?", [sid]).fetchall()[0][0]
+            )
             got = evaluate.series_points(con, series_id=sid)
             assert_frame_equal(got, evaluate.series_points_from_facts(con, series_id=sid))
             if e.name == "wafer-ewma":

@@ -15,8 +15,10 @@ from warehouse import store
 sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 from lotline import cli  # noqa: E402
 
-CAUTION = ("Signals advise; they do not decide. The fab's out-of-control action plan (OCAP) and a qualified "
-           "engineer decide holds, releases, rework and tool downs.")
+CAUTION = (
+    "Signals advise; they do not decide. The fab's out-of-control action plan (OCAP) and a qualified "
+    "engineer decide holds, releases, rework and tool downs."
+)
 
 
 @pytest.fixture()
@@ -34,13 +36,17 @@ def db(tmp_path):
 
 def test_plan_load_malformed_prints_location_and_exits_1(tmp_path):
     bad = tmp_path / "bad.toml"
-    bad.write_text('[[chart]]\nname = "x"\nselect = { layer = "M1", parameter = "cd_mid" }\n'
-                   'statistic = "wafer_mean"\nchart = "ewmaa"\n', encoding="utf-8")
+    bad.write_text(
+        '[[chart]]\nname = "x"\nselect = { layer = "M1", parameter = "cd_mid" }\n'
+        'statistic = "wafer_mean"\nchart = "ewmaa"\n',
+        encoding="utf-8",
+    )
     r = CliRunner().invoke(cli, ["plan", "load", str(bad), "--db", str(tmp_path / "w.duckdb")])
     assert r.exit_code == 1
     assert r.output == (
         f'Error: {bad}:5:9: chart "ewmaa" is not known (expected one of individuals, xbar_s, xbar_r, ewma, cusum, u, '
-        'laney_u).\n  Fix: did you mean "ewma"? Use one of the listed values.\n')
+        'laney_u).\n  Fix: did you mean "ewma"? Use one of the listed values.\n'
+    )
     assert not (tmp_path / "w.duckdb").exists()
 
 
@@ -61,28 +67,56 @@ def test_evaluate_then_excursions_list_json_has_the_documented_keys(db):
     assert r.output.endswith(CAUTION + "\n")
     r = CliRunner().invoke(cli, ["excursions", "list", "--open", "--json", "--db", str(db)])
     rows = json.loads(r.output)
-    assert rows and set(rows[0]) >= {"id", "state", "severity", "chart", "layer", "parameter", "split", "rules",
-                                      "first_at", "last_at", "lots"}
+    assert rows and set(rows[0]) >= {
+        "id",
+        "state",
+        "severity",
+        "chart",
+        "layer",
+        "parameter",
+        "split",
+        "rules",
+        "first_at",
+        "last_at",
+        "lots",
+    }
     assert rows[0]["split"] == {"metrology_tool": "CDS-1"}
     assert "L9999" in rows[0]["lots"]
 
 
 def test_excursions_set_records_the_disposition(db):
     CliRunner().invoke(cli, ["evaluate", "--db", str(db)])
-    r = CliRunner().invoke(cli, ["excursions", "set", "1", "--state", "acknowledged", "--by", "a.engineer",
-                                 "--db", str(db)])
+    r = CliRunner().invoke(
+        cli, ["excursions", "set", "1", "--state", "acknowledged", "--by", "a.engineer", "--db", str(db)]
+    )
     assert r.exit_code == 0, r.output
     assert r.output == f"excursion #1: open -> acknowledged by a.engineer\n{CAUTION}\n"
-    r = CliRunner().invoke(cli, ["excursions", "set", "1", "--state", "closed", "--by", "a.engineer",
-                                 "--db", str(db)])
+    r = CliRunner().invoke(
+        cli, ["excursions", "set", "1", "--state", "closed", "--by", "a.engineer", "--db", str(db)]
+    )
     assert r.exit_code == 1
     assert "closing an excursion needs a classification" in r.output
 
 
 def test_limits_freeze_show_history(db):
     CliRunner().invoke(cli, ["evaluate", "--db", str(db)])
-    r = CliRunner().invoke(cli, ["limits", "freeze", "--chart", "m1-cd", "--window", "2026-09-01..2026-09-06",
-                                 "--reason", "first week", "--by", "a.engineer", "--db", str(db)])
+    r = CliRunner().invoke(
+        cli,
+        [
+            "limits",
+            "freeze",
+            "--chart",
+            "m1-cd",
+            "--window",
+            "2026-09-01..2026-09-06",
+            "--reason",
+            "first week",
+            "--by",
+            "a.engineer",
+            "--db",
+            str(db),
+        ],
+    )
     assert r.exit_code == 0, r.output
     assert r.output.startswith("series 1: v2 center ")
     hist = json.loads(CliRunner().invoke(cli, ["limits", "history", "--json", "--db", str(db)]).output)
@@ -101,8 +135,16 @@ def test_limits_freeze_unknown_chart_suggests_the_name(db):
 
 
 def test_every_monitoring_command_help_ends_with_an_example():
-    for args in (["plan", "load"], ["plan", "show"], ["limits", "show"], ["limits", "freeze"], ["limits", "history"],
-                 ["evaluate"], ["excursions", "list"], ["excursions", "set"]):
+    for args in (
+        ["plan", "load"],
+        ["plan", "show"],
+        ["limits", "show"],
+        ["limits", "freeze"],
+        ["limits", "history"],
+        ["evaluate"],
+        ["excursions", "list"],
+        ["excursions", "set"],
+    ):
         r = CliRunner().invoke(cli, [*args, "--help"])
         assert r.exit_code == 0
         assert "Example: lotline " in r.output, args
@@ -113,4 +155,6 @@ def test_evaluate_without_plan_says_how_to_load_one(tmp_path):
     store.init_warehouse(path)
     r = CliRunner().invoke(cli, ["evaluate", "--db", str(path)])
     assert r.exit_code == 1
-    assert r.output == ("Error: no monitoring plan is loaded.\n  Fix: run `lotline plan load PLAN.toml` first.\n")
+    assert r.output == (
+        "Error: no monitoring plan is loaded.\n  Fix: run `lotline plan load PLAN.toml` first.\n"
+    )

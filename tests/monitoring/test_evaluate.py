@@ -38,8 +38,10 @@ def test_evaluate_slow_drift_caught_by_ewma_with_frozen_limits_unmoved(wh):
     evaluate.evaluate_warehouse(wh, user="t")
     after = _limits(wh)
     assert after.height == 1  # no new version: evaluation never re-estimates frozen limits
-    assert after.select("version", "center", "sigma", "lcl", "ucl").rows() == before.select(
-        "version", "center", "sigma", "lcl", "ucl").rows()
+    assert (
+        after.select("version", "center", "sigma", "lcl", "ucl").rows()
+        == before.select("version", "center", "sigma", "lcl", "ucl").rows()
+    )
     sig = _signals(wh)
     ewma = sig.filter(sig["rule"] == "ewma")
     assert ewma.height > 0
@@ -71,8 +73,13 @@ def test_evaluate_superseding_export_withdraws_signals_on_superseded_rows(wh):
     assert "we1" in bad["rule"].to_list()
     # corrected re-export of that lot: the old rows are superseded, the new values are in control
     with store.open_warehouse(wh) as con:
-        insert_facts(con, schema.MEASUREMENTS, site_rows("L9999", "L9999-01", [45.1] * 5, datetime(2026, 9, 15)),
-                     path="corrected.csv", supersede=True)
+        insert_facts(
+            con,
+            schema.MEASUREMENTS,
+            site_rows("L9999", "L9999-01", [45.1] * 5, datetime(2026, 9, 15)),
+            path="corrected.csv",
+            supersede=True,
+        )
     s = evaluate.evaluate_warehouse(wh, user="t")
     assert s.series_recomputed == 1 and s.signals_withdrawn == bad.height
     with store.open_warehouse(wh, read_only=True) as con:
@@ -91,10 +98,15 @@ def test_evaluate_reexport_on_another_tool_moves_the_point_and_withdraws_the_old
     evaluate.evaluate_warehouse(wh, user="t")
     with store.open_warehouse(wh) as con:
         # the supersede key includes the metrology tool, so mark the old rows by hand like a lot-level correction
-        fid = insert_facts(con, schema.MEASUREMENTS,
-                           site_rows("L9999", "L9999-01", [45.0] * 5, datetime(2026, 9, 15), tool="CDS-2"))
-        con.execute("UPDATE measurements SET _superseded_by = ? WHERE lot_id = 'L9999' AND metrology_tool = 'CDS-1'",
-                    [fid])
+        fid = insert_facts(
+            con,
+            schema.MEASUREMENTS,
+            site_rows("L9999", "L9999-01", [45.0] * 5, datetime(2026, 9, 15), tool="CDS-2"),
+        )
+        con.execute(
+            "UPDATE measurements SET _superseded_by = ? WHERE lot_id = 'L9999' AND metrology_tool = 'CDS-1'",
+            [fid],
+        )
     evaluate.evaluate_warehouse(wh, user="t")
     with store.open_warehouse(wh, read_only=True) as con:
         old = queries.series_signals(con, series_id=1)
@@ -161,19 +173,31 @@ def test_evaluate_split_by_history_new_tool_gets_its_series_automatically(tmp_pa
     with store.open_warehouse(path, create=True) as con:
         store_plan(con, parse_plan(SPLIT_PLAN, path="p.toml"), user="t")
         insert_facts(con, schema.MEASUREMENTS, [r for lot in lots for r in lot])
-        insert_facts(con, schema.PROCESS_HISTORY, [
-            _history(f"L{i:04d}", "TRACK-1", "PEB-1", datetime(2026, 9, 1) + timedelta(hours=6 * i - 1))
-            for i in range(12)])
+        insert_facts(
+            con,
+            schema.PROCESS_HISTORY,
+            [
+                _history(f"L{i:04d}", "TRACK-1", "PEB-1", datetime(2026, 9, 1) + timedelta(hours=6 * i - 1))
+                for i in range(12)
+            ],
+        )
     evaluate.evaluate_warehouse(path, user="t")
     with store.open_warehouse(path) as con:
-        insert_facts(con, schema.PROCESS_HISTORY, [
-            _history(f"L{i:04d}", "TRACK-2", "PEB-3", datetime(2026, 9, 1) + timedelta(hours=6 * i - 1))
-            for i in range(12, 20)])
+        insert_facts(
+            con,
+            schema.PROCESS_HISTORY,
+            [
+                _history(f"L{i:04d}", "TRACK-2", "PEB-3", datetime(2026, 9, 1) + timedelta(hours=6 * i - 1))
+                for i in range(12, 20)
+            ],
+        )
     evaluate.evaluate_warehouse(path, user="t")
     with store.open_warehouse(path, read_only=True) as con:
         info = queries.series_info(con).sort("series_id")
-    assert info.select("process_tool", "chamber", "n_points").rows() == [("TRACK-1", "PEB-1", 12),
-                                                                          ("TRACK-2", "PEB-3", 8)]
+    assert info.select("process_tool", "chamber", "n_points").rows() == [
+        ("TRACK-1", "PEB-1", 12),
+        ("TRACK-2", "PEB-3", 8),
+    ]
     assert info["split_json"][1] == '{"chamber": "PEB-3", "process_tool": "TRACK-2"}'
 
 
@@ -182,9 +206,22 @@ def test_evaluate_out_of_spec_is_its_own_signal_without_limit_version(wh):
     lots.append(site_rows("L9000", "L9000-01", [45.0, 45.0, 45.0, 45.0, 50.5], datetime(2026, 9, 20)))
     load(wh, lots)
     with store.open_warehouse(wh) as con:
-        insert_facts(con, schema.SPEC_LIMITS, [dict(product="*", layer="M1_DEV", parameter="cd_mid", lsl=40.5,
-                                                     target=45.0, usl=49.5, unit="nm",
-                                                     effective_from=datetime(2026, 1, 1))])
+        insert_facts(
+            con,
+            schema.SPEC_LIMITS,
+            [
+                dict(
+                    product="*",
+                    layer="M1_DEV",
+                    parameter="cd_mid",
+                    lsl=40.5,
+                    target=45.0,
+                    usl=49.5,
+                    unit="nm",
+                    effective_from=datetime(2026, 1, 1),
+                )
+            ],
+        )
     evaluate.evaluate_warehouse(wh, user="t")
     sig = _signals(wh)
     oos = sig.filter(sig["rule"] == "oos")
@@ -215,9 +252,19 @@ def test_evaluate_laney_u_centre_is_total_defects_over_total_area(tmp_path):
         count = int(rng.negative_binomial(1.0, 1.0 / (1.0 + 0.1 * area)))
         if i == 25:
             count = 900
-        rows.append(dict(lot_id=f"D{i:03d}", wafer_id=f"D{i:03d}-01", product="AX14", layer="M1_ETCH_INSP",
-                         inspection_tool="INS-1", inspected_at=datetime(2026, 9, 1) + timedelta(hours=i),
-                         inspected_area_cm2=area, defect_count=count, sample_kind="production"))
+        rows.append(
+            dict(
+                lot_id=f"D{i:03d}",
+                wafer_id=f"D{i:03d}-01",
+                product="AX14",
+                layer="M1_ETCH_INSP",
+                inspection_tool="INS-1",
+                inspected_at=datetime(2026, 9, 1) + timedelta(hours=i),
+                inspected_area_cm2=area,
+                defect_count=count,
+                sample_kind="production",
+            )
+        )
     with store.open_warehouse(path, create=True) as con:
         store_plan(con, parse_plan(DEFECT_PLAN, path="p.toml"), user="t")
         insert_facts(con, schema.INSPECTIONS, rows)
@@ -225,7 +272,9 @@ def test_evaluate_laney_u_centre_is_total_defects_over_total_area(tmp_path):
     lim = _limits(path)
     base = rows[:20]
     # u-bar = sum(c) / sum(a) (NIST/SEMATECH e-Handbook §6.3.3.2, u charts)
-    assert lim["center"][0] == pytest.approx(sum(r["defect_count"] for r in base) / sum(r["inspected_area_cm2"] for r in base))
+    assert lim["center"][0] == pytest.approx(
+        sum(r["defect_count"] for r in base) / sum(r["inspected_area_cm2"] for r in base)
+    )
     assert lim["sigma_source"][0] == "laney_u_prime"
     sig = _signals(path)
     assert "D025" in sig["lot_id"].to_list()
@@ -240,8 +289,14 @@ def test_evaluate_wafer_mean_limits_use_variance_components_of_the_charted_level
         lot_eff = rng.normal(0, 0.6)
         for j in range(b):
             y[i, j] = 45.0 + lot_eff + rng.normal(0, 0.3) + rng.normal(0, 0.3, n)
-            rows.append(site_rows(f"L{i:04d}", f"L{i:04d}-{j + 1:02d}", y[i, j],
-                                  datetime(2026, 9, 1) + timedelta(hours=6 * i, minutes=10 * j)))
+            rows.append(
+                site_rows(
+                    f"L{i:04d}",
+                    f"L{i:04d}-{j + 1:02d}",
+                    y[i, j],
+                    datetime(2026, 9, 1) + timedelta(hours=6 * i, minutes=10 * j),
+                )
+            )
     rows.append(site_rows("L9000", "L9000-01", [45.0] * n, datetime(2026, 10, 1)))
     load(wh, rows)
     with store.open_warehouse(wh) as con:  # plan version 2: baseline = the first 75 wafers (all 25 lots)

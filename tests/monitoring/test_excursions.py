@@ -34,13 +34,24 @@ def test_record_disposition_appends_audit_rows_and_never_rewrites_them(wh):
     with store.open_warehouse(wh, read_only=True) as con:
         xid = int(queries.list_excursions(con).sort("first_at")["excursion_id"][0])
     excursions.record_disposition(wh, xid, user="a.engineer", state="acknowledged", comment="looking")
-    excursions.record_disposition(wh, xid, user="a.engineer", state="closed", classification="measurement",
-                                  cause="metrology", action="re-measured on SEM-02", lots=["L0031", "L0030"])
+    excursions.record_disposition(
+        wh,
+        xid,
+        user="a.engineer",
+        state="closed",
+        classification="measurement",
+        cause="metrology",
+        action="re-measured on SEM-02",
+        lots=["L0031", "L0030"],
+    )
     with store.open_warehouse(wh, read_only=True) as con:
         hist = queries.excursion_history(con, excursion_id=xid)
         det = queries.excursion_detail(con, excursion_id=xid)
     assert hist.select("changed_by", "from_state", "to_state").rows() == [
-        ("lotline-auto", None, "open"), ("a.engineer", "open", "acknowledged"), ("a.engineer", "acknowledged", "closed")]
+        ("lotline-auto", None, "open"),
+        ("a.engineer", "open", "acknowledged"),
+        ("a.engineer", "acknowledged", "closed"),
+    ]
     assert hist["lots_affected_json"][2] == '["L0030","L0031"]'
     assert hist["classification"][2] == "measurement"
     assert det["state"][0] == "closed"
@@ -56,8 +67,9 @@ def test_record_disposition_unknown_id_names_the_fix(wh):
     _with_two_bursts(wh)
     with pytest.raises(excursions.DispositionError) as err:
         excursions.record_disposition(wh, 999, user="a.engineer", state="acknowledged")
-    assert str(err.value) == ("no excursion with this id (found 999).\n"
-                              "  Fix: list them with `lotline excursions list`.")
+    assert str(err.value) == (
+        "no excursion with this id (found 999).\n  Fix: list them with `lotline excursions list`."
+    )
 
 
 def test_excursion_whose_signals_are_withdrawn_closes_with_an_audit_row(wh):
@@ -69,8 +81,12 @@ def test_excursion_whose_signals_are_withdrawn_closes_with_an_audit_row(wh):
     from warehouse import schema
 
     with store.open_warehouse(wh) as con:
-        insert_facts(con, schema.MEASUREMENTS, site_rows("L9999", "L9999-01", [45.0] * 5, datetime(2026, 9, 15)),
-                     supersede=True)
+        insert_facts(
+            con,
+            schema.MEASUREMENTS,
+            site_rows("L9999", "L9999-01", [45.0] * 5, datetime(2026, 9, 15)),
+            supersede=True,
+        )
     evaluate.evaluate_warehouse(wh, user="t")
     with store.open_warehouse(wh, read_only=True) as con:
         exc = queries.list_excursions(con)

@@ -48,8 +48,15 @@ def _lots():
         mu = 45.0 + rng.normal(0, 0.4) + (0.9 if 16 <= i < 23 else 0.0) + (2.5 if i == 24 else 0.0)
         tool = "CDS-1" if i % 3 else "CDS-2"
         lot = f"L{i:03d}"
-        out.append(site_rows(lot, f"{lot}-01", mu + rng.normal(0, 0.3, 5), datetime(2026, 9, 1) + timedelta(hours=4 * i),
-                             tool=tool))
+        out.append(
+            site_rows(
+                lot,
+                f"{lot}-01",
+                mu + rng.normal(0, 0.3, 5),
+                datetime(2026, 9, 1) + timedelta(hours=4 * i),
+                tool=tool,
+            )
+        )
     return out
 
 
@@ -75,11 +82,13 @@ def _standing(path: Path) -> set[tuple]:
 
 def _state(path: Path) -> set[tuple]:
     with store.open_warehouse(path, read_only=True) as con:
-        return set(con.execute(
-            """SELECT c.chart, c.split_json, t.n_points, t.last_point_key, round(t.ewma, 9), round(t.cusum_hi, 9),
+        return set(
+            con.execute(
+                """SELECT c.chart, c.split_json, t.n_points, t.last_point_key, round(t.ewma, 9), round(t.cusum_hi, 9),
                       round(t.cusum_lo, 9)
                FROM series_state t JOIN chart_series c USING (series_id)"""
-        ).fetchall())
+            ).fetchall()
+        )
 
 
 @st.composite

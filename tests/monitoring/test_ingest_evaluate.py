@@ -19,8 +19,10 @@ def _export(path: Path, lots: range, value=lambda i, s: 45.0 + 0.1 * ((i * 7 + s
     lines = [HEADER]
     for i in lots:
         for s in range(1, 6):
-            lines.append(f"L{i:03d},L{i:03d}-01,1,{s},{s}.0,0.0,AX14,M1_DEV,DEV,CD_MID,,{value(i, s):.3f},"
-                         f"2026-09-{1 + i // 4:02d}T{(i % 4) * 6:02d}:00:0{s}Z,CDS-1,R1,1,PROD")
+            lines.append(
+                f"L{i:03d},L{i:03d}-01,1,{s},{s}.0,0.0,AX14,M1_DEV,DEV,CD_MID,,{value(i, s):.3f},"
+                f"2026-09-{1 + i // 4:02d}T{(i % 4) * 6:02d}:00:0{s}Z,CDS-1,R1,1,PROD"
+            )
     path.write_text("\n".join(lines) + "\n", encoding="utf-8")
 
 

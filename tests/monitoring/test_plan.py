@@ -16,55 +16,110 @@ RULES = "we1, we2, we3, we4, nelson1, nelson2, nelson3, nelson4, nelson5, nelson
 STATS = "site_value, wafer_mean, wafer_sd, wafer_range, lot_mean, defect_density, adder_density"
 
 CASES = [
-    ("toml_syntax", 'name = "x\n',
-     "plan.toml:1:10: TOML syntax error: Illegal character '\\n'.\n  Fix: correct the TOML syntax (https://toml.io)."),
-    ("unknown_table", '[plna]\nname = "x"\n' + H + 'statistic = "wafer_mean"\nchart = "ewma"\n',
-     'plan.toml:1:1: the plan has no key "plna".\n  Fix: did you mean "plan"? Known keys: plan, defaults, chart.'),
-    ("unknown_entry_key", H + 'statistic = "wafer_mean"\nchart = "ewma"\nsplt = ["chamber"]\n',
-     'plan.toml:6:1: chart "m1" has no key "splt".\n  Fix: did you mean "split"? Known keys: name, description, '
-     "select, statistic, split, step, chart, params, rules, baseline, severity, spec_check."),
-    ("missing_chart_type", H + 'statistic = "wafer_mean"\n',
-     'plan.toml:1:1: chart "m1" lacks required key "chart".\n  Fix: add the key "chart" to this [[chart]] table.'),
-    ("bad_statistic", H + 'statistic = "wafer_men"\nchart = "ewma"\n',
-     f'plan.toml:4:13: statistic "wafer_men" is not known (expected one of {STATS}).\n'
-     '  Fix: did you mean "wafer_mean"? Use one of the listed values.'),
-    ("bad_rule_inline_array", H + 'statistic = "wafer_mean"\nchart = "ewma"\nrules = ["we1", "we5"]\n',
-     f'plan.toml:6:17: rule "we5" is not known (expected one of {RULES}).\n'
-     '  Fix: did you mean "we4"? Use one of the listed values.'),
-    ("bad_rule_multiline_array", H + 'statistic = "wafer_mean"\nchart = "ewma"\nrules = [\n  "we1",\n  "nelson9",\n]\n',
-     f'plan.toml:8:3: rule "nelson9" is not known (expected one of {RULES}).\n'
-     '  Fix: did you mean "nelson8"? Use one of the listed values.'),
-    ("bad_split_key", H + 'statistic = "wafer_mean"\nchart = "ewma"\nsplit = ["process_tool", "chambre"]\nstep = "M1_LITHO"\n',
-     'plan.toml:6:26: split key "chambre" is not known (expected one of process_tool, chamber, metrology_tool, '
-     'product).\n  Fix: did you mean "chamber"? Use one of the listed values.'),
-    ("split_without_step", H + 'statistic = "wafer_mean"\nchart = "ewma"\nsplit = ["chamber"]\n',
-     "plan.toml:6:9: splitting by process_tool or chamber needs the route step that made the layer.\n"
-     '  Fix: add step = "<route step>".'),
-    ("lambda_out_of_range", H + 'statistic = "wafer_mean"\nchart = "ewma"\nparams = { lambda = 1.5 }\n',
-     "plan.toml:6:21: parameter lambda is out of range (found 1.5, expected a number in (0, 1])."),
-    ("unknown_param_subtable", H + 'statistic = "wafer_mean"\nchart = "cusum"\n[chart.params]\nhh = 4.0\n',
-     'plan.toml:7:1: chart type "cusum" has no key "hh".\n  Fix: did you mean "h"? Known keys: k, cusum_k, h, headstart.'),
-    ("u_chart_on_measurements", H + 'statistic = "wafer_mean"\nchart = "laney_u"\n',
-     'plan.toml:5:9: chart "laney_u" needs a defect statistic (found "wafer_mean", expected defect_density or '
-     "adder_density)."),
-    ("baseline_too_small", H + 'statistic = "wafer_mean"\nchart = "ewma"\nbaseline = { first = 3 }\n',
-     "plan.toml:6:22: baseline first must be a whole number of subgroups (found 3, expected an integer >= 5)."),
-    ("baseline_window_reversed",
-     H + 'statistic = "wafer_mean"\nchart = "ewma"\nbaseline = { from = 2026-09-10, to = 2026-09-01 }\n',
-     'plan.toml:6:38: baseline window ends before it starts (found "2026-09-01", expected a date after 2026-09-10).'),
-    ("duplicate_name", H + 'statistic = "wafer_mean"\nchart = "ewma"\n\n' + H + 'statistic = "lot_mean"\nchart = "individuals"\n',
-     'plan.toml:8:8: chart name "m1" is used twice.\n  Fix: rename one (the first is on line 2).'),
-    ("unknown_severity", H + 'statistic = "wafer_mean"\nchart = "ewma"\nseverity = "urgent"\n',
-     'plan.toml:6:12: severity "urgent" is not known (expected one of low, medium, high, critical).\n'
-     "  Fix: Use one of the listed values."),
-    ("unknown_stage",
-     '[[chart]]\nname = "m1"\nselect = { layer = "M1_DEV", parameter = "cd_mid", stage = "dev" }\n'
-     'statistic = "wafer_mean"\nchart = "ewma"\n',
-     'plan.toml:3:60: select stage "dev" is not known (expected one of develop, etch, *).\n'
-     '  Fix: did you mean "develop"? Use one of the listed values.'),
-    ("name_not_a_string",
-     '[[chart]]\nname = 7\nselect = { layer = "M1_DEV", parameter = "cd_mid" }\nstatistic = "wafer_mean"\nchart = "ewma"\n',
-     "plan.toml:2:8: chart name must be a string (found 7, expected a quoted string)."),
+    (
+        "toml_syntax",
+        'name = "x\n',
+        "plan.toml:1:10: TOML syntax error: Illegal character '\\n'.\n  Fix: correct the TOML syntax (https://toml.io).",
+    ),
+    (
+        "unknown_table",
+        '[plna]\nname = "x"\n' + H + 'statistic = "wafer_mean"\nchart = "ewma"\n',
+        'plan.toml:1:1: the plan has no key "plna".\n  Fix: did you mean "plan"? Known keys: plan, defaults, chart.',
+    ),
+    (
+        "unknown_entry_key",
+        H + 'statistic = "wafer_mean"\nchart = "ewma"\nsplt = ["chamber"]\n',
+        'plan.toml:6:1: chart "m1" has no key "splt".\n  Fix: did you mean "split"? Known keys: name, description, '
+        "select, statistic, split, step, chart, params, rules, baseline, severity, spec_check.",
+    ),
+    (
+        "missing_chart_type",
+        H + 'statistic = "wafer_mean"\n',
+        'plan.toml:1:1: chart "m1" lacks required key "chart".\n  Fix: add the key "chart" to this [[chart]] table.',
+    ),
+    (
+        "bad_statistic",
+        H + 'statistic = "wafer_men"\nchart = "ewma"\n',
+        f'plan.toml:4:13: statistic "wafer_men" is not known (expected one of {STATS}).\n'
+        '  Fix: did you mean "wafer_mean"? Use one of the listed values.',
+    ),
+    (
+        "bad_rule_inline_array",
+        H + 'statistic = "wafer_mean"\nchart = "ewma"\nrules = ["we1", "we5"]\n',
+        f'plan.toml:6:17: rule "we5" is not known (expected one of {RULES}).\n'
+        '  Fix: did you mean "we4"? Use one of the listed values.',
+    ),
+    (
+        "bad_rule_multiline_array",
+        H + 'statistic = "wafer_mean"\nchart = "ewma"\nrules = [\n  "we1",\n  "nelson9",\n]\n',
+        f'plan.toml:8:3: rule "nelson9" is not known (expected one of {RULES}).\n'
+        '  Fix: did you mean "nelson8"? Use one of the listed values.',
+    ),
+    (
+        "bad_split_key",
+        H
+        + 'statistic = "wafer_mean"\nchart = "ewma"\nsplit = ["process_tool", "chambre"]\nstep = "M1_LITHO"\n',
+        'plan.toml:6:26: split key "chambre" is not known (expected one of process_tool, chamber, metrology_tool, '
+        'product).\n  Fix: did you mean "chamber"? Use one of the listed values.',
+    ),
+    (
+        "split_without_step",
+        H + 'statistic = "wafer_mean"\nchart = "ewma"\nsplit = ["chamber"]\n',
+        "plan.toml:6:9: splitting by process_tool or chamber needs the route step that made the layer.\n"
+        '  Fix: add step = "<route step>".',
+    ),
+    (
+        "lambda_out_of_range",
+        H + 'statistic = "wafer_mean"\nchart = "ewma"\nparams = { lambda = 1.5 }\n',
+        "plan.toml:6:21: parameter lambda is out of range (found 1.5, expected a number in (0, 1]).",
+    ),
+    (
+        "unknown_param_subtable",
+        H + 'statistic = "wafer_mean"\nchart = "cusum"\n[chart.params]\nhh = 4.0\n',
+        'plan.toml:7:1: chart type "cusum" has no key "hh".\n  Fix: did you mean "h"? Known keys: k, cusum_k, h, headstart.',
+    ),
+    (
+        "u_chart_on_measurements",
+        H + 'statistic = "wafer_mean"\nchart = "laney_u"\n',
+        'plan.toml:5:9: chart "laney_u" needs a defect statistic (found "wafer_mean", expected defect_density or '
+        "adder_density).",
+    ),
+    (
+        "baseline_too_small",
+        H + 'statistic = "wafer_mean"\nchart = "ewma"\nbaseline = { first = 3 }\n',
+        "plan.toml:6:22: baseline first must be a whole number of subgroups (found 3, expected an integer >= 5).",
+    ),
+    (
+        "baseline_window_reversed",
+        H + 'statistic = "wafer_mean"\nchart = "ewma"\nbaseline = { from = 2026-09-10, to = 2026-09-01 }\n',
+        'plan.toml:6:38: baseline window ends before it starts (found "2026-09-01", expected a date after 2026-09-10).',
+    ),
+    (
+        "duplicate_name",
+        H
+        + 'statistic = "wafer_mean"\nchart = "ewma"\n\n'
+        + H
+        + 'statistic = "lot_mean"\nchart = "individuals"\n',
+        'plan.toml:8:8: chart name "m1" is used twice.\n  Fix: rename one (the first is on line 2).',
+    ),
+    (
+        "unknown_severity",
+        H + 'statistic = "wafer_mean"\nchart = "ewma"\nseverity = "urgent"\n',
+        'plan.toml:6:12: severity "urgent" is not known (expected one of low, medium, high, critical).\n'
+        "  Fix: Use one of the listed values.",
+    ),
+    (
+        "unknown_stage",
+        '[[chart]]\nname = "m1"\nselect = { layer = "M1_DEV", parameter = "cd_mid", stage = "dev" }\n'
+        'statistic = "wafer_mean"\nchart = "ewma"\n',
+        'plan.toml:3:60: select stage "dev" is not known (expected one of develop, etch, *).\n'
+        '  Fix: did you mean "develop"? Use one of the listed values.',
+    ),
+    (
+        "name_not_a_string",
+        '[[chart]]\nname = 7\nselect = { layer = "M1_DEV", parameter = "cd_mid" }\nstatistic = "wafer_mean"\nchart = "ewma"\n',
+        "plan.toml:2:8: chart name must be a string (found 7, expected a quoted string).",
+    ),
 ]
 
 
@@ -96,15 +151,21 @@ def test_parse_plan_applies_common_practice_defaults():
 
 
 def test_parse_plan_defaults_table_applies_to_entries_that_omit_the_key():
-    text = '[defaults]\nseverity = "high"\nrules = ["we1", "we4"]\n\n' + H + 'statistic = "wafer_mean"\nchart = "ewma"\n'
+    text = (
+        '[defaults]\nseverity = "high"\nrules = ["we1", "we4"]\n\n'
+        + H
+        + 'statistic = "wafer_mean"\nchart = "ewma"\n'
+    )
     e = parse_plan(text, path="p.toml").entries[0]
     assert e.severity == "high" and e.rules == ("we1", "we4")
 
 
 def test_describe_plan_shows_published_in_control_arl():
-    text = (H + 'statistic = "wafer_mean"\nchart = "individuals"\nrules = ["we1", "we2", "we3", "we4"]\n\n'
-            '[[chart]]\nname = "m2"\nselect = { layer = "M1_DEV", parameter = "lwr" }\nstatistic = "wafer_mean"\n'
-            'chart = "individuals"\n')
+    text = (
+        H + 'statistic = "wafer_mean"\nchart = "individuals"\nrules = ["we1", "we2", "we3", "we4"]\n\n'
+        '[[chart]]\nname = "m2"\nselect = { layer = "M1_DEV", parameter = "lwr" }\nstatistic = "wafer_mean"\n'
+        'chart = "individuals"\n'
+    )
     rows = describe_plan(parse_plan(text, path="p.toml"))
     # Champ & Woodall (1987), Technometrics 29(4): all four WE rules 91.75; rule 1 alone 1/0.0027 = 370.4
     assert rows[0]["in_control_arl"]["rules"] == pytest.approx(91.75, abs=0.05)
@@ -125,11 +186,14 @@ def test_read_plan_missing_file_names_the_path(tmp_path):
 
 
 def test_check_plan_step_with_wildcard_layer_is_refused():
-    text = ('[[chart]]\nname = "m1"\nselect = { layer = "*_DEV", parameter = "cd_mid" }\nstatistic = "wafer_mean"\n'
-            'chart = "ewma"\nsplit = ["chamber"]\nstep = "M1_LITHO"\n')
+    text = (
+        '[[chart]]\nname = "m1"\nselect = { layer = "*_DEV", parameter = "cd_mid" }\nstatistic = "wafer_mean"\n'
+        'chart = "ewma"\nsplit = ["chamber"]\nstep = "M1_LITHO"\n'
+    )
     assert str(check_plan(text, path="plan.toml")[0]) == (
         'plan.toml:7:8: a route step belongs to one layer, but the selected layer has wildcards (found "*_DEV", '
-        "expected a concrete layer name).\n  Fix: write one [[chart]] per layer.")
+        "expected a concrete layer name).\n  Fix: write one [[chart]] per layer."
+    )
 
 
 def test_demo_fab_plan_is_valid_and_covers_every_measured_layer():
@@ -138,8 +202,12 @@ def test_demo_fab_plan_is_valid_and_covers_every_measured_layer():
     from demo_fab.fab import INSPECTION_STEPS, MEASURED_LAYERS
 
     plan = read_plan(Path(__file__).resolve().parents[2] / "demo_fab" / "plan.toml")
-    covered = {(m.name, e.name) for m in MEASURED_LAYERS for e in plan.entries
-               if e.matches(layer=m.name, parameter="cd_mid")}
+    covered = {
+        (m.name, e.name)
+        for m in MEASURED_LAYERS
+        for e in plan.entries
+        if e.matches(layer=m.name, parameter="cd_mid")
+    }
     assert {m.name for m in MEASURED_LAYERS} <= {c[0] for c in covered}
     insp = {s.name for s in INSPECTION_STEPS}
     assert all(any(e.is_defect and e.matches(layer=s, parameter="total") for e in plan.entries) for s in insp)
@@ -154,11 +222,18 @@ def test_store_plan_refuses_an_entry_that_changes_its_statistic_under_the_same_n
     v1 = H + 'statistic = "wafer_mean"\nchart = "ewma"\n'
     with store.open_warehouse(path, create=True) as con:
         assert store_plan(con, parse_plan(v1, path="plan.toml"), user="t") == 1
-        assert store_plan(con, parse_plan(v1.replace('"ewma"', '"cusum"'), path="plan.toml"), user="t") is not None
+        assert (
+            store_plan(con, parse_plan(v1.replace('"ewma"', '"cusum"'), path="plan.toml"), user="t")
+            is not None
+        )
     with store.open_warehouse(path) as con, pytest.raises(ConfigError) as err:
-        store_plan(con, parse_plan(v1.replace('"ewma"', '"cusum"').replace("wafer_mean", "wafer_sd"),
-                                   path="plan.toml"), user="t")
+        store_plan(
+            con,
+            parse_plan(v1.replace('"ewma"', '"cusum"').replace("wafer_mean", "wafer_sd"), path="plan.toml"),
+            user="t",
+        )
     assert str(err.value) == (
         'plan.toml:1:1: chart "m1" changes its statistic, but its series and frozen limits belong to the loaded '
         'definition (found "wafer_sd", expected wafer_mean as in plan version 2).\n'
-        "  Fix: give the changed chart a new name (the old one's history stays), or keep the old definition.")
+        "  Fix: give the changed chart a new name (the old one's history stays), or keep the old definition."
+    )

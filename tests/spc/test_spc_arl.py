@@ -25,7 +25,9 @@ def test_shewhart_arl_rule1_alone_is_one_over_0027():
     assert round(shewhart_arl(["we1"])[0].arl, 1) == 370.4
     # Shifted mean: 1 / (P(Z > 3 - d) + P(Z < -3 - d)), the standard formula.
     d = 1.0
-    assert shewhart_arl(["nelson1"], [d])[0].arl == pytest.approx(1 / (norm.sf(3 - d) + norm.cdf(-3 - d)), rel=1e-12)
+    assert shewhart_arl(["nelson1"], [d])[0].arl == pytest.approx(
+        1 / (norm.sf(3 - d) + norm.cdf(-3 - d)), rel=1e-12
+    )
 
 
 def test_expected_arl_western_electric_set_matches_champ_woodall():
@@ -35,7 +37,12 @@ def test_expected_arl_western_electric_set_matches_champ_woodall():
 
 @pytest.mark.parametrize(
     "rules",
-    [["we1", "we2"], ["we1", "we4"], ["we3"], ["nelson1", "nelson2", "nelson5", "nelson6", "nelson7", "nelson8"]],
+    [
+        ["we1", "we2"],
+        ["we1", "we4"],
+        ["we3"],
+        ["nelson1", "nelson2", "nelson5", "nelson6", "nelson7", "nelson8"],
+    ],
 )
 @pytest.mark.parametrize("shift", [0.0, 1.0])
 def test_shewhart_arl_markov_agrees_with_seeded_simulation(rules, shift):
@@ -68,8 +75,10 @@ def test_ewma_arl_matches_lucas_saccucci_table_from_memory(lam, L, table):
 # Two-sided CUSUM, k = 1/2 (Montgomery's SQC text, table of CUSUM ARLs after Hawkins; from memory).
 @pytest.mark.parametrize(
     ("h", "table"),
-    [(4.0, {0.0: 168, 0.5: 26.6, 1.0: 8.38, 2.0: 3.34, 3.0: 2.19}),
-     (5.0, {0.0: 465, 0.5: 38.0, 1.0: 10.4, 2.0: 4.01, 3.0: 2.57})],
+    [
+        (4.0, {0.0: 168, 0.5: 26.6, 1.0: 8.38, 2.0: 3.34, 3.0: 2.19}),
+        (5.0, {0.0: 465, 0.5: 38.0, 1.0: 10.4, 2.0: 4.01, 3.0: 2.57}),
+    ],
 )
 def test_cusum_arl_matches_standard_table_from_memory(h, table):
     for r in cusum_arl(0.5, h, list(table)):

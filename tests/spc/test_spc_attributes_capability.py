@@ -22,7 +22,8 @@ EXAMPLES = json.loads((REF / "worked_examples/examples.json").read_text())
 def test_c_points_nist_wafer_defects_limits_and_signal():
     ex = EXAMPLES["c_chart_nist_6_3_3_1"]  # NIST/SEMATECH e-Handbook §6.3.3.1 (limits from memory)
     df = pl.read_csv(REF / "nist/wafer_defect_counts.csv").with_columns(
-        pl.lit("W").alias("series"), pl.col("wafer").alias("seq"))
+        pl.lit("W").alias("series"), pl.col("wafer").alias("seq")
+    )
     pts = c_points(df, count="defects")
     center, sigma = pts["center"][0], pts["sigma"][0]
     assert center == ex["published"]["c_bar"]
@@ -34,8 +35,11 @@ def test_c_points_nist_wafer_defects_limits_and_signal():
 def test_p_points_nist_fraction_defective_center():
     ex = EXAMPLES["p_chart_nist_6_3_3_2"]  # NIST/SEMATECH e-Handbook §6.3.3.2, 50 chips per wafer
     df = pl.read_csv(REF / "nist/wafer_fraction_defective.csv").with_columns(
-        pl.lit("P").alias("series"), pl.col("wafer").alias("seq"), pl.lit(50).alias("n"),
-        (pl.col("fraction_defective") * 50).round().alias("defective"))
+        pl.lit("P").alias("series"),
+        pl.col("wafer").alias("seq"),
+        pl.lit(50).alias("n"),
+        (pl.col("fraction_defective") * 50).round().alias("defective"),
+    )
     pts = p_points(df)
     assert round(pts["center"][0], 4) == ex["published"]["p_bar"]
     assert pts["sigma"][0] == pytest.approx(math.sqrt(0.2313 * (1 - 0.2313) / 50), rel=1e-3)

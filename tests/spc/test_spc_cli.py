@@ -59,8 +59,24 @@ def points_csv(tmp_path):
 
 
 def test_flag_prints_one_row_per_signal(points_csv):
-    r = _run(["flag", str(points_csv), "--value", "cd", "--series", "tool", "--order", "t", "--center", "0",
-              "--sigma", "1", "--rules", "we1,we2"])
+    r = _run(
+        [
+            "flag",
+            str(points_csv),
+            "--value",
+            "cd",
+            "--series",
+            "tool",
+            "--order",
+            "t",
+            "--center",
+            "0",
+            "--sigma",
+            "1",
+            "--rules",
+            "we1,we2",
+        ]
+    )
     assert r.exit_code == 0
     assert r.output == (
         "series         index order                rule      statistic\n"
@@ -78,7 +94,12 @@ def test_flag_csv_and_json_with_ewma_and_cusum(points_csv):
     rows = json.loads(r.output)
     # EWMA lambda 0.5 from 0: 0, 1.75, 2.125, 2.3625, 1.23; asymptotic limit 2*sqrt(1/3) = 1.1547.
     assert [(x["index"], x["rule"]) for x in rows] == [
-        (2, "ewma"), (3, "ewma"), (3, "cusum_hi"), (4, "ewma"), (5, "ewma")]
+        (2, "ewma"),
+        (3, "ewma"),
+        (3, "cusum_hi"),
+        (4, "ewma"),
+        (5, "ewma"),
+    ]
     assert rows[1]["statistic"] == pytest.approx(2.125)
 
 
@@ -98,14 +119,17 @@ def test_flag_missing_column_lists_found_columns(tmp_path):
     p.write_text("lot,cd\nL1,45.1\n", encoding="utf-8")
     r = _run(["flag", str(p), "--value", "cd_nm", "--center", "45", "--sigma", "1"])
     assert r.exit_code == 1
-    assert r.output == f'Error: {p}:1: header lacks column "cd_nm".\n  Found: lot, cd\n  Fix: name an existing column.\n'
+    assert (
+        r.output
+        == f'Error: {p}:1: header lacks column "cd_nm".\n  Found: lot, cd\n  Fix: name an existing column.\n'
+    )
 
 
 def test_flag_duplicate_order_is_a_bad_file(tmp_path):
     p = tmp_path / "dup.csv"
     p.write_text("t,cd\n1,45\n1,46\n", encoding="utf-8")
     r = _run(["flag", str(p), "--value", "cd", "--order", "t", "--center", "45", "--sigma", "1"])
-    assert r.exit_code == 1 and f"{p}:2:1: column \"t\" repeats an order value" in r.output
+    assert r.exit_code == 1 and f'{p}:2:1: column "t" repeats an order value' in r.output
 
 
 def test_flag_usage_errors_exit_2(points_csv):

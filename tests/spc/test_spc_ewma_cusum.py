@@ -19,13 +19,27 @@ from spc.signals import evaluate_signals
 EXAMPLES = json.loads(
     (Path(__file__).resolve().parents[1] / "data/reference/worked_examples/examples.json").read_text()
 )
-SCHEMA = {"series": pl.String, "seq": pl.Int64, "value": pl.Float64, "center": pl.Float64, "sigma": pl.Float64}
+SCHEMA = {
+    "series": pl.String,
+    "seq": pl.Int64,
+    "value": pl.Float64,
+    "center": pl.Float64,
+    "sigma": pl.Float64,
+}
 
 
 def _points(values, series="A", center=0.0, sigma=1.0):
     n = len(values)
-    return pl.DataFrame({"series": [series] * n, "seq": list(range(1, n + 1)), "value": list(map(float, values)),
-                         "center": [center] * n, "sigma": [sigma] * n}, schema=SCHEMA)
+    return pl.DataFrame(
+        {
+            "series": [series] * n,
+            "seq": list(range(1, n + 1)),
+            "value": list(map(float, values)),
+            "center": [center] * n,
+            "sigma": [sigma] * n,
+        },
+        schema=SCHEMA,
+    )
 
 
 def test_evaluate_ewma_matches_nist_worked_example():
@@ -63,13 +77,20 @@ _frames = st.lists(_series, min_size=1, max_size=4)
 
 
 def _frame(lists, scale=1.0, center=0.0):
-    return pl.concat([_points([v / 8 * scale + center for v in vs], f"S{i}", center, scale)
-                      for i, vs in enumerate(lists)])
+    return pl.concat(
+        [_points([v / 8 * scale + center for v in vs], f"S{i}", center, scale) for i, vs in enumerate(lists)]
+    )
 
 
 @settings(max_examples=50, deadline=None)
-@given(_frames, st.sampled_from([0.05, 0.1, 0.2, 0.3, 1.0]), st.sampled_from([2.0, 2.7, 3.0]),
-       st.sampled_from(["exact", "asymptotic"]), st.sampled_from([0.5, 1.0, 3.0]), st.integers(-5, 5))
+@given(
+    _frames,
+    st.sampled_from([0.05, 0.1, 0.2, 0.3, 1.0]),
+    st.sampled_from([2.0, 2.7, 3.0]),
+    st.sampled_from(["exact", "asymptotic"]),
+    st.sampled_from([0.5, 1.0, 3.0]),
+    st.integers(-5, 5),
+)
 def test_evaluate_ewma_matches_textbook_loop(lists, lam, L, limits, scale, center):
     pts = _frame(lists, scale, float(center))
     r = evaluate_ewma(pts, EwmaParams(lam=lam, L=L, limits=limits))
@@ -82,8 +103,13 @@ def test_evaluate_ewma_matches_textbook_loop(lists, lam, L, limits, scale, cente
 
 
 @settings(max_examples=50, deadline=None)
-@given(_frames, st.sampled_from([0.25, 0.5, 1.0]), st.sampled_from([2.0, 4.0, 5.0]),
-       st.sampled_from([0.0, 2.5]), st.booleans())
+@given(
+    _frames,
+    st.sampled_from([0.25, 0.5, 1.0]),
+    st.sampled_from([2.0, 4.0, 5.0]),
+    st.sampled_from([0.0, 2.5]),
+    st.booleans(),
+)
 def test_evaluate_cusum_matches_per_point_loop_exactly(lists, k, h, headstart, reset):
     pts = _frame(lists)
     r = evaluate_cusum(pts, CusumParams(k=k, h=h, headstart=headstart, reset=reset))
@@ -122,9 +148,18 @@ def test_evaluate_cusum_long_shifted_series_resets_after_every_signal():
 
 def test_evaluate_signals_combines_rules_ewma_cusum_in_point_order():
     pts = _points([0.0, 3.5, 3.0, 3.0])
-    out = evaluate_signals(pts, ["we1", "we2"], ewma=EwmaParams(lam=0.5, L=3.0), cusum=CusumParams(k=0.5, h=4.0))
+    out = evaluate_signals(
+        pts, ["we1", "we2"], ewma=EwmaParams(lam=0.5, L=3.0), cusum=CusumParams(k=0.5, h=4.0)
+    )
     assert out.select("seq", "rule").rows() == [
-        (2, "we1"), (2, "ewma"), (3, "we2"), (3, "ewma"), (3, "cusum_hi"), (4, "we2"), (4, "ewma")]
+        (2, "we1"),
+        (2, "ewma"),
+        (3, "we2"),
+        (3, "ewma"),
+        (3, "cusum_hi"),
+        (4, "we2"),
+        (4, "ewma"),
+    ]
     assert out.filter(pl.col("rule") == "cusum_hi")["value"].to_list() == [5.5]
     ewma3 = out.filter((pl.col("rule") == "ewma") & (pl.col("seq") == 3))["value"][0]
     assert ewma3 == pytest.approx(0.5 * 3.0 + 0.25 * 3.5)  # textbook recursion by hand, z0 = 0

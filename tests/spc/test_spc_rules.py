@@ -17,10 +17,20 @@ ALL = list(WESTERN_ELECTRIC + NELSON)
 def _points(values, series="A", center=0.0, sigma=1.0):
     n = len(values)
     return pl.DataFrame(
-        {"series": [series] * n, "seq": list(range(1, n + 1)), "value": [float(v) for v in values],
-         "center": [center] * n, "sigma": [sigma] * n},
-        schema={"series": pl.String, "seq": pl.Int64, "value": pl.Float64, "center": pl.Float64,
-                "sigma": pl.Float64},
+        {
+            "series": [series] * n,
+            "seq": list(range(1, n + 1)),
+            "value": [float(v) for v in values],
+            "center": [center] * n,
+            "sigma": [sigma] * n,
+        },
+        schema={
+            "series": pl.String,
+            "seq": pl.Int64,
+            "value": pl.Float64,
+            "center": pl.Float64,
+            "sigma": pl.Float64,
+        },
     )
 
 
@@ -84,7 +94,9 @@ def test_evaluate_rules_empty_frame_returns_empty_signals_with_schema():
 
 
 def test_evaluate_rules_missing_column_names_missing_and_existing():
-    with pytest.raises(ValueError, match="lacks column\\(s\\) sigma. Existing columns: series, seq, value, center"):
+    with pytest.raises(
+        ValueError, match="lacks column\\(s\\) sigma. Existing columns: series, seq, value, center"
+    ):
         evaluate_rules(_points([1]).drop("sigma"), ["we1"])
 
 
@@ -100,8 +112,10 @@ _frames = st.lists(_series, min_size=1, max_size=4)
 
 
 def _frame(lists, sigma=1.0, center=0.0):
-    parts = [_points([v / 8 * sigma + center for v in vs], series=f"S{i}", center=center, sigma=sigma)
-             for i, vs in enumerate(lists)]
+    parts = [
+        _points([v / 8 * sigma + center for v in vs], series=f"S{i}", center=center, sigma=sigma)
+        for i, vs in enumerate(lists)
+    ]
     return pl.concat(parts)
 
 
@@ -117,7 +131,9 @@ def test_evaluate_rules_all_rules_match_per_point_loop(lists):
 @given(_frames, st.integers(-1000, 1000), st.sampled_from([0.25, 2.0, 8.0]))
 def test_evaluate_rules_shift_and_scale_leave_signals_unchanged(lists, shift, scale):
     base = evaluate_rules(_frame(lists), ALL).select("series", "seq", "rule")
-    moved = evaluate_rules(_frame(lists, sigma=scale, center=float(shift)), ALL).select("series", "seq", "rule")
+    moved = evaluate_rules(_frame(lists, sigma=scale, center=float(shift)), ALL).select(
+        "series", "seq", "rule"
+    )
     assert moved.equals(base)
 
 
@@ -126,13 +142,20 @@ def test_evaluate_rules_shift_and_scale_leave_signals_unchanged(lists, shift, sc
 def test_evaluate_rules_series_are_independent_of_each_other_and_of_row_order(lists, rnd):
     pts = _frame(lists)
     together = evaluate_rules(pts, ALL).select("series", "seq", "rule")
-    alone = pl.concat([together.clear()] + [evaluate_rules(g, ALL).select("series", "seq", "rule")
-                                            for _, g in pts.group_by("series", maintain_order=True)])
+    alone = pl.concat(
+        [together.clear()]
+        + [
+            evaluate_rules(g, ALL).select("series", "seq", "rule")
+            for _, g in pts.group_by("series", maintain_order=True)
+        ]
+    )
     order = list(range(pts.height))
     rnd.shuffle(order)
     shuffled = evaluate_rules(pts[order], ALL).select("series", "seq", "rule")
     assert together.equals(alone)
-    assert shuffled.sort("series", "seq", maintain_order=True).equals(together.sort("series", "seq", maintain_order=True))
+    assert shuffled.sort("series", "seq", maintain_order=True).equals(
+        together.sort("series", "seq", maintain_order=True)
+    )
 
 
 @settings(max_examples=40, deadline=None)
@@ -150,13 +173,17 @@ def test_evaluate_rules_incremental_with_context_points_equals_full_run(lists, c
 def test_evaluate_rules_ten_thousand_series_match_loop_on_a_sample():
     rng = np.random.default_rng(7)
     n_series, length = 200, 150
-    pts = pl.DataFrame({
-        "series": np.repeat([f"T{i:03d}" for i in range(n_series)], length),
-        "seq": np.tile(np.arange(length), n_series),
-        "value": np.round(rng.standard_normal(n_series * length) * 8) / 8,
-        "center": 0.0, "sigma": 1.0,
-    })
+    pts = pl.DataFrame(
+        {
+            "series": np.repeat([f"T{i:03d}" for i in range(n_series)], length),
+            "seq": np.tile(np.arange(length), n_series),
+            "value": np.round(rng.standard_normal(n_series * length) * 8) / 8,
+            "center": 0.0,
+            "sigma": 1.0,
+        }
+    )
     out = evaluate_rules(pts, ALL)
     sample = pts.filter(pl.col("series").is_in(["T000", "T077", "T199"]))
-    assert out.filter(pl.col("series").is_in(["T000", "T077", "T199"])).select("series", "seq", "rule").rows() == \
-        signals_loop(sample, ALL)
+    assert out.filter(pl.col("series").is_in(["T000", "T077", "T199"])).select(
+        "series", "seq", "rule"
+    ).rows() == signals_loop(sample, ALL)

@@ -72,7 +72,9 @@ def test_individuals_limits_iterative_exclusion_drops_outlier_per_series():
 
 def test_xbar_r_and_s_limits_on_furnace_subgroups():
     furnace = pl.read_csv(REF / "nist/furnace_oxide_thickness.csv")
-    sub = summarize_subgroups(furnace, ["run"], "thickness_angstrom").with_columns(pl.lit("F").alias("series"))
+    sub = summarize_subgroups(furnace, ["run"], "thickness_angstrom").with_columns(
+        pl.lit("F").alias("series")
+    )
     r = xbar_r_limits(sub).row(0, named=True)
     s = xbar_s_limits(sub).row(0, named=True)
     d2_8, c4_8 = 2.847, 0.9650  # printed factors for n = 8 (ASTM manual)

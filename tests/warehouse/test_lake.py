@@ -15,12 +15,27 @@ def _insert_measurements(db, file_id, lots, *, layer="M1_DEV", start=datetime(20
         for site in range(3):
             rows.append(
                 {
-                    "lot_id": lot, "wafer_id": f"{lot}-01", "slot": 1, "site_id": str(site + 1),
-                    "x_mm": 10.0 * site, "y_mm": 0.0, "product": "AX14", "layer": layer, "stage": "develop",
-                    "parameter": "cd_mid", "feature": None, "value": value + site, "unit": "nm",
-                    "measured_at": start + timedelta(days=3 * i), "metrology_tool": "SEM-01", "recipe": "R",
-                    "repeat": 1, "sample_kind": "production",
-                    "_source_file_id": file_id, "_source_line": len(rows) + 2, "_superseded_by": None,
+                    "lot_id": lot,
+                    "wafer_id": f"{lot}-01",
+                    "slot": 1,
+                    "site_id": str(site + 1),
+                    "x_mm": 10.0 * site,
+                    "y_mm": 0.0,
+                    "product": "AX14",
+                    "layer": layer,
+                    "stage": "develop",
+                    "parameter": "cd_mid",
+                    "feature": None,
+                    "value": value + site,
+                    "unit": "nm",
+                    "measured_at": start + timedelta(days=3 * i),
+                    "metrology_tool": "SEM-01",
+                    "recipe": "R",
+                    "repeat": 1,
+                    "sample_kind": "production",
+                    "_source_file_id": file_id,
+                    "_source_line": len(rows) + 2,
+                    "_superseded_by": None,
                 }
             )
     frame = pl.DataFrame(rows, schema=schema.polars_schema(schema.MEASUREMENTS))
@@ -33,7 +48,8 @@ def _insert_measurements(db, file_id, lots, *, layer="M1_DEV", start=datetime(20
 def _mark_superseded(db, old_file, new_file, lot):
     con = duckdb.connect(str(db))
     con.execute(
-        "UPDATE measurements SET _superseded_by = ? WHERE _source_file_id = ? AND lot_id = ?", [new_file, old_file, lot]
+        "UPDATE measurements SET _superseded_by = ? WHERE _source_file_id = ? AND lot_id = ?",
+        [new_file, old_file, lot],
     )
     con.close()
 
@@ -44,7 +60,9 @@ def test_export_lake_partitions_by_table_month_and_layer(tmp_path):
     _insert_measurements(db, 1, ["L1", "L2"])  # 2026-09-28 and 2026-10-01
     summary = lake.export_lake(db, tmp_path / "lake")
     assert summary["measurements"] == {"rows": 6, "files": 2}
-    dirs = sorted(str(p.parent.relative_to(tmp_path / "lake")) for p in (tmp_path / "lake").rglob("*.parquet"))
+    dirs = sorted(
+        str(p.parent.relative_to(tmp_path / "lake")) for p in (tmp_path / "lake").rglob("*.parquet")
+    )
     assert dirs == ["measurements/month=2026-09/layer=M1_DEV", "measurements/month=2026-10/layer=M1_DEV"]
     manifest = lake.read_manifest(tmp_path / "lake")
     assert sum(f["rows"] for f in manifest["files"]) == 6

@@ -15,8 +15,10 @@ from ingest.jobs import ingest_paths
 from warehouse.store import open_warehouse, read_data_version
 
 ROOT = Path(__file__).resolve().parents[2]
-HEADER = ("LotID,WaferID,Slot,Site,X_mm,Y_mm,Product,Layer,Stage,Parameter,Feature,Value_nm,MeasTime,Tool,"
-          "Recipe,Repeat,SampleType")
+HEADER = (
+    "LotID,WaferID,Slot,Site,X_mm,Y_mm,Product,Layer,Stage,Parameter,Feature,Value_nm,MeasTime,Tool,"
+    "Recipe,Repeat,SampleType"
+)
 
 
 def _row(site, value, *, lot="HC2609-040", kind="PROD", ts="2026-09-03T07:14:05Z", wafer="01"):
@@ -35,40 +37,64 @@ def _q(db, sql, params=None):
 
 
 def test_load_corrected_reexport_supersedes_group_and_keeps_old_rows(db_path, tmp_path):
-    a = ingest_paths([_write(tmp_path / "a.csv", _row("S01", "45.0"), _row("S02", "46.0"),
-                             _row("S01", "44.0", lot="HC2609-041"))], db=db_path).files[0]
-    b = ingest_paths([_write(tmp_path / "b.csv", _row("S01", "45.5"), _row("S02", "46.5"))], db=db_path).files[0]
+    a = ingest_paths(
+        [
+            _write(
+                tmp_path / "a.csv",
+                _row("S01", "45.0"),
+                _row("S02", "46.0"),
+                _row("S01", "44.0", lot="HC2609-041"),
+            )
+        ],
+        db=db_path,
+    ).files[0]
+    b = ingest_paths(
+        [_write(tmp_path / "b.csv", _row("S01", "45.5"), _row("S02", "46.5"))], db=db_path
+    ).files[0]
     assert (b.rows_loaded, b.rows_superseded) == (2, 2)
-    assert _q(db_path, "SELECT lot_id, site_id, value, _source_file_id, _superseded_by FROM measurements "
-                       "ORDER BY lot_id, _source_file_id, site_id") == [
-        ("HC2609-040", "S01", 45.0, a.file_id, b.file_id), ("HC2609-040", "S02", 46.0, a.file_id, b.file_id),
-        ("HC2609-040", "S01", 45.5, b.file_id, None), ("HC2609-040", "S02", 46.5, b.file_id, None),
+    assert _q(
+        db_path,
+        "SELECT lot_id, site_id, value, _source_file_id, _superseded_by FROM measurements "
+        "ORDER BY lot_id, _source_file_id, site_id",
+    ) == [
+        ("HC2609-040", "S01", 45.0, a.file_id, b.file_id),
+        ("HC2609-040", "S02", 46.0, a.file_id, b.file_id),
+        ("HC2609-040", "S01", 45.5, b.file_id, None),
+        ("HC2609-040", "S02", 46.5, b.file_id, None),
         ("HC2609-041", "S01", 44.0, a.file_id, None),  # another lot: untouched
     ]
-    who = _q(db_path, "SELECT file_id, superseded_file_id, table_name, lot_id, rows, superseded_by_user "
-                      "FROM supersessions")
+    who = _q(
+        db_path,
+        "SELECT file_id, superseded_file_id, table_name, lot_id, rows, superseded_by_user FROM supersessions",
+    )
     assert who == [(b.file_id, a.file_id, "measurements", "HC2609-040", 2, getpass.getuser())]
     assert _q(db_path, "SELECT rows_superseded FROM source_files WHERE file_id = ?", [b.file_id]) == [(2,)]
 
 
 def test_load_daily_monitor_runs_do_not_supersede_each_other(db_path, tmp_path):
     m = dict(lot="MON-G01", kind="MON")
-    ingest_paths([_write(tmp_path / "d1.csv", _row("S01", "50.0", ts="2026-09-01T06:00:00Z", **m))], db=db_path)
-    d2 = ingest_paths([_write(tmp_path / "d2.csv", _row("S01", "50.1", ts="2026-09-02T06:00:00Z", **m))],
-                      db=db_path).files[0]
+    ingest_paths(
+        [_write(tmp_path / "d1.csv", _row("S01", "50.0", ts="2026-09-01T06:00:00Z", **m))], db=db_path
+    )
+    d2 = ingest_paths(
+        [_write(tmp_path / "d2.csv", _row("S01", "50.1", ts="2026-09-02T06:00:00Z", **m))], db=db_path
+    ).files[0]
     assert d2.rows_superseded == 0
-    fix = ingest_paths([_write(tmp_path / "d2fix.csv", _row("S01", "50.2", ts="2026-09-02T06:00:00Z", **m))],
-                       db=db_path).files[0]
+    fix = ingest_paths(
+        [_write(tmp_path / "d2fix.csv", _row("S01", "50.2", ts="2026-09-02T06:00:00Z", **m))], db=db_path
+    ).files[0]
     assert fix.rows_superseded == 1  # the corrected re-export of the same run replaces only that run
-    assert _q(db_path, "SELECT value FROM measurements WHERE _superseded_by IS NULL ORDER BY measured_at") == [
-        (50.0,), (50.2,)]
+    assert _q(
+        db_path, "SELECT value FROM measurements WHERE _superseded_by IS NULL ORDER BY measured_at"
+    ) == [(50.0,), (50.2,)]
 
 
 def test_load_native_tool_events_skip_rows_already_stored(db_path, tmp_path):
     head = "tool,chamber,event_at,event_kind,note\n"
     (tmp_path / "e1.csv").write_text(head + "ETX-02,PM2,2026-09-01T06:00:00Z,repair,\n")
-    (tmp_path / "e2.csv").write_text(head + "ETX-02,PM2,2026-09-01T06:00:00Z,repair,again\n"
-                                            "ETX-02,,2026-09-02T06:00:00Z,repair,\n")
+    (tmp_path / "e2.csv").write_text(
+        head + "ETX-02,PM2,2026-09-01T06:00:00Z,repair,again\nETX-02,,2026-09-02T06:00:00Z,repair,\n"
+    )
     ingest_paths([tmp_path / "e1.csv"], db=db_path)
     f = ingest_paths([tmp_path / "e2.csv"], db=db_path).files[0]
     assert (f.rows_loaded, f.rows_skipped) == (1, 1)
@@ -86,9 +112,11 @@ def test_load_data_version_bumps_on_every_write(db_path, tmp_path):
 
 
 def test_load_reexported_inspection_supersedes_its_class_counts(db_path, tmp_path):
-    rec = ('{{"lot": "L1", "wafer": "L1-01", "product": "AX14", "step": "M1", "tool": "INS-B1", "recipe": "R",'
-           ' "time": "{t}", "area_mm2": 67886.0, "total": {n}, "adders": null, "kind": "PROD",'
-           ' "classes": [{{"class": "particle", "bin": "<50nm", "n": {n}}}]}}')
+    rec = (
+        '{{"lot": "L1", "wafer": "L1-01", "product": "AX14", "step": "M1", "tool": "INS-B1", "recipe": "R",'
+        ' "time": "{t}", "area_mm2": 67886.0, "total": {n}, "adders": null, "kind": "PROD",'
+        ' "classes": [{{"class": "particle", "bin": "<50nm", "n": {n}}}]}}'
+    )
     (tmp_path / "i1.jsonl").write_text(rec.format(t="2026-09-03T10:00:00+02:00", n=3) + "\n")
     (tmp_path / "i2.jsonl").write_text(rec.format(t="2026-09-03T10:05:00+02:00", n=4) + "\n")
     ingest_paths([tmp_path / "i1.jsonl"], db=db_path)
@@ -104,12 +132,20 @@ def db_path(tmp_path):
 
 # --------------------------------------------------------------------------- atomicity (SIGKILL)
 
+
 def _big_csv(path: Path, rows: int) -> Path:
     with open(path, "w") as f:
         f.write(HEADER + "\n")
         for i in range(rows):
-            f.write(_row(f"S{i % 9:02d}", f"{40 + (i % 97) / 10:.1f}", lot=f"HC{i // 45:06d}",
-                         wafer=f"{(i // 9) % 5:02d}") + "\n")
+            f.write(
+                _row(
+                    f"S{i % 9:02d}",
+                    f"{40 + (i % 97) / 10:.1f}",
+                    lot=f"HC{i // 45:06d}",
+                    wafer=f"{(i // 9) % 5:02d}",
+                )
+                + "\n"
+            )
     return path
 
 
@@ -176,13 +212,30 @@ print("ok")
 
 
 def test_load_concurrent_readers_and_writer_never_fail_and_lose_nothing(db_path, tmp_path):
-    files = [_write(tmp_path / f"c{i}.csv", *[_row(f"S{s:02d}", "45.0", lot=f"C{i:03d}") for s in range(9)])
-             for i in range(6)]
+    files = [
+        _write(tmp_path / f"c{i}.csv", *[_row(f"S{s:02d}", "45.0", lot=f"C{i:03d}") for s in range(9)])
+        for i in range(6)
+    ]
     ingest_paths([files[0]], db=db_path)  # create the file first
-    procs = [subprocess.Popen([sys.executable, "-c", _READER, str(db_path), "10"], cwd=ROOT, stdout=subprocess.PIPE,
-                              stderr=subprocess.PIPE, text=True) for _ in range(3)]
-    procs.append(subprocess.Popen([sys.executable, "-c", _WRITER, str(db_path), "6"], cwd=ROOT,
-                                  stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True))
+    procs = [
+        subprocess.Popen(
+            [sys.executable, "-c", _READER, str(db_path), "10"],
+            cwd=ROOT,
+            stdout=subprocess.PIPE,
+            stderr=subprocess.PIPE,
+            text=True,
+        )
+        for _ in range(3)
+    ]
+    procs.append(
+        subprocess.Popen(
+            [sys.executable, "-c", _WRITER, str(db_path), "6"],
+            cwd=ROOT,
+            stdout=subprocess.PIPE,
+            stderr=subprocess.PIPE,
+            text=True,
+        )
+    )
     results = [ingest_paths([f], db=db_path, wait_s=60).files[0] for f in files[1:]]
     outs = [p.communicate(timeout=120) for p in procs]
     assert [p.returncode for p in procs] == [0, 0, 0, 0], [o[1][-500:] for o in outs]

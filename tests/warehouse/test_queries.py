@@ -11,23 +11,51 @@ from warehouse import queries, schema, store
 
 
 def _meas(lot, wafer, site, value, at, layer="M1", tool="CDS-1"):
-    return dict(lot_id=lot, wafer_id=wafer, site_id=str(site), x_mm=10.0 * site, y_mm=0.0, product="AX14",
-                layer=layer, stage="develop", parameter="cd_mid", value=value, unit="nm", measured_at=at,
-                metrology_tool=tool, repeat=1, sample_kind="production")
+    return dict(
+        lot_id=lot,
+        wafer_id=wafer,
+        site_id=str(site),
+        x_mm=10.0 * site,
+        y_mm=0.0,
+        product="AX14",
+        layer=layer,
+        stage="develop",
+        parameter="cd_mid",
+        value=value,
+        unit="nm",
+        measured_at=at,
+        metrology_tool=tool,
+        repeat=1,
+        sample_kind="production",
+    )
 
 
 @pytest.fixture()
 def db(tmp_path):
     path = tmp_path / "wh.duckdb"
     with store.open_warehouse(path, create=True) as con:
-        insert_facts(con, schema.MEASUREMENTS, [
-            _meas("L1", "L1-01", 1, 45.0, datetime(2026, 9, 1, 8)),
-            _meas("L1", "L1-01", 2, 47.0, datetime(2026, 9, 1, 8)),
-            _meas("L1", "L1-01", 1, 30.0, datetime(2026, 9, 2, 8), layer="V1"),
-        ])
-        insert_facts(con, schema.PROCESS_HISTORY, [
-            dict(lot_id="L1", step="M1_LITHO", step_seq=5, process_tool="SCN-1", started_at=datetime(2026, 9, 1, 6)),
-        ])
+        insert_facts(
+            con,
+            schema.MEASUREMENTS,
+            [
+                _meas("L1", "L1-01", 1, 45.0, datetime(2026, 9, 1, 8)),
+                _meas("L1", "L1-01", 2, 47.0, datetime(2026, 9, 1, 8)),
+                _meas("L1", "L1-01", 1, 30.0, datetime(2026, 9, 2, 8), layer="V1"),
+            ],
+        )
+        insert_facts(
+            con,
+            schema.PROCESS_HISTORY,
+            [
+                dict(
+                    lot_id="L1",
+                    step="M1_LITHO",
+                    step_seq=5,
+                    process_tool="SCN-1",
+                    started_at=datetime(2026, 9, 1, 6),
+                ),
+            ],
+        )
     return path
 
 
@@ -50,8 +78,20 @@ def test_lot_measurements_lists_layers_in_route_order(db):
 def test_wafer_sites_returns_radius_from_coordinates(db):
     with store.open_warehouse(db, read_only=True) as con:
         df = queries.wafer_sites(con, lot_id="L1", wafer_id="L1-01", layer="M1")
-    assert df.columns == ["layer", "parameter", "site_id", "feature", "x_mm", "y_mm", "r_mm", "value",
-                          "n_repeats", "measured_at", "metrology_tool", "unit"]
+    assert df.columns == [
+        "layer",
+        "parameter",
+        "site_id",
+        "feature",
+        "x_mm",
+        "y_mm",
+        "r_mm",
+        "value",
+        "n_repeats",
+        "measured_at",
+        "metrology_tool",
+        "unit",
+    ]
     assert df["r_mm"].to_list() == [10.0, 20.0]
 
 

@@ -16,14 +16,32 @@ from tests.monitoring.facts import insert_facts
 from warehouse import load, queries, schema, store, tool_days
 
 T0 = datetime(2026, 9, 1)
-NO_REJECTS = pl.DataFrame(schema={"line": pl.Int64, "column": pl.String, "value": pl.String, "reason": pl.String})
+NO_REJECTS = pl.DataFrame(
+    schema={"line": pl.Int64, "column": pl.String, "value": pl.String, "reason": pl.String}
+)
 
 
 def _meas(lot: str, tool: str, at: datetime, n: int, value: float = 45.0) -> list[dict]:
-    return [dict(lot_id=lot, wafer_id=f"{lot}-01", site_id=str(i + 1), x_mm=float(i), y_mm=0.0, product="AX14",
-                 layer="M1", stage="develop", parameter="cd_mid", value=value + i, unit="nm",
-                 measured_at=at + timedelta(minutes=i), metrology_tool=tool, repeat=1, sample_kind="production")
-            for i in range(n)]
+    return [
+        dict(
+            lot_id=lot,
+            wafer_id=f"{lot}-01",
+            site_id=str(i + 1),
+            x_mm=float(i),
+            y_mm=0.0,
+            product="AX14",
+            layer="M1",
+            stage="develop",
+            parameter="cd_mid",
+            value=value + i,
+            unit="nm",
+            measured_at=at + timedelta(minutes=i),
+            metrology_tool=tool,
+            repeat=1,
+            sample_kind="production",
+        )
+        for i in range(n)
+    ]
 
 
 def _hist(lot: str, tool: str, start: datetime, end: datetime | None) -> dict:
@@ -41,8 +59,18 @@ def _ingest(db, table: schema.Table, rows: list[dict], path: str) -> int:
         counts = load.FileCounts()
         load.load_chunk(con, table.name, frame, file_id=fid, counts=counts)
         load.supersede_file(con, [table.name], file_id=fid, counts=counts)
-        load.finish_file(con, file_id=fid, path=path, sha256=f"sha-{path}", size=0, kind=table.name, profile="test",
-                         user="t", counts=counts, rejects=NO_REJECTS)
+        load.finish_file(
+            con,
+            file_id=fid,
+            path=path,
+            sha256=f"sha-{path}",
+            size=0,
+            kind=table.name,
+            profile="test",
+            user="t",
+            counts=counts,
+            rejects=NO_REJECTS,
+        )
     return fid
 
 
@@ -52,7 +80,13 @@ def _expected(meas: list[dict], hist: list[dict], now: datetime) -> dict[tuple[s
     out: dict[tuple[str, str], tuple] = {}
     for kind, rows, tool, seen, counted in (
         ("metrology", meas, "metrology_tool", lambda r: r["measured_at"], lambda r: r["measured_at"]),
-        ("process", hist, "process_tool", lambda r: r["ended_at"] or r["started_at"], lambda r: r["started_at"]),
+        (
+            "process",
+            hist,
+            "process_tool",
+            lambda r: r["ended_at"] or r["started_at"],
+            lambda r: r["started_at"],
+        ),
     ):
         for t in sorted({r[tool] for r in rows}):
             mine = [r for r in rows if r[tool] == t]
@@ -73,11 +107,16 @@ NOWS = [T0 + timedelta(days=2, hours=10), T0 + timedelta(days=3, hours=0, minute
 @pytest.fixture()
 def loaded(tmp_path):
     db = tmp_path / "wh.duckdb"
-    meas = (_meas("L1", "CDS-1", T0 + timedelta(hours=8), 9) + _meas("L2", "CDS-2", T0 + timedelta(days=1, hours=9), 5)
-            + _meas("L3", "CDS-1", T0 + timedelta(days=2, hours=3), 4)
-            + _meas("L4", "CDS-2", T0 + timedelta(days=2, hours=23, minutes=55), 9))  # crosses midnight
-    hist = [_hist("L1", "SCN-1", T0 + timedelta(hours=6), T0 + timedelta(hours=7)),
-            _hist("L2", "SCN-2", T0 + timedelta(days=1, hours=20), None)]
+    meas = (
+        _meas("L1", "CDS-1", T0 + timedelta(hours=8), 9)
+        + _meas("L2", "CDS-2", T0 + timedelta(days=1, hours=9), 5)
+        + _meas("L3", "CDS-1", T0 + timedelta(days=2, hours=3), 4)
+        + _meas("L4", "CDS-2", T0 + timedelta(days=2, hours=23, minutes=55), 9)
+    )  # crosses midnight
+    hist = [
+        _hist("L1", "SCN-1", T0 + timedelta(hours=6), T0 + timedelta(hours=7)),
+        _hist("L2", "SCN-2", T0 + timedelta(days=1, hours=20), None),
+    ]
     _ingest(db, schema.MEASUREMENTS, meas[:14], "a.csv")
     _ingest(db, schema.MEASUREMENTS, meas[14:], "b.csv")
     _ingest(db, schema.PROCESS_HISTORY, hist, "h.csv")
