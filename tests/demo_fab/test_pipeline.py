@@ -102,3 +102,40 @@ def test_demo_score_without_a_demo_says_how_to_make_one(tmp_path, cli):
         f"{tmp_path / 'none'}/truth.json not found. Fix: run `lotline demo --dir {tmp_path / 'none'}` first."
         in result.output
     )
+
+
+def test_scoring_queries_equal_direct_computations_on_the_demo_warehouse(demo):
+    # The score's helper queries against plain Polars over the raw tables (read with DuckDB in the test).
+    import duckdb
+    import polars as pl
+
+    from warehouse import queries, store
+
+    out, _, truth = demo
+    raw = duckdb.connect(str(out / "lotline.duckdb"), read_only=True)
+    meas = raw.sql("SELECT lot_id, layer, measured_at, metrology_tool, _superseded_by FROM measurements").pl()
+    insp = raw.sql("SELECT inspection_tool, inspected_at, sample_kind, _superseded_by FROM inspections").pl()
+    points = raw.sql("SELECT n_points FROM series_state").pl()["n_points"].sum()
+    raw.close()
+    lots = sorted(truth["faults"][0]["lots"])[:5]
+    layer = truth["faults"][0]["layer"]
+    expected = (
+        meas.filter(
+            pl.col("lot_id").is_in(lots) & (pl.col("layer") == layer) & pl.col("_superseded_by").is_null()
+        )
+        .group_by("lot_id")
+        .agg(pl.col("measured_at").min().alias("first_at"))
+        .sort("lot_id")
+    )
+    with store.open_warehouse(out / "lotline.duckdb", read_only=True) as con:
+        got = queries.lot_first_times(con, lot_ids=lots, layer=layer).sort("lot_id")
+        std = queries.standard_defect_runs(con, inspection_tool="INS-B2")
+        assert queries.chart_point_count(con) == points
+    assert got.to_dicts() == expected.to_dicts()
+    n_std = insp.filter(
+        (pl.col("sample_kind") == "standard_defect")
+        & (pl.col("inspection_tool") == "INS-B2")
+        & pl.col("_superseded_by").is_null()
+    ).height
+    assert std.height == n_std > 0
+    assert std["inspected_at"].is_sorted()
