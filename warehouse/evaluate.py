@@ -333,20 +333,24 @@ def _evaluate_entry(ctx: _Context, e: PlanEntry, *, full: bool, watermark: int) 
         _append(ctx, e, added.filter(pl.col("series_id").is_in(append)), append)
 
 
-def _with_limits(ctx: _Context, e: PlanEntry, pts: pl.DataFrame) -> pl.DataFrame:
-    """Add center, sigma and limit_version from the version in force (nulls where none is frozen)."""
+def with_limits(limits: dict[int, dict], e: PlanEntry, pts: pl.DataFrame) -> pl.DataFrame:
+    """Add center, sigma and limit_version from the version in force (nulls where none is frozen).
+
+    ``limits`` maps series_id to its limit version in force (``limits.current_limits``: version, center,
+    sigma, n_ref, overdispersion); ``pts`` is a points frame with a ``series_id`` column.
+    """
     sids = pts["series_id"].unique().to_list()
     rows = [
         (
             sid,
-            ctx.limits[sid]["version"],
-            ctx.limits[sid]["center"],
-            ctx.limits[sid]["sigma"],
-            ctx.limits[sid]["n_ref"],
-            ctx.limits[sid]["overdispersion"],
+            limits[sid]["version"],
+            limits[sid]["center"],
+            limits[sid]["sigma"],
+            limits[sid]["n_ref"],
+            limits[sid]["overdispersion"],
         )
         for sid in sids
-        if sid in ctx.limits
+        if sid in limits
     ]
     lim = pl.DataFrame(
         rows,
@@ -439,8 +443,17 @@ def _rules(e: PlanEntry) -> list:
     ]
 
 
-def _signals(e: PlanEntry, pts: pl.DataFrame, *, state: pl.DataFrame | None, context: pl.DataFrame | None):
-    """Signals (control rules on limited points + oos on all) and the final EWMA/CUSUM state per series."""
+def chart_signals(
+    e: PlanEntry, pts: pl.DataFrame, *, state: pl.DataFrame | None, context: pl.DataFrame | None
+):
+    """Signals of one plan entry's points and the final EWMA / CUSUM state per series.
+
+    ``pts`` holds numbered points (``seq``) with their limits (:func:`with_limits`); the control rules run
+    on points with a limit version, the out-of-spec check on all. ``state`` (series, ewma_z, ewma_count,
+    s_hi, s_lo) continues EWMA / CUSUM from earlier points and ``context`` (series, seq, value, center,
+    sigma) prepends earlier points for the run rules; both None for a series evaluated from its first
+    point. Returns ``(signals, ewma_state, cusum_state)``; a state is None when the chart has none.
+    """
     pass_cols = ["point_key", "lot_id", "wafer_id", "point_at", "point_value", "limit_version"]
     out = []
     limited = pts.filter(pl.col("limit_version").is_not_null()).with_columns(
@@ -533,8 +546,8 @@ def _recompute(ctx: _Context, e: PlanEntry, pts: pl.DataFrame, series: list[int]
     pts = pts.filter(pl.col("series_id").is_in(series))
     pts = pts.with_columns((pl.int_range(pl.len()).over("series_id") + 1).cast(pl.Int64).alias("seq"))
     _freeze_missing(ctx, e, pts, series)
-    pts = _with_limits(ctx, e, pts)
-    sig, ew, cu = _signals(e, pts, state=None, context=None)
+    pts = with_limits(ctx.limits, e, pts)
+    sig, ew, cu = chart_signals(e, pts, state=None, context=None)
     _write_state(ctx, e, pts, series, ew, cu, base_state=None)
     ctx.replaced_points.update(series)
     ctx.pending_points.append(_chart_point_rows(ctx, e, pts))
@@ -553,7 +566,7 @@ def _append(ctx: _Context, e: PlanEntry, pts: pl.DataFrame, series: list[int]) -
     pts = pts.with_columns((pl.int_range(pl.len()).over("series_id") + 1 + pl.col("n0")).alias("seq")).drop(
         "n0"
     )
-    pts = _with_limits(ctx, e, pts)
+    pts = with_limits(ctx.limits, e, pts)
     state = pl.DataFrame(
         {
             "series": series,
@@ -588,7 +601,7 @@ def _append(ctx: _Context, e: PlanEntry, pts: pl.DataFrame, series: list[int]) -
         if ctx_rows
         else None
     )
-    sig, ew, cu = _signals(e, pts, state=state, context=context)
+    sig, ew, cu = chart_signals(e, pts, state=state, context=context)
     _write_state(ctx, e, pts, series, ew, cu, base_state=ctx.state, context=context)
     ctx.pending_points.append(_chart_point_rows(ctx, e, pts))
     _reconcile(ctx, e, sig, pts, series, recompute=False)

@@ -15,7 +15,7 @@ What runs where:
    series without a frozen version gets only its out-of-spec check, and a series the warehouse has not
    seen yet (no ``series_id``) is evaluated with an empty id.
 4. **Signals**: ``groupBy(<series>).applyInArrow`` hands each series' points to
-   ``warehouse.evaluate._signals`` (after ``warehouse.evaluate._with_limits``), the local engine's own
+   ``warehouse.evaluate.chart_signals`` (after ``warehouse.evaluate.with_limits``), the local engine's own
    pure per-entry computation over ``spc`` — no statistic is re-implemented here. Points are numbered
    (``seq``) in the local engine's order: ``point_at``, then ``point_key``.
 5. The signals are written back as a new snapshot of ``<lake>/signals_spark/snapshot=<n>/month=.../``
@@ -36,7 +36,6 @@ import warnings
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
-from types import SimpleNamespace
 
 from warehouse import lake as lake_mod
 from warehouse import points as pts_mod
@@ -411,7 +410,7 @@ def _arrow_schema():
 def evaluate_series(entries: dict[str, PlanEntry], table):
     """Signals of one series' points (an Arrow table with the plan_points columns) as an Arrow table.
 
-    Runs inside the Spark Python workers; everything statistical is ``warehouse.evaluate._signals``.
+    Runs inside the Spark Python workers; everything statistical is ``warehouse.evaluate.chart_signals``.
     """
     import polars as pl
 
@@ -442,8 +441,8 @@ def evaluate_series(entries: dict[str, PlanEntry], table):
         }
     )
     pts = pts.drop("limit_version", "center", "lim_sigma", "n_ref", "overdispersion")
-    pts = evaluate._with_limits(SimpleNamespace(limits=limits), e, pts)
-    sig, _, _ = evaluate._signals(e, pts, state=None, context=None)
+    pts = evaluate.with_limits(limits, e, pts)
+    sig, _, _ = evaluate.chart_signals(e, pts, state=None, context=None)
     out = sig.select(
         pl.lit(sid, pl.Int64).alias("series_id"),
         pl.lit(e.name).alias("chart"),
