@@ -35,6 +35,7 @@ import polars as pl
 from ingest.adapters.mapping import map_records
 from ingest.adapters.records import jsonl_keys, parquet_columns, parse_jsonl_chunk, parse_parquet
 from ingest.adapters.text import (
+    MAX_LINE_BYTES,
     LineChunker,
     bom_encoding,
     decode_head,
@@ -42,8 +43,10 @@ from ingest.adapters.text import (
     parse_csv_chunk,
     sniff,
 )
+from ingest.direct import direct_program
 from ingest.profile import Profile, detect_profile, load_profiles
-from warehouse import load, schema, store
+from warehouse import direct, load, schema, store
+from warehouse.direct import DirectProgram
 from warehouse.errors import IngestError
 
 T = TypeVar("T")
@@ -69,6 +72,9 @@ class FileResult:
     rows_rejected: int = 0
     rows_superseded: int = 0
     rows_skipped: int = 0
+    reader: str | None = None
+    """Which reader parsed the file: ``duckdb`` (a big plain CSV loaded directly, see ingest.direct) or
+    ``polars`` (every other file, and a plain CSV with any row that needs a reject or a closer look)."""
     message: str | None = None
     affected: list[dict[str, str]] = field(default_factory=list)
     """Distinct (table, lot_id, layer, parameter) the file wrote: the hook for re-evaluating series."""
@@ -127,13 +133,57 @@ def export_format(path: Path) -> str | None:
 
 
 def sha256_of(path: Path) -> tuple[str, int]:
+    scan = scan_file(path)
+    return scan.sha256, scan.size
+
+
+@dataclass
+class FileScan:
+    """What one read of a file's bytes tells: its hash and size, and for plain text the facts that decide
+    whether DuckDB may parse it directly (see :mod:`ingest.direct`)."""
+
+    sha256: str
+    size: int
+    newlines: int = 0
+    has_quote: bool = False
+    ends_with_newline: bool = True
+    samples: list[tuple[int, int]] = field(default_factory=list)
+    """(line number, byte offset) of the first line that starts in each block, and of the last line."""
+
+    def data_lines(self, header_line: int) -> int:
+        """Lines after the header (a last line without a newline counts)."""
+        lines = self.newlines + (0 if self.ends_with_newline or self.size == 0 else 1)
+        return max(0, lines - header_line)
+
+
+def scan_file(path: Path, *, text: bool = False) -> FileScan:
+    """Hash the file's bytes; with ``text`` also count lines, look for quotes and keep line samples."""
     h = hashlib.sha256()
-    size = 0
+    size = newlines = 0
+    quote = False
+    samples: list[tuple[int, int]] = []
+    last = b""
     with open(path, "rb") as f:
         while block := f.read(BLOCK_BYTES):
             h.update(block)
+            if text:
+                nl = block.find(b"\n")
+                if nl >= 0 and nl + 1 < len(block):
+                    samples.append((newlines + 2, size + nl + 1))
+                quote = quote or b'"' in block
+                newlines += block.count(b"\n")
+                last = block[-1:]
             size += len(block)
-    return h.hexdigest(), size
+        scan = FileScan(h.hexdigest(), size)
+        if text and size:
+            scan.newlines, scan.has_quote, scan.ends_with_newline = newlines, quote, last == b"\n"
+            f.seek(max(0, size - 65536))
+            tail = f.read()
+            cut = tail.rfind(b"\n", 0, len(tail) - 1)
+            if cut >= 0:  # the last line starts after the newline before the file's final byte
+                samples.append((newlines + (0 if scan.ends_with_newline else 1), size - len(tail) + cut + 1))
+            scan.samples = sorted(set(samples))
+    return scan
 
 
 def ingest_paths(
@@ -147,10 +197,12 @@ def ingest_paths(
     user: str | None = None,
     chunk_bytes: int = CHUNK_BYTES,
     on_file: Callable[[FileResult], None] | None = None,
+    duckdb_reader: bool = True,
 ) -> IngestReport:
     """Ingest files and folders into the warehouse ``db``; return one :class:`FileResult` per file.
 
-    ``profile`` forces a profile by name instead of detecting it from the header. Raises
+    ``profile`` forces a profile by name instead of detecting it from the header. ``duckdb_reader=False``
+    reads every file with the Polars reader (see :mod:`ingest.direct` for when DuckDB reads one). Raises
     :class:`IngestError` only for problems with the arguments (a path that does not exist, a bad profile);
     problems with a file's content are reported in its result.
     """
@@ -176,6 +228,7 @@ def ingest_paths(
                 chunk_bytes=chunk_bytes,
                 on_bytes=bar.update if bar else None,
                 batch=batch,
+                duckdb_reader=duckdb_reader,
             )
             report.files.append(res)
             if on_file:
@@ -215,13 +268,16 @@ def ingest_file(
     chunk_bytes: int = CHUNK_BYTES,
     on_bytes: Callable[[int], object] | None = None,
     batch: store.Batch | None = None,
+    duckdb_reader: bool = True,
 ) -> FileResult:
     """Ingest one file in one transaction (see the module doc).
 
     ``batch`` lends the connection of a batch of files (``ingest_paths``); without one the warehouse is
     opened for this file and closed afterwards.
     """
-    sha, size = sha256_of(path)
+    fmt = export_format(path) or "csv"
+    scan = scan_file(path, text=duckdb_reader and fmt == "csv" and not path.name.lower().endswith(".gz"))
+    sha, size = scan.sha256, scan.size
     if batch is not None:
         with batch.unit() as con:
             return _ingest_one(
@@ -234,6 +290,7 @@ def ingest_file(
                 user=user,
                 chunk_bytes=chunk_bytes,
                 on_bytes=on_bytes,
+                scan=scan,
             )
     with store.Batch(db, create=True, wait_s=wait_s, max_units=1, on_open=load.configure_for_ingest) as own:
         with own.unit() as con:
@@ -247,6 +304,7 @@ def ingest_file(
                 user=user,
                 chunk_bytes=chunk_bytes,
                 on_bytes=on_bytes,
+                scan=scan,
             )
 
 
@@ -261,6 +319,7 @@ def _ingest_one(
     user: str,
     chunk_bytes: int,
     on_bytes: Callable[[int], object] | None,
+    scan: FileScan | None = None,
 ) -> FileResult:
     shown = str(path)
     fmt = export_format(path) or "csv"
@@ -285,39 +344,16 @@ def _ingest_one(
         )
     state: dict[str, object] = {}
     try:
-        with store.transaction(con):
-            fid = load.new_file_id(con)
-            counts = load.FileCounts()
-            result = _load_content(
-                con,
-                path,
-                fmt,
-                profiles=profiles,
-                forced=forced,
-                file_id=fid,
-                counts=counts,
-                chunk_bytes=chunk_bytes,
-                on_bytes=on_bytes,
-                state=state,
+        try:
+            fid, counts, result, rejects = _load_in_transaction(
+                con, path, fmt, sha, size, profiles, forced, user, chunk_bytes, on_bytes, state, scan
             )
-            rejects = pl.concat(counts.reject_frames) if counts.reject_frames else None
-            if rejects is None:
-                from ingest.adapters.text import empty_rejects
-
-                rejects = empty_rejects()
-            prof: Profile = state["profile"]  # type: ignore[assignment]
-            load.finish_file(
-                con,
-                file_id=fid,
-                path=shown,
-                sha256=sha,
-                size=size,
-                kind=prof.kind,
-                profile=prof.name,
-                user=user,
-                counts=counts,
-                rejects=rejects,
+        except _DirectDeclined:  # rolled back: read the file again on the Polars path
+            state.clear()
+            fid, counts, result, rejects = _load_in_transaction(
+                con, path, fmt, sha, size, profiles, forced, user, chunk_bytes, on_bytes, state, None
             )
+        prof: Profile = state["profile"]  # type: ignore[assignment]
     except IngestError as exc:
         if exc.path is None:
             exc = _with_path(exc, shown)
@@ -353,8 +389,55 @@ def _ingest_one(
         rows_rejected=rejected,
         rows_superseded=counts.superseded,
         rows_skipped=counts.skipped,
+        reader=str(state.get("reader", "polars")),
         affected=result,
     )
+
+
+class _DirectDeclined(Exception):
+    """The direct DuckDB load of a file was abandoned (a row not clean, or DuckDB refused); retry in Polars."""
+
+
+def _load_in_transaction(
+    con, path, fmt, sha, size, profiles, forced, user, chunk_bytes, on_bytes, state, scan
+):
+    """One attempt at the file in its own transaction; returns (file_id, counts, affected, rejects)."""
+    shown = str(path)
+    with store.transaction(con):
+        fid = load.new_file_id(con)
+        counts = load.FileCounts()
+        result = _load_content(
+            con,
+            path,
+            fmt,
+            profiles=profiles,
+            forced=forced,
+            file_id=fid,
+            counts=counts,
+            chunk_bytes=chunk_bytes,
+            on_bytes=on_bytes,
+            state=state,
+            scan=scan,
+        )
+        rejects = pl.concat(counts.reject_frames) if counts.reject_frames else None
+        if rejects is None:
+            from ingest.adapters.text import empty_rejects
+
+            rejects = empty_rejects()
+        prof: Profile = state["profile"]  # type: ignore[assignment]
+        load.finish_file(
+            con,
+            file_id=fid,
+            path=shown,
+            sha256=sha,
+            size=size,
+            kind=prof.kind,
+            profile=prof.name,
+            user=user,
+            counts=counts,
+            rejects=rejects,
+        )
+    return fid, counts, result, rejects
 
 
 def _with_path(exc: IngestError, path: str) -> IngestError:
@@ -418,6 +501,7 @@ def _load_content(
     chunk_bytes: int,
     on_bytes,
     state: dict[str, object],
+    scan: FileScan | None = None,
 ) -> list[dict]:
     shown = str(path)
     reader = _Reader(path, on_bytes)
@@ -573,6 +657,11 @@ def _load_content(
             )
             state["profile"] = prof
             header = view(prof)
+            prog = _direct_candidate(scan, prof, header, bom, chunk_bytes)
+            if prog is not None:
+                reader.close()
+                state["reader"] = "duckdb"
+                return _load_direct(con, path, prog, scan, file_id=file_id, counts=counts, on_bytes=on_bytes)
             enc = bom or prof.encoding
             chunker = LineChunker(
                 path=shown, encoding=enc, skip_lines=prof.header_line, chunk_bytes=chunk_bytes
@@ -621,6 +710,91 @@ def _load_content(
             if dup.height:
                 counts.reject_frames.append(dup)
     return _affected_list(affected)
+
+
+DIRECT_SAMPLES = 64
+"""At most this many stored rows of a direct load are compared with the text of their line in the file."""
+
+
+def _direct_candidate(
+    scan: FileScan | None, prof: Profile, header: list[str], bom: str | None, chunk_bytes: int
+) -> DirectProgram | None:
+    """The direct program for a big plain CSV file, or None when the Polars path must read it."""
+    if (
+        scan is None
+        or not scan.samples
+        or scan.size <= chunk_bytes
+        or scan.has_quote
+        or bom not in (None, "utf-8-sig")
+    ):
+        return None
+    if scan.data_lines(prof.header_line) == 0:
+        return None
+    return direct_program(prof, header)
+
+
+def _load_direct(
+    con,
+    path: Path,
+    prog: DirectProgram,
+    scan: FileScan,
+    *,
+    file_id: int,
+    counts: load.FileCounts,
+    on_bytes,
+) -> list[dict]:
+    """Load a plain CSV file inside DuckDB (see :mod:`warehouse.direct`); raise _DirectDeclined to fall back.
+
+    Kept only when every data line became a row (no line was dropped or unclean), so that row ids number
+    the lines, and when a sample of stored rows matches the text of their lines.
+    """
+    table = prog.table
+    expected = scan.data_lines(prog.header_line)
+    done = direct.insert_rows(con, prog, path=str(path), file_id=file_id, max_line_bytes=MAX_LINE_BYTES)
+    if done is None:
+        raise _DirectDeclined("DuckDB could not read the file")
+    n, unclean = done
+    if n != expected or unclean:
+        raise _DirectDeclined(f"{expected - n} of {expected} lines dropped, {unclean} rows not clean")
+    direct.number_lines(con, table, file_id=file_id, first_line=prog.header_line + 1)
+    _check_direct_lines(con, path, prog, scan, file_id=file_id)
+    if on_bytes:
+        on_bytes(scan.size)
+    counts.loaded += n
+    load.supersede_file(con, [table], file_id=file_id, counts=counts)
+    cand = direct.repeated_key_lines(con, table, file_id=file_id)
+    if cand:
+        dup = load.reject_in_file_duplicates(con, table, cand, file_id=file_id, counts=counts)
+        if dup.height:
+            counts.reject_frames.append(dup)
+    keys = direct.written_keys(con, table, file_id=file_id)
+    return _affected_list({table: [keys]} if keys is not None else {})
+
+
+def _check_direct_lines(con, path: Path, prog: DirectProgram, scan: FileScan, *, file_id: int) -> None:
+    """Compare sampled stored rows with the raw text of their lines (guards the row-id line numbering)."""
+    cols = prog.identity_text_columns()
+    if not cols:
+        return
+    first = prog.header_line + 1
+    picks = [(ln, off) for ln, off in scan.samples if ln >= first]
+    if len(picks) > DIRECT_SAMPLES:
+        step = len(picks) / DIRECT_SAMPLES
+        picks = [picks[int(i * step)] for i in range(DIRECT_SAMPLES)] + [picks[-1]]
+    if not picks:
+        return
+    index = {h: i for i, h in enumerate(prog.header)}
+    stored = direct.stored_at_lines(
+        con, prog.table, file_id=file_id, lines=[ln for ln, _ in picks], columns=[c.name for c in cols]
+    )
+    with open(path, "rb") as f:
+        for ln, off in picks:
+            f.seek(off)
+            text = f.readline().decode("utf-8", errors="replace").rstrip("\r\n")
+            fields = text.split(prog.delimiter)
+            want = tuple(fields[index[c.source]] if c.source in index else None for c in cols)
+            if stored.get(ln) != want:
+                raise _DirectDeclined(f"line {ln}: stored {stored.get(ln)!r}, file has {want!r}")
 
 
 def _affected_list(affected: dict[str, list[pl.DataFrame]]) -> list[dict[str, str]]:

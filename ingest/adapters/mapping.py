@@ -192,7 +192,7 @@ def map_records(
                     "unknown value (expected one of " + ", ".join(allowed) + ")",
                 )
             )
-        lim = _merge(DEFAULT_LIMITS.get(t.name, {}).get(name), profile.limits.get(name))
+        lim = merge_limits(DEFAULT_LIMITS.get(t.name, {}).get(name), profile.limits.get(name))
         if lim is not None:
             checks.extend(_range_checks(pl.col(name), lim, src_name, rawc))
     if t.name == "measurements":
@@ -291,7 +291,7 @@ def _pl_dtype(dtype: str) -> pl.DataType:
     return schema.polars_schema(schema.Table("x", "x", (schema.Column("c", dtype, doc="x"),)))["c"]  # type: ignore[return-value]
 
 
-def _merge(a: Limit | None, b: Limit | None) -> Limit | None:
+def merge_limits(a: Limit | None, b: Limit | None) -> Limit | None:
     if a is None or b is None:
         return a or b
 

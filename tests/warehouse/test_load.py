@@ -149,37 +149,47 @@ def _big_csv(path: Path, rows: int) -> Path:
     return path
 
 
-def test_load_sigkill_mid_ingest_leaves_warehouse_as_before_and_rerun_loads_all(db_path, tmp_path):
+# Where the killed process stops: the Polars reader after its second chunk, the DuckDB reader after its one
+# INSERT of the whole file (rows inserted, line numbers not yet set, nothing committed).
+_KILL_POINTS = {
+    "polars": ("warehouse.load", "load_chunk", 2, False),
+    "duckdb": ("warehouse.direct", "number_lines", 1, True),
+}
+
+
+@pytest.mark.parametrize("reader", sorted(_KILL_POINTS))
+def test_load_sigkill_mid_ingest_leaves_warehouse_as_before_and_rerun_loads_all(db_path, tmp_path, reader):
     small = _write(tmp_path / "small.csv", _row("S01", "45.0", lot="KEEP"))
     ingest_paths([small], db=db_path)
     before = _q(db_path, "SELECT * FROM measurements")
     big = _big_csv(tmp_path / "big.csv", 120_000)
+    module, func, nth, duck = _KILL_POINTS[reader]
     code = textwrap.dedent(f"""
-        import sys
+        import sys, importlib
         from ingest import jobs
-        from warehouse import load
-        real = load.load_chunk
+        mod = importlib.import_module({module!r})
+        real = getattr(mod, {func!r})
         calls = []
         def slow(*a, **k):
             real(*a, **k)
             calls.append(1)
-            if len(calls) == 2:
-                print("LOADED-TWO-CHUNKS", flush=True)
+            if len(calls) == {nth}:
+                print("STOPPED-MID-FILE", flush=True)
                 import time; time.sleep(60)
-        load.load_chunk = slow
-        jobs.ingest_paths([{str(big)!r}], db={str(db_path)!r}, chunk_bytes=1_000_000)
+        setattr(mod, {func!r}, slow)
+        jobs.ingest_paths([{str(big)!r}], db={str(db_path)!r}, chunk_bytes=1_000_000, duckdb_reader={duck})
     """)
     proc = subprocess.Popen([sys.executable, "-c", code], cwd=ROOT, stdout=subprocess.PIPE, text=True)
     try:
-        assert proc.stdout.readline().strip() == "LOADED-TWO-CHUNKS"  # mid-way: rows inserted, not committed
+        assert proc.stdout.readline().strip() == "STOPPED-MID-FILE"  # mid-way: rows inserted, not committed
         proc.send_signal(signal.SIGKILL)
     finally:
         proc.wait(timeout=30)
     assert proc.returncode == -signal.SIGKILL
     assert _q(db_path, "SELECT * FROM measurements") == before
     assert _q(db_path, "SELECT count(*) FROM source_files") == [(1,)]
-    f = ingest_paths([big], db=db_path).files[0]
-    assert (f.status, f.rows_loaded, f.rows_rejected) == ("loaded", 120_000, 0)
+    f = ingest_paths([big], db=db_path, chunk_bytes=1_000_000, duckdb_reader=duck).files[0]
+    assert (f.status, f.rows_loaded, f.rows_rejected, f.reader) == ("loaded", 120_000, 0, reader)
     assert _q(db_path, "SELECT count(*) FROM measurements") == [(120_001,)]
 
 

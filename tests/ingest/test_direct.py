@@ -1,0 +1,201 @@
+"""The DuckDB reader for big plain CSV files (ingest.direct, warehouse.direct) against the Polars reader.
+
+Every check here is a path-equivalence check: the same file loaded by the DuckDB reader (a file bigger
+than ``chunk_bytes``) and by the Polars reader (``chunk_bytes`` above the file size) must store the same
+rows with the same line numbers and the same rejects. The Polars reader's own results are checked against
+hand-written expectations in test_dialects.py and test_bad_inputs.py.
+"""
+
+from __future__ import annotations
+
+import random
+
+import duckdb
+import pytest
+from ingest_cases import LONG_HEADER, long_row
+
+from ingest.jobs import ingest_paths
+
+SMALL = 2048  # chunk_bytes below the test files' size: the DuckDB reader is tried
+HUGE = 1 << 30  # chunk_bytes above it: the Polars reader only
+
+COLUMNS = (
+    "lot_id, wafer_id, slot, site_id, x_mm, y_mm, product, layer, stage, parameter, feature, value, unit, "
+    "measured_at, metrology_tool, recipe, repeat, sample_kind, _source_line, _superseded_by"
+)
+
+
+def _rows(n: int, seed: int = 7) -> list[str]:
+    """Invented clean cdsem_long_v2 lines with varied number shapes and timestamps."""
+    rnd = random.Random(seed)
+    params = ["CD_MID", "CD_TOP", "CD_BOT", "LWR", "PITCH"]
+    out = []
+    for i in range(n):
+        value = rnd.choice(
+            [
+                f"{rnd.uniform(20, 90):.6f}",
+                f"{rnd.uniform(20, 90):.17g}",
+                f"{rnd.uniform(2, 9):.3e}",
+                str(rnd.randint(20, 90)),
+                f"{rnd.uniform(20, 90):.1f}",
+            ]
+        )
+        frac = rnd.choice(["", ".5", ".123456", ".000001"])
+        ts = f"2026-{rnd.randint(1, 12):02d}-{rnd.randint(1, 28):02d}T{rnd.randint(0, 23):02d}:{rnd.randint(0, 59):02d}:{rnd.randint(0, 59):02d}{frac}Z"
+        x = rnd.choice([f"{rnd.uniform(-149, 149):.3f}", "0", "-0.0", "150", "-150.0"])
+        out.append(
+            long_row(
+                f"S{i:05d}",
+                value=value,
+                ts=ts,
+                lot=f"HC{i // 50:04d}",
+                x=x,
+                slot=str(rnd.randint(1, 25)),
+                stage=rnd.choice(["DEV", "ETCH"]),
+                param=rnd.choice(params),
+                tool=rnd.choice(["SEM-A1", "SEM-B2"]),
+            )
+        )
+    return out
+
+
+def _load(tmp_path, name: str, text: str, chunk_bytes: int):
+    path = tmp_path / name / "export.csv"
+    path.parent.mkdir(parents=True)
+    path.write_bytes(text.encode("utf-8"))
+    db = tmp_path / name / "wh.duckdb"
+    f = ingest_paths([path], db=db, chunk_bytes=chunk_bytes).files[0]
+    con = duckdb.connect(str(db), read_only=True)
+    try:
+        rows = con.execute(f"SELECT {COLUMNS} FROM measurements ORDER BY _source_line").fetchall()
+        rejects = con.execute('SELECT line, "column", value, reason FROM rejects ORDER BY ALL').fetchall()
+    finally:
+        con.close()
+    return f, rows, rejects
+
+
+def _both(tmp_path, text: str):
+    fast = _load(tmp_path, "duckdb", text, SMALL)
+    slow = _load(tmp_path, "polars", text, HUGE)
+    assert slow[0].reader == "polars"
+    return fast, slow
+
+
+def test_clean_file_is_read_by_duckdb_and_stores_exactly_what_polars_stores(tmp_path):
+    text = "\n".join([LONG_HEADER, *_rows(600)]) + "\n"
+    (f, rows, rejects), (g, rows2, rejects2) = _both(tmp_path, text)
+    assert f.reader == "duckdb"
+    assert (f.rows_loaded, f.rows_rejected) == (g.rows_loaded, g.rows_rejected) == (600, 0)
+    assert rows == rows2  # every column, value for value, with the same line numbers
+    assert [r[-2] for r in rows] == list(range(2, 602))
+    assert rejects == rejects2 == []
+
+
+def test_crlf_and_missing_final_newline_keep_the_duckdb_reader_and_the_lines(tmp_path):
+    text = "\r\n".join([LONG_HEADER, *_rows(300, seed=3)])  # no newline after the last line
+    (f, rows, _), (_, rows2, _) = _both(tmp_path, text)
+    assert f.reader == "duckdb"
+    assert rows == rows2 and rows[-1][-2] == 301
+
+
+# Values DuckDB would read differently from Polars (or read at all where Polars rejects): the DuckDB reader
+# must hand such a file to the Polars reader, so the result is the Polars one. Found by probing both readers
+# (DuckDB 2.0.1, Polars 1.x): TRY_CAST('12.5' AS BIGINT) = 13, ' 12.5' and '1_000' parse as numbers, '24:00:00'
+# is the next day, a leading blank is skipped before a timestamp.
+ODD = [
+    ("value", " 45.1"),
+    ("value", "45.1 "),
+    ("value", "4_5.1"),
+    ("value", "+45.1"),
+    ("value", ".5"),
+    ("value", "1e400"),
+    ("value", "NaN"),
+    ("value", "inf"),
+    ("value", "-3.0"),
+    ("value", "5000"),
+    ("value", "12,7"),
+    ("value", ""),
+    ("slot", "12.5"),
+    ("slot", "0x10"),
+    ("slot", " 3"),
+    ("slot", "26"),
+    ("x", "150.001"),
+    ("ts", "2026-09-03T24:00:00Z"),
+    ("ts", "2026-09-03T07:14:60Z"),
+    ("ts", "2026-9-3T7:14:05Z"),
+    ("ts", " 2026-09-03T07:14:05Z"),
+    ("ts", "2026-09-03T07:14:05.1234567Z"),
+    ("ts", "2026-09-03 07:14:05Z"),
+    ("ts", "2026-09-03T07:14:05+02:00"),
+    ("ts", "2026-09-03T07:14:05"),
+    ("ts", "2026-02-30T07:14:05Z"),
+    ("stage", "LITHO"),
+    ("param", "CD_XYZ"),
+    ("lot", ""),
+]
+
+
+@pytest.mark.parametrize(("field", "raw"), ODD, ids=[f"{f}={r!r}" for f, r in ODD])
+def test_a_value_needing_a_closer_look_sends_the_file_to_polars(tmp_path, field, raw):
+    lines = [LONG_HEADER, *_rows(200, seed=11)]
+    lines[101] = long_row("S00100", **{"lot": "HC0002", field: raw})  # line 102
+    text = "\n".join(lines) + "\n"
+    (f, rows, rejects), (g, rows2, rejects2) = _both(tmp_path, text)
+    assert f.reader == "polars"
+    assert (f.rows_loaded, f.rows_rejected) == (g.rows_loaded, g.rows_rejected)
+    assert rows == rows2
+    assert rejects == rejects2
+
+
+def test_ragged_and_blank_lines_send_the_file_to_polars_with_its_rejects(tmp_path):
+    lines = [LONG_HEADER, *_rows(200, seed=5)]
+    lines[50] = lines[50] + ",extra"  # line 51: one field too many
+    lines[120] = ""  # line 121: blank
+    text = "\n".join(lines) + "\n"
+    (f, rows, rejects), (_, rows2, rejects2) = _both(tmp_path, text)
+    assert f.reader == "polars"
+    assert rows == rows2 and rejects == rejects2
+    assert [r[0] for r in rejects] == [51]
+
+
+def test_duplicate_key_in_a_duckdb_read_file_is_rejected_like_polars_does(tmp_path):
+    lines = [LONG_HEADER, *_rows(300, seed=9)]
+    lines[250] = lines[40]  # line 251 repeats line 41 exactly
+    text = "\n".join(lines) + "\n"
+    (f, rows, rejects), (g, rows2, rejects2) = _both(tmp_path, text)
+    assert f.reader == "duckdb"
+    assert rows == rows2 and rejects == rejects2
+    assert [(r[0], r[3]) for r in rejects] == [(251, rejects2[0][3])] and "line 41" in rejects[0][3]
+    assert (f.rows_loaded, f.rows_rejected) == (g.rows_loaded, g.rows_rejected) == (299, 1)
+
+
+def test_quoted_file_is_read_by_polars(tmp_path):
+    lines = [LONG_HEADER, *_rows(200, seed=2)]
+    lines[7] = lines[7].replace("SEM-", '"SEM-', 1).replace(",", '",', 14)  # one quoted field
+    text = "\n".join(lines) + "\n"
+    (f, rows, rejects), (_, rows2, rejects2) = _both(tmp_path, text)
+    assert f.reader == "polars"
+    assert rows == rows2 and rejects == rejects2
+
+
+def test_reexport_through_duckdb_supersedes_like_polars(tmp_path):
+    first = "\n".join([LONG_HEADER, *_rows(200, seed=4)]) + "\n"
+    again = "\n".join([LONG_HEADER, *_rows(200, seed=4)[:150]]) + "\n"  # other bytes, same keys
+    results = []
+    for name, chunk in (("duckdb", SMALL), ("polars", HUGE)):
+        d = tmp_path / name
+        d.mkdir()
+        (d / "a.csv").write_text(first)
+        (d / "b.csv").write_text(again)
+        rep = ingest_paths([d / "a.csv", d / "b.csv"], db=d / "wh.duckdb", chunk_bytes=chunk)
+        con = duckdb.connect(str(d / "wh.duckdb"), read_only=True)
+        results.append(
+            (
+                [(r.rows_loaded, r.rows_superseded) for r in rep.files],
+                con.execute(f"SELECT {COLUMNS}, _source_file_id FROM measurements ORDER BY ALL").fetchall(),
+                con.execute("SELECT * EXCLUDE (superseded_at) FROM supersessions ORDER BY ALL").fetchall(),
+            )
+        )
+        con.close()
+    assert results[0] == results[1]
+    assert results[0][0][1][1] > 0  # the re-export superseded rows
