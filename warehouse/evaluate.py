@@ -28,6 +28,7 @@ from __future__ import annotations
 import getpass
 import json
 import time
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime
 
@@ -136,11 +137,21 @@ def evaluate_connection(con, *, full: bool = False, user: str = "unknown") -> Ru
     wm_old = 0 if not last else int(last[0][0])
     started = _now()
     s = RunSummary("full" if full else "incremental", version, wm_new)
-    pts_mod.update_lot_index(con)
-    ctx = _Context(con, started, user, s)
-    ctx.changes = {} if full else pts_mod.read_changes(con, watermark=wm_old)
-    for e in plan.entries:
-        _evaluate_entry(ctx, e, full=full, watermark=wm_old)
+    # An incremental run's reads (what changed, then each entry's points of the changed lots) run on
+    # cursors in background threads, overlapping the lot index update, the per-entry computation and the
+    # writes on ``con`` (the only connection that writes). Cursors see the committed warehouse; evaluation
+    # writes no fact, so they read what ``con`` would. Full reads stay sequential, to hold one entry's
+    # points in memory at a time.
+    with ThreadPoolExecutor(max_workers=READ_THREADS, thread_name_prefix="lotline-read") as pool:
+        changes = (
+            None if full else pool.submit(_on_cursor, con.cursor(), pts_mod.read_changes, watermark=wm_old)
+        )
+        pts_mod.update_lot_index(con)
+        ctx = _Context(con, started, user, s)
+        ctx.changes = {} if changes is None else changes.result()
+        reads = [_start_reads(ctx, pool, e, full=full, watermark=wm_old) for e in plan.entries]
+        for e, r in zip(plan.entries, reads, strict=True):
+            _evaluate_entry(ctx, e, r, watermark=wm_old)
     if full:
         _withdraw_removed_charts(ctx, [e.name for e in plan.entries])
     _flush(ctx)
@@ -171,6 +182,56 @@ def evaluate_connection(con, *, full: bool = False, user: str = "unknown") -> Ru
     con.execute("INSERT INTO meta VALUES (?, ?)", [CHART_POINTS_RUN, str(run_id)])
     s.seconds = round(time.perf_counter() - t0, 3)
     return s
+
+
+READ_THREADS = 2
+"""Background threads for an incremental run's reads (each on its own cursor)."""
+
+
+def _on_cursor(cur, fn, *args, **kw):
+    """``fn(cur, ...)`` in a background thread; closes the cursor afterwards."""
+    try:
+        return fn(cur, *args, **kw)
+    finally:
+        cur.close()
+
+
+@dataclass
+class _EntryReads:
+    """An entry's reads of an incremental run, decided (and started) before the entries are evaluated."""
+
+    full: bool
+    lots: pl.DataFrame | None = None  # changed lots (lot_id, first_file_id); None when full
+    min_file_id: int = 0
+    needs_old: bool = False  # some changed lot was evaluated before: read its points as of the watermark
+    new: Future | None = None
+    old: Future | None = None
+
+
+def _start_reads(ctx: _Context, pool: ThreadPoolExecutor, e: PlanEntry, *, full: bool, watermark: int):
+    """Which of the entry's points to read; starts the reads of changed lots in ``pool``."""
+    if full:
+        return _EntryReads(full=True)
+    lots, spec_changed = pts_mod.changed_lots(e, ctx.changes)
+    if spec_changed:
+        return _EntryReads(full=True)
+    first = lots.filter(pl.col("first_file_id").is_not_null())
+    r = _EntryReads(
+        full=False,
+        lots=lots,
+        min_file_id=int(first["first_file_id"].min()) if first.height else watermark + 1,
+        # when every changed lot is new since the last run, nothing of it was evaluated before
+        needs_old=first.filter(pl.col("first_file_id") <= watermark).height > 0,
+    )
+    if lots.height:  # no changed lot: nothing to read (limits re-frozen alone read what they recompute)
+        dirty = lots.select("lot_id")
+        kw = {"dirty_lots": dirty, "min_file_id": r.min_file_id}
+        r.new = pool.submit(_on_cursor, ctx.con.cursor(), pts_mod.read_points, e, **kw)
+        if r.needs_old:
+            r.old = pool.submit(
+                _on_cursor, ctx.con.cursor(), pts_mod.read_points, e, scope="as_of", watermark=watermark, **kw
+            )
+    return r
 
 
 def _chart_points_written(con) -> bool:
@@ -263,7 +324,7 @@ def _attach_series(ctx: _Context, e: PlanEntry, pts: pl.DataFrame, *, create: bo
     return pts.join(keys, on=scols, how="left", nulls_equal=True, maintain_order="left")
 
 
-def _evaluate_entry(ctx: _Context, e: PlanEntry, *, full: bool, watermark: int) -> None:
+def _evaluate_entry(ctx: _Context, e: PlanEntry, reads: _EntryReads, *, watermark: int) -> None:
     con = ctx.con
     # series whose limits were re-frozen since their last evaluation are recomputed even without new data
     refrozen = {
@@ -273,38 +334,34 @@ def _evaluate_entry(ctx: _Context, e: PlanEntry, *, full: bool, watermark: int) 
         and sid in ctx.limits
         and (ctx.state.get(sid) or {}).get("limit_version") != ctx.limits[sid]["version"]
     }
-    if not full:
-        lots, spec_changed = pts_mod.changed_lots(e, ctx.changes)
-        if spec_changed:
-            full = True
-        elif lots.height == 0 and not refrozen:
-            return
-    if full:
+    if reads.full:
         pts = _attach_series(ctx, e, pts_mod.read_points(con, e), create=True)
         known = {sid for (chart, *_), sid in ctx.series.items() if chart == e.name}
         recompute = sorted(set(pts["series_id"].unique().to_list()) | known)
         _recompute(ctx, e, pts, recompute)
         return
-    first = lots.filter(pl.col("first_file_id").is_not_null())
-    min_fid = int(first["first_file_id"].min()) if first.height else watermark + 1
-    lot_ids = lots.select("lot_id")
-    new = _attach_series(
-        ctx, e, pts_mod.read_points(con, e, dirty_lots=lot_ids, min_file_id=min_fid), create=True
-    )
-    if first.filter(pl.col("first_file_id") <= watermark).height:
-        old = pts_mod.read_points(
-            con, e, scope="as_of", watermark=watermark, dirty_lots=lot_ids, min_file_id=min_fid
+    lots = reads.lots
+    if lots.height == 0 and not refrozen:
+        return
+    kw = {"dirty_lots": lots.select("lot_id"), "min_file_id": reads.min_file_id}
+    new = reads.new.result() if reads.new is not None else pts_mod.read_points(con, e, **kw)
+    new = _attach_series(ctx, e, new, create=True)
+    if reads.needs_old:
+        old = (
+            reads.old.result()
+            if reads.old is not None
+            else pts_mod.read_points(con, e, scope="as_of", watermark=watermark, **kw)
         )
-    else:  # every changed lot is new since the last run: nothing of it was evaluated before
-        old = new.clear().drop("series_id")
-    old = _attach_series(ctx, e, old, create=False).filter(pl.col("series_id").is_not_null())
-    key = ["series_id", "point_key"]
-    cmp = ["series_id", "point_key", "value", "lsl", "usl", "vmin", "vmax"]
-    added = new.join(old.select(cmp), on=cmp, how="anti", nulls_equal=True)
-    removed = old.join(new.select(cmp), on=cmp, how="anti", nulls_equal=True)
-    must = set(removed["series_id"].to_list()) | set(
-        added.join(old.select(key), on=key, how="semi")["series_id"].to_list()
-    )
+        old = _attach_series(ctx, e, old, create=False).filter(pl.col("series_id").is_not_null())
+        key = ["series_id", "point_key"]
+        cmp = ["series_id", "point_key", "value", "lsl", "usl", "vmin", "vmax"]
+        added = new.join(old.select(cmp), on=cmp, how="anti", nulls_equal=True)
+        removed = old.join(new.select(cmp), on=cmp, how="anti", nulls_equal=True)
+        must = set(removed["series_id"].to_list()) | set(
+            added.join(old.select(key), on=key, how="semi")["series_id"].to_list()
+        )
+    else:  # no changed lot was evaluated before: every point is new, none changed or vanished
+        added, must = new, set()
     append, recompute = [], set(must) | refrozen
     firsts = added.group_by("series_id").agg(
         pl.col("point_at").min().alias("t"),
@@ -622,9 +679,12 @@ def _write_state(ctx, e, pts, series, ew, cu, *, base_state, context=None) -> No
         if need
         else allp.clear()
     )
-    ctx_json = {}
-    for sid, grp in tail.group_by("series", maintain_order=True):
-        ctx_json[sid[0]] = json.dumps(grp.select("seq", "value", "center", "sigma").to_dicts())
+    groups: dict[int, list[dict]] = {}
+    for sid, seq, value, center, sigma in tail.select(
+        "series", "seq", "value", "center", "sigma"
+    ).iter_rows():
+        groups.setdefault(sid, []).append({"seq": seq, "value": value, "center": center, "sigma": sigma})
+    ctx_json = {sid: json.dumps(rows) for sid, rows in groups.items()}
     last = (
         pts.sort("series_id", "point_at", "point_key")
         .group_by("series_id", maintain_order=True)

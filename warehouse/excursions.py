@@ -165,6 +165,8 @@ def group_signals(
                   GROUP BY excursion_id) a
             WHERE e.excursion_id = a.excursion_id"""
         )
+        if not any_withdrawn:
+            return opened  # only a withdrawal can leave an excursion without standing signals
         # an unclosed excursion whose signals were all withdrawn closes itself, with an audit row
         con.execute(
             """CREATE OR REPLACE TEMP TABLE emptied AS SELECT e.excursion_id, e.state FROM excursions e

@@ -266,14 +266,14 @@ def update_lot_index(con) -> None:
     top = int(con.execute("SELECT coalesce(max(file_id), 0) FROM source_files").fetchall()[0][0])
     if top <= wm:
         return
-    for t in INDEXED_TABLES:
-        con.execute(
-            f"""INSERT INTO lot_first_files
-            SELECT ?, f.lot_id, min(f._source_file_id) FROM "{t}" f WHERE f._source_file_id > ?
+    # one statement for the four tables (table names are our own constants, values are bound)
+    arms = " UNION ALL ".join(
+        f"""(SELECT '{t}', f.lot_id, min(f._source_file_id) FROM "{t}" f WHERE f._source_file_id > $wm
             GROUP BY f.lot_id
-            HAVING f.lot_id NOT IN (SELECT lot_id FROM lot_first_files WHERE table_name = ?)""",
-            [t, wm, t],
-        )
+            HAVING f.lot_id NOT IN (SELECT lot_id FROM lot_first_files WHERE table_name = '{t}'))"""
+        for t in INDEXED_TABLES
+    )
+    con.execute(f"INSERT INTO lot_first_files {arms}", {"wm": wm})
     if rows:
         con.execute("UPDATE meta SET value = ? WHERE key = 'lot_index_file_id'", [str(top)])
     else:

@@ -138,3 +138,26 @@ def test_incremental_evaluation_equals_full_over_random_ingest_orders(batches):
         # and a --full rerun of the incremental warehouse changes nothing
         s = evaluate.evaluate_warehouse(inc, full=True, user="t")
         assert (s.signals_new, s.signals_withdrawn) == (0, 0)
+
+
+def test_incremental_after_refreeze_without_new_data_equals_full(tmp_path):
+    # no changed lot, but one chart's limits frozen again: the incremental run recomputes that chart's
+    # series alone (reading their points itself, no changed-lot read) and must agree with a full run
+    inc = _new_db(tmp_path, "inc.duckdb")
+    with store.open_warehouse(inc) as con:
+        insert_facts(con, schema.MEASUREMENTS, [r for lot in LOTS for r in lot])
+    evaluate.evaluate_warehouse(inc, user="t")
+    before = _standing(inc)
+    evaluate.freeze_limits(inc, chart="wafer-ewma", first=8, reason="longer baseline", user="a.engineer")
+    s = evaluate.evaluate_warehouse(inc, user="t")
+    assert s.mode == "incremental"
+    assert s.series_recomputed > 0 and s.series_appended == 0
+    after = _standing(inc)
+    assert {r[8] for r in after if r[0] == "wafer-ewma" and r[5] != "oos"} == {2}
+    assert {r for r in after if r[0] == "site-cusum"} == {r for r in before if r[0] == "site-cusum"}
+    full = tmp_path / "full.duckdb"
+    full.write_bytes(inc.read_bytes())
+    f = evaluate.evaluate_warehouse(full, full=True, user="t")
+    assert (f.signals_new, f.signals_withdrawn) == (0, 0)
+    assert _standing(full) == after
+    assert _state(full) == _state(inc)
