@@ -252,7 +252,7 @@ class _Context:
             "SELECT series_id, chart, layer, parameter, split_json FROM chart_series"
         ).fetchall()
         self.series = {(r[1], r[2], r[3], r[4]): r[0] for r in rows}
-        st = con.sql("SELECT * FROM series_state").pl()
+        st = pts_mod.fetch_frame(con.sql("SELECT * FROM series_state"))
         self.state = {r["series_id"]: r for r in st.to_dicts()}
 
 
@@ -262,7 +262,7 @@ def _withdraw_removed_charts(ctx: _Context, names: list[str]) -> None:
     if not gone:
         return
     frame = pl.DataFrame({"series_id": gone}, schema={"series_id": pl.Int64})
-    ctx.con.register("gone", frame)
+    ctx.con.register("gone", pts_mod.ArrowSource(frame))
     try:
         n = ctx.con.execute(
             "UPDATE signals SET withdrawn_at = ?, withdrawn_reason = ? WHERE withdrawn_at IS NULL "
@@ -316,7 +316,7 @@ def _attach_series(ctx: _Context, e: PlanEntry, pts: pl.DataFrame, *, create: bo
                 }
             )
         frame = pl.DataFrame(recs, schema=schema.polars_schema(schema.CHART_SERIES))
-        ctx.con.register("new_series", frame)
+        ctx.con.register("new_series", pts_mod.ArrowSource(frame))
         ctx.con.execute("INSERT INTO chart_series BY NAME SELECT * FROM new_series")
         ctx.con.unregister("new_series")
     ids = [ctx.series.get(k) for k in wanted]
@@ -792,26 +792,26 @@ def _flush(ctx: _Context) -> None:
     con = ctx.con
     if ctx.replaced_points:
         gone = pl.DataFrame({"series_id": sorted(ctx.replaced_points)}, schema={"series_id": pl.Int64})
-        con.register("replaced_series", gone)
+        con.register("replaced_series", pts_mod.ArrowSource(gone))
         try:
             con.execute("DELETE FROM chart_points WHERE series_id IN (SELECT series_id FROM replaced_series)")
         finally:
             con.unregister("replaced_series")
     if ctx.pending_points:
-        con.register("new_points", pl.concat(ctx.pending_points))
+        con.register("new_points", pts_mod.ArrowSource(pl.concat(ctx.pending_points)))
         try:  # in series order, so that one chart's read is a range scan over few row groups
             con.execute("INSERT INTO chart_points BY NAME SELECT * FROM new_points ORDER BY series_id, seq")
         finally:
             con.unregister("new_points")
     if ctx.pending_state:
-        con.register("new_state", pl.concat(ctx.pending_state))
+        con.register("new_state", pts_mod.ArrowSource(pl.concat(ctx.pending_state)))
         try:
             con.execute("DELETE FROM series_state WHERE series_id IN (SELECT series_id FROM new_state)")
             con.execute("INSERT INTO series_state BY NAME SELECT * FROM new_state")
         finally:
             con.unregister("new_state")
     if ctx.pending_signals:
-        con.register("cand", pl.concat(ctx.pending_signals))
+        con.register("cand", pts_mod.ArrowSource(pl.concat(ctx.pending_signals)))
         try:
             n = con.execute(
                 """INSERT INTO signals
@@ -858,9 +858,9 @@ def _reconcile(
         "AND ((s.statistic IS NULL AND c.statistic IS NULL) "
         "     OR abs(s.statistic - c.statistic) <= 1e-9 * greatest(1.0, abs(c.statistic)))"
     )
-    con.register("cand", cand)
-    con.register("rs", rs)
-    con.register("pk", pk)
+    con.register("cand", pts_mod.ArrowSource(cand))
+    con.register("rs", pts_mod.ArrowSource(rs))
+    con.register("pk", pts_mod.ArrowSource(pk))
     try:
         if recompute:
             n = con.execute(

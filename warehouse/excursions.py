@@ -16,6 +16,7 @@ from datetime import UTC, datetime
 
 from warehouse import schema, store
 from warehouse.errors import LotlineError
+from warehouse.points import ArrowSource
 
 CAUTION = (
     "Signals advise; they do not decide. The fab's out-of-control action plan (OCAP) and a "
@@ -69,7 +70,7 @@ def group_signals(
     import polars as pl
 
     ids = pl.DataFrame({"series_id": series_ids}, schema={"series_id": pl.Int64})
-    con.register("touched", ids)
+    con.register("touched", ArrowSource(ids))
     try:
         todo = con.execute(
             "SELECT signal_id, series_id, point_seq FROM signals WHERE withdrawn_at IS NULL AND excursion_id IS NULL "
@@ -116,7 +117,7 @@ def group_signals(
                 },
                 schema={"excursion_id": pl.Int64, "series_id": pl.Int64, "chart": pl.String},
             )
-            con.register("new_exc", frame)
+            con.register("new_exc", ArrowSource(frame))
             con.execute(
                 "INSERT INTO excursions SELECT excursion_id, series_id, chart, 'open', 'low', ?, ?, '[]', '[]', 0, ? "
                 "FROM new_exc ORDER BY excursion_id",
@@ -133,7 +134,7 @@ def group_signals(
             frame = pl.DataFrame(
                 assign, schema={"signal_id": pl.Int64, "excursion_id": pl.Int64}, orient="row"
             )
-            con.register("assign", frame)
+            con.register("assign", ArrowSource(frame))
             con.execute(
                 "UPDATE signals s SET excursion_id = a.excursion_id FROM assign a WHERE s.signal_id = a.signal_id"
             )
@@ -151,7 +152,8 @@ def group_signals(
             }
         con.unregister("touched")
         con.register(
-            "touched", pl.DataFrame({"excursion_id": sorted(changed)}, schema={"excursion_id": pl.Int64})
+            "touched",
+            ArrowSource(pl.DataFrame({"excursion_id": sorted(changed)}, schema={"excursion_id": pl.Int64})),
         )
         rank = "CASE severity WHEN 'critical' THEN 4 WHEN 'high' THEN 3 WHEN 'medium' THEN 2 ELSE 1 END"
         con.execute(

@@ -40,6 +40,29 @@ POINT_COLUMNS = (
 """Columns of a points frame besides the series columns (layer, parameter and the split columns)."""
 
 
+class ArrowSource:
+    """A Polars frame for ``register``, handed to DuckDB through the Arrow C stream interface.
+
+    DuckDB converts a bare Polars frame through pyarrow, whose import is a fixed cost of tens of ms on the
+    first use in a process (every CLI run); the stream interface needs no pyarrow. Each scan takes a new
+    stream, so a registered source can be read by several statements.
+    """
+
+    __slots__ = ("frame",)
+
+    def __init__(self, frame: pl.DataFrame) -> None:
+        self.frame = frame
+
+    def __arrow_c_stream__(self, requested_schema=None):
+        return self.frame.__arrow_c_stream__(requested_schema)
+
+
+def fetch_frame(rel) -> pl.DataFrame:
+    """A relation's rows as a Polars frame, through the Arrow C stream interface (same dtypes as ``.pl()``,
+    without importing pyarrow)."""
+    return pl.DataFrame(rel)
+
+
 def series_columns(e: PlanEntry) -> list[str]:
     """Columns whose values identify a series of the entry."""
     return ["layer", "parameter", *e.split]
@@ -238,10 +261,10 @@ def read_points(
     cur = con.cursor()
     try:
         if dirty_lots is not None:
-            cur.register("dirty_lots", dirty_lots)
+            cur.register("dirty_lots", ArrowSource(dirty_lots))
         if wanted is not None:
-            cur.register("wanted_series", wanted)
-        out = cur.sql(sql, params=params).pl()
+            cur.register("wanted_series", ArrowSource(wanted))
+        out = fetch_frame(cur.sql(sql, params=params))
     finally:
         cur.close()
     if "_generic" in out.columns:
@@ -327,7 +350,7 @@ def read_changes(con, *, watermark: int) -> dict[str, pl.DataFrame]:
     }
     cur = con.cursor()
     try:
-        return {k: cur.sql(q, params={"wm": watermark}).pl() for k, q in queries.items()}
+        return {k: fetch_frame(cur.sql(q, params={"wm": watermark})) for k, q in queries.items()}
     finally:
         cur.close()
 
