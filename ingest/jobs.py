@@ -753,21 +753,24 @@ def _load_direct(
     done = direct.insert_rows(con, prog, path=str(path), file_id=file_id, max_line_bytes=MAX_LINE_BYTES)
     if done is None:
         raise _DirectDeclined("DuckDB could not read the file")
-    n, unclean = done
+    n, unclean, repeated = done
     if n != expected or unclean:
         raise _DirectDeclined(f"{expected - n} of {expected} lines dropped, {unclean} rows not clean")
-    direct.number_lines(con, table, file_id=file_id, first_line=prog.header_line + 1)
+    first = prog.header_line + 1
+    base = direct.number_lines(con, table, file_id=file_id, first_line=first)
     _check_direct_lines(con, path, prog, scan, file_id=file_id)
     if on_bytes:
         on_bytes(scan.size)
     counts.loaded += n
     load.supersede_file(con, [table], file_id=file_id, counts=counts)
-    cand = direct.repeated_key_lines(con, table, file_id=file_id)
+    cand = [rowid - base + first for rowid in repeated]
     if cand:
         dup = load.reject_in_file_duplicates(con, table, cand, file_id=file_id, counts=counts)
         if dup.height:
             counts.reject_frames.append(dup)
-    keys = direct.written_keys(con, table, file_id=file_id)
+    keys = counts.written_keys.get(table)
+    if keys is None:
+        keys = direct.written_keys(con, table, file_id=file_id)
     return _affected_list({table: [keys]} if keys is not None else {})
 
 

@@ -142,7 +142,11 @@ def _value_sql(c: DirectColumn, p: _Params, t: schema.Table, typed: dict[str, st
 
 
 def insert_sql(prog: DirectProgram, *, path: str, file_id: int, max_line_bytes: int) -> tuple[str, dict]:
-    """The ``INSERT`` of the rows of the file at ``path`` (``_source_line`` 0 for a clean row, else -1)."""
+    """The ``INSERT`` of the rows of the file at ``path``.
+
+    Until :func:`number_lines`, ``_source_line`` holds -1 for a row that is not clean and, for a clean row, a
+    non-negative hash of its natural key.
+    """
     t = schema.table(prog.table)
     p = _Params()
     typed: dict[str, str] = {}
@@ -182,11 +186,14 @@ def insert_sql(prog: DirectProgram, *, path: str, file_id: int, max_line_bytes: 
     sel = ", ".join(f"{v} AS {_q(n)}" for n, v in exprs.items())
     ok = " AND ".join(f"coalesce({c}, false)" for c in clean) or "true"
     fid = p.add(int(file_id))
-    # the clean flag rides in _source_line (0 clean, -1 not) until number_lines: evaluating the checks in the
+    # the clean flag rides in _source_line (-1: not clean) until number_lines: evaluating the checks in the
     # projection costs ~5 % over a bare read_csv, the same checks as a WHERE filter ~50 % (DuckDB 2.0.1)
+    # a clean row's natural-key hash rides there too, so the in-file duplicate check needs no second hashing
+    key = [exprs.get(k, "NULL") for k in t.natural_key]
+    mark = f"(hash({', '.join(key)}) >> 1)::BIGINT" if key else "0"
     sql = (
         f"INSERT INTO {_q(t.name)} BY NAME SELECT {sel}, {fid} AS {_q(schema.C_SOURCE_FILE_ID)}, "
-        f"CASE WHEN {ok} THEN 0 ELSE -1 END AS {_q(schema.C_SOURCE_LINE)}, "
+        f"CASE WHEN {ok} THEN {mark} ELSE -1 END AS {_q(schema.C_SOURCE_LINE)}, "
         f"NULL::BIGINT AS {_q(schema.C_SUPERSEDED_BY)} FROM {src}"
     )
     return sql, p.values
@@ -194,31 +201,49 @@ def insert_sql(prog: DirectProgram, *, path: str, file_id: int, max_line_bytes: 
 
 def insert_rows(
     con: duckdb.DuckDBPyConnection, prog: DirectProgram, *, path: str, file_id: int, max_line_bytes: int
-) -> tuple[int, int] | None:
-    """Insert the file's rows in file order; return (rows inserted, rows not clean).
+) -> tuple[int, int, list[int]] | None:
+    """Insert the file's rows in file order; return (rows inserted, rows not clean, row ids of repeated keys).
 
-    Only a file whose rows are all clean may stay (the caller rolls the transaction back otherwise). Returns
-    None when DuckDB refused the file, e.g. a required value missing (the transaction is then aborted).
+    Only a file whose rows are all clean may stay (the caller rolls the transaction back otherwise). The
+    row ids are those of rows whose natural-key hash repeats within the file (candidates for the exact
+    duplicate check). Returns None when DuckDB refused the file, e.g. a required value missing (the
+    transaction is then aborted).
     """
     sql, params = insert_sql(prog, path=path, file_id=file_id, max_line_bytes=max_line_bytes)
-    L, F = _q(schema.C_SOURCE_LINE), _q(schema.C_SOURCE_FILE_ID)
+    L, F, t = _q(schema.C_SOURCE_LINE), _q(schema.C_SOURCE_FILE_ID), _q(prog.table)
     try:
         con.execute("SET preserve_insertion_order = true")
         n = int(con.execute(sql, params).fetchall()[0][0])
-        bad = con.execute(
-            f"SELECT count(*) FROM {_q(prog.table)} WHERE {F} = ? AND {L} < 0", [int(file_id)]
-        ).fetchall()[0][0]
+        bad, repeated = con.execute(
+            f"WITH g AS (SELECT {L} AS k, count(*) AS n FROM {t} WHERE {F} = ? GROUP BY k "
+            f"HAVING count(*) > 1 OR k < 0) "
+            f"SELECT coalesce(sum(n) FILTER (WHERE k < 0), 0), list(k) FILTER (WHERE k >= 0) FROM g",
+            [int(file_id)],
+        ).fetchall()[0]
+        rowids: list[int] = []
+        if repeated and not bad:
+            rowids = [
+                int(r[0])
+                for r in con.execute(
+                    f"SELECT rowid FROM {t} WHERE {F} = ? AND {L} IN (SELECT unnest(?)) ORDER BY rowid",
+                    [int(file_id), list(repeated)],
+                ).fetchall()
+            ]
     except duckdb.Error:
         return None
-    return n, int(bad)
+    return n, int(bad), rowids
 
 
-def number_lines(con: duckdb.DuckDBPyConnection, table: str, *, file_id: int, first_line: int) -> None:
-    """Set ``_source_line`` of the file's rows from their row ids (valid only when no line was dropped)."""
+def number_lines(con: duckdb.DuckDBPyConnection, table: str, *, file_id: int, first_line: int) -> int:
+    """Set ``_source_line`` of the file's rows from their row ids (valid only when no line was dropped).
+
+    Returns the row id of the first line (``line = rowid - base + first_line``).
+    """
     t = _q(table)
     F, L = _q(schema.C_SOURCE_FILE_ID), _q(schema.C_SOURCE_LINE)
-    base = con.execute(f"SELECT min(rowid) FROM {t} WHERE {F} = ?", [file_id]).fetchall()[0][0]
-    con.execute(f"UPDATE {t} SET {L} = rowid - ? + ? WHERE {F} = ?", [int(base), int(first_line), file_id])
+    base = int(con.execute(f"SELECT min(rowid) FROM {t} WHERE {F} = ?", [file_id]).fetchall()[0][0])
+    con.execute(f"UPDATE {t} SET {L} = rowid - ? + ? WHERE {F} = ?", [base, int(first_line), file_id])
+    return base
 
 
 def stored_at_lines(
@@ -234,22 +259,6 @@ def stored_at_lines(
         [file_id, [int(x) for x in lines]],
     ).fetchall()
     return {int(r[0]): tuple(r[1:]) for r in rows}
-
-
-def repeated_key_lines(con: duckdb.DuckDBPyConnection, table: str, *, file_id: int) -> list[int]:
-    """Lines of the file whose natural-key hash repeats within the file (candidates for the exact check)."""
-    t = schema.table(table)
-    if not t.natural_key:
-        return []
-    key = ", ".join(_q(k) for k in t.natural_key)
-    L, F = _q(schema.C_SOURCE_LINE), _q(schema.C_SOURCE_FILE_ID)
-    rows = con.execute(
-        f"WITH k AS (SELECT hash({key}) AS kh, {L} AS line FROM {_q(table)} WHERE {F} = ?), "
-        f"d AS (SELECT kh FROM k GROUP BY kh HAVING count(*) > 1) "
-        f"SELECT line FROM k WHERE kh IN (SELECT kh FROM d) ORDER BY line",
-        [file_id],
-    ).fetchall()
-    return [int(r[0]) for r in rows]
 
 
 def written_keys(con: duckdb.DuckDBPyConnection, table: str, *, file_id: int):

@@ -74,6 +74,9 @@ class FileCounts:
     supersessions: Counter[tuple[int, str, str]] = field(default_factory=Counter)
     reject_frames: list[pl.DataFrame] = field(default_factory=list)
     chunks: int = 0
+    written_keys: dict[str, pl.DataFrame] = field(default_factory=dict)
+    """Per table, the distinct (lot_id, layer, parameter) the file wrote, when :func:`supersede_file` found
+    them on the way (from its groups, which the supersede key of measurements covers)."""
 
 
 def _q(name: str) -> str:
@@ -205,6 +208,10 @@ def _supersede(con: duckdb.DuckDBPyConnection, t: schema.Table, *, file_id: int,
         [file_id],
     )
     try:
+        keys = [c for c in ("lot_id", "layer", "parameter") if c in t.names]
+        if keys and all(k in t.supersede_key for k in keys):
+            sel = ", ".join(f"g{t.supersede_key.index(k)} AS {_q(k)}" for k in keys)
+            counts.written_keys[t.name] = con.sql(f"SELECT DISTINCT {sel} FROM __lotline_groups").pl()
         match = " AND ".join(f"g.{n} IS NOT DISTINCT FROM {e}" for n, e in zip(names, g_old, strict=True))
         cond = f"m.{_q(schema.C_SUPERSEDED_BY)} IS NULL AND m.{_q(schema.C_SOURCE_FILE_ID)} < ?"
         hits = con.execute(

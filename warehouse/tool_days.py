@@ -80,6 +80,9 @@ def refresh_for_file(con, *, file_id: int, superseded_files: list[int]) -> None:
     if _covered(con) != _newest_loaded(con, below=file_id):
         rebuild(con)
         return
+    if not superseded_files:
+        _add_file(con, file_id)
+        return
     lo, hi = (min(superseded_files), max(superseded_files)) if superseded_files else (None, None)
     for kind, table, tool, day, last in SOURCES:
         old = (
@@ -117,6 +120,43 @@ GROUP BY f.{tool}, day""",
             )
         finally:
             con.execute("DROP TABLE IF EXISTS __lotline_tool_days")
+    _set_covered(con, file_id)
+
+
+def _add_file(con, file_id: int) -> None:
+    """A file that superseded nothing only adds rows: add its counts to the tool-days it touched.
+
+    One pass over the file's own rows (their zone maps bound the scan), instead of recounting whole days.
+    """
+    for kind, table, tool, day, last in SOURCES:
+        con.execute(
+            "CREATE OR REPLACE TEMP TABLE __lotline_tool_days AS "
+            f"SELECT f.{tool} AS tool, date_trunc('day', f.{day})::TIMESTAMP AS day, count(*) AS n, "
+            f"{last} AS last_seen FROM {table} f WHERE f._source_file_id = ? AND f._superseded_by IS NULL "
+            "GROUP BY ALL",
+            [file_id],
+        )
+        try:
+            if not con.execute("SELECT count(*) FROM __lotline_tool_days").fetchall()[0][0]:
+                continue
+            con.execute(
+                "CREATE OR REPLACE TEMP TABLE __lotline_tool_days_new AS "
+                "SELECT k.tool, ? AS tool_kind, k.day, k.n + coalesce(t.n_rows, 0) AS n_rows, "
+                "CASE WHEN t.last_seen IS NULL OR k.last_seen > t.last_seen THEN k.last_seen "
+                "ELSE t.last_seen END AS last_seen "
+                "FROM __lotline_tool_days k LEFT JOIN tool_days t "
+                "ON t.tool_kind = ? AND t.tool = k.tool AND t.day = k.day",
+                [kind, kind],
+            )
+            con.execute(
+                "DELETE FROM tool_days t WHERE t.tool_kind = ? AND EXISTS "
+                "(SELECT 1 FROM __lotline_tool_days k WHERE k.tool = t.tool AND k.day = t.day)",
+                [kind],
+            )
+            con.execute("INSERT INTO tool_days BY NAME SELECT * FROM __lotline_tool_days_new")
+        finally:
+            con.execute("DROP TABLE IF EXISTS __lotline_tool_days")
+            con.execute("DROP TABLE IF EXISTS __lotline_tool_days_new")
     _set_covered(con, file_id)
 
 
