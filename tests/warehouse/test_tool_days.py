@@ -153,3 +153,14 @@ def test_tool_days_rows_written_by_another_path_are_rebuilt_on_the_next_file(loa
     more = _meas("L10", "CDS-1", T0 + timedelta(days=2, hours=13), 2)
     _ingest(db, schema.MEASUREMENTS, more, "c.csv")
     assert _freshness(db, NOWS[0]) == _expected(meas + extra + more, hist, NOWS[0])
+
+
+@pytest.mark.parametrize("now", NOWS)
+def test_files_that_add_to_the_same_tool_day_sum_their_rows_and_keep_the_latest_time(loaded, now):
+    db, meas, hist = loaded
+    # two more files for CDS-1 on day 2, neither supersedes anything: the later one carries earlier times
+    late = _meas("L5", "CDS-1", T0 + timedelta(days=2, hours=20), 3)
+    early = _meas("L6", "CDS-1", T0 + timedelta(days=2, hours=1), 4)
+    _ingest(db, schema.MEASUREMENTS, late, "d.csv")
+    _ingest(db, schema.MEASUREMENTS, early, "e.csv")
+    assert _freshness(db, now) == _expected(meas + late + early, hist, now)
