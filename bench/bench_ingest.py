@@ -3,7 +3,9 @@ DuckDB ``read_csv`` into a table of the same file, both measured in the same run
 
     python -m bench.bench_ingest [--rows N]     # default 10,000,000 rows; data under bench/out/
 
-Target (issue 2): ratio <= 1.5 with all validation, lineage and dedupe on; peak RSS <= 2 GB.
+Target (issue 2): ratio <= 1.5 with all validation, lineage and dedupe on; peak RSS <= 2 GB. Each side runs
+``ROUNDS`` times, interleaved, and the best run counts; ``ok`` needs both the wall-time and the CPU-time ratio
+within the target.
 """
 
 from __future__ import annotations
@@ -19,6 +21,8 @@ OUT = Path(__file__).parent / "out"
 HEADER = "LotID,WaferID,Slot,Site,X_mm,Y_mm,Product,Layer,Stage,Parameter,Feature,Value_nm,MeasTime,Tool,Recipe,Repeat,SampleType"
 TARGET_RATIO = 1.5
 TARGET_RSS_MB = 2048
+ROUNDS = 2
+"""Each side runs this many times, interleaved; the fastest run of each counts (the usual guard against noise)."""
 
 
 def write_csv(path: Path, rows: int) -> None:
@@ -57,9 +61,12 @@ def write_csv(path: Path, rows: int) -> None:
 
 
 _BASELINE = """
-import duckdb, sys, time
+import duckdb, resource, sys, time
 csv, db = sys.argv[1], sys.argv[2]
-t0 = time.perf_counter()
+def cpu():
+    r = resource.getrusage(resource.RUSAGE_SELF)
+    return r.ru_utime + r.ru_stime
+c0, t0 = cpu(), time.perf_counter()
 con = duckdb.connect(db)
 con.execute("SET enable_progress_bar = false")
 cols = {"LotID": "VARCHAR", "WaferID": "VARCHAR", "Slot": "BIGINT", "Site": "VARCHAR", "X_mm": "DOUBLE",
@@ -70,17 +77,20 @@ con.execute("CREATE TABLE m AS SELECT * FROM read_csv(?, header=true, delim=',',
 con.execute("CHECKPOINT")
 n = con.execute("SELECT count(*) FROM m").fetchall()[0][0]
 con.close()
-print(time.perf_counter() - t0, n)
+print(time.perf_counter() - t0, n, cpu() - c0)
 """
 
 _LOTLINE = """
-import sys, time
+import resource, sys, time
 from ingest.jobs import ingest_paths
 csv, db = sys.argv[1], sys.argv[2]
-t0 = time.perf_counter()
+def cpu():
+    r = resource.getrusage(resource.RUSAGE_SELF)
+    return r.ru_utime + r.ru_stime
+c0, t0 = cpu(), time.perf_counter()
 r = ingest_paths([csv], db=db)
 f = r.files[0]
-print(time.perf_counter() - t0, f.rows_loaded, f.status, f.rows_rejected)
+print(time.perf_counter() - t0, f.rows_loaded, f.status, f.rows_rejected, f.reader, cpu() - c0)
 """
 
 
@@ -113,18 +123,27 @@ def run(size: int) -> list[dict]:
     csv = OUT / f"long_{size}.csv"
     if not csv.exists():
         write_csv(csv, size)
-    results = {}
-    for name, code in (("baseline", _BASELINE), ("lotline", _LOTLINE)):
-        db = OUT / f"{name}_{size}.duckdb"
-        for p in (db, Path(str(db) + ".wal")):
-            if p.exists():
-                p.unlink()
-        results[name] = _run_child(code, str(csv), str(db))
-    base_s, base_out, base_rss, base_cpu = results["baseline"]
-    lot_s, lot_out, lot_rss, lot_cpu = results["lotline"]
-    loaded = int(lot_out[0])
+    runs: dict[str, list[tuple[float, list[str], float, float]]] = {"baseline": [], "lotline": []}
+    for _ in range(ROUNDS):  # interleaved, so a burst of other work on the machine hits both sides
+        for name, code in (("baseline", _BASELINE), ("lotline", _LOTLINE)):
+            db = OUT / f"{name}_{size}.duckdb"
+            for p in (db, Path(str(db) + ".wal")):
+                if p.exists():
+                    p.unlink()
+            runs[name].append(_run_child(code, str(csv), str(db)))
+    base_s = min(r[0] for r in runs["baseline"])
+    # CPU of the timed section only (the child's own clock), so interpreter start and imports count on neither side
+    base_cpu = min(float(r[1][-1]) for r in runs["baseline"])
+    base_rss = max(r[2] for r in runs["baseline"])
+    lot_s = min(r[0] for r in runs["lotline"])
+    lot_cpu = min(float(r[1][-1]) for r in runs["lotline"])
+    lot_rss = max(r[2] for r in runs["lotline"])
+    loaded = min(int(r[1][0]) for r in runs["lotline"])
     ratio = lot_s / base_s
-    ok = ratio <= TARGET_RATIO and lot_rss <= TARGET_RSS_MB and loaded == size
+    cpu_ratio = lot_cpu / base_cpu
+    # both ratios must meet the target: a wall-time ratio alone can pass by luck when other work slows the
+    # baseline's run; the CPU ratio is the steadier measure of the work done
+    ok = ratio <= TARGET_RATIO and cpu_ratio <= TARGET_RATIO and lot_rss <= TARGET_RSS_MB and loaded == size
     return [
         {
             "name": "ingest_long_csv",
@@ -141,6 +160,9 @@ def run(size: int) -> list[dict]:
             "file_mb": round(csv.stat().st_size / 2**20, 1),
             "cpu_seconds": round(lot_cpu, 2),
             "baseline_cpu_seconds": round(base_cpu, 2),
+            "cpu_ratio": round(cpu_ratio, 3),
+            "rounds": ROUNDS,
+            "reader": runs["lotline"][0][1][3],
         }
     ]
 
@@ -157,10 +179,10 @@ def main() -> None:
         print(f"bare read_csv     {r['baseline_seconds']:.2f} s  (peak RSS {r['baseline_peak_rss_mb']} MB)")
         print(
             f"CPU time          lotline {r['cpu_seconds']:.1f} s, read_csv {r['baseline_cpu_seconds']:.1f} s "
-            f"(ratio {r['cpu_seconds'] / r['baseline_cpu_seconds']:.2f}; wall times suffer when other work shares the cores)"
+            f"(ratio {r['cpu_ratio']:.2f}; best of {r['rounds']} interleaved runs each; reader {r['reader']})"
         )
         print(
-            f"ratio             {r['ratio']:.2f}  (target <= {r['target']}, RSS <= {TARGET_RSS_MB} MB): "
+            f"ratio             {r['ratio']:.2f}  (target <= {r['target']} in wall and CPU time, RSS <= {TARGET_RSS_MB} MB): "
             f"{'ok' if r['ok'] else 'NOT MET'}"
         )
 

@@ -19,6 +19,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import duckdb
+import polars as pl
 
 from warehouse import schema
 
@@ -268,7 +269,9 @@ def written_keys(con: duckdb.DuckDBPyConnection, table: str, *, file_id: int):
     if not cols:
         return None
     sel = ", ".join(_q(c) for c in cols)
-    return con.sql(
-        f"SELECT DISTINCT {sel} FROM {_q(table)} WHERE {_q(schema.C_SOURCE_FILE_ID)} = $fid",
-        params={"fid": file_id},
-    ).pl()
+    return pl.DataFrame(
+        con.sql(
+            f"SELECT DISTINCT {sel} FROM {_q(table)} WHERE {_q(schema.C_SOURCE_FILE_ID)} = $fid",
+            params={"fid": file_id},
+        )
+    )

@@ -211,7 +211,10 @@ def _supersede(con: duckdb.DuckDBPyConnection, t: schema.Table, *, file_id: int,
         keys = [c for c in ("lot_id", "layer", "parameter") if c in t.names]
         if keys and all(k in t.supersede_key for k in keys):
             sel = ", ".join(f"g{t.supersede_key.index(k)} AS {_q(k)}" for k in keys)
-            counts.written_keys[t.name] = con.sql(f"SELECT DISTINCT {sel} FROM __lotline_groups").pl()
+            # pl.DataFrame(relation) reads through the Arrow C stream: no pyarrow import (tens of ms)
+            counts.written_keys[t.name] = pl.DataFrame(
+                con.sql(f"SELECT DISTINCT {sel} FROM __lotline_groups")
+            )
         match = " AND ".join(f"g.{n} IS NOT DISTINCT FROM {e}" for n, e in zip(names, g_old, strict=True))
         cond = f"m.{_q(schema.C_SUPERSEDED_BY)} IS NULL AND m.{_q(schema.C_SOURCE_FILE_ID)} < ?"
         hits = con.execute(
