@@ -40,6 +40,38 @@ def growth_exponent(points: list[tuple[int, float]]) -> float | None:
     return sum((x - mx) * (y - my) for x, y in pts) / sxx if sxx else None
 
 
+GROWTH_TARGET = 1.1
+GROWTH_CHECKED = {
+    "ingest_long_csv": ("seconds", "ingest time"),
+    "evaluate: incremental (one day) vs full": ("baseline_seconds", "full evaluation time"),
+}
+"""Issue 9: the growth exponent of ingest and evaluation between the smallest and largest size is <= 1.1.
+Maps a result name to the time field whose growth is checked and what it is."""
+
+
+def growth_checks(results: list[dict], sizes: tuple[int, ...]) -> list[dict]:
+    """One result row per checked growth exponent (ratio = exponent, target = GROWTH_TARGET)."""
+    out = []
+    for name, (key, what) in GROWTH_CHECKED.items():
+        pts = [(r["size"], r[key]) for r in results if r["name"] == name and r.get(key)]
+        e = growth_exponent(pts)
+        if e is None:
+            continue
+        out.append(
+            {
+                "name": f"growth exponent: {what}",
+                "stage": "growth",
+                "size": max(s for s, _ in pts),
+                "seconds": max(t for _, t in pts),
+                "baseline_seconds": min(t for _, t in pts),
+                "ratio": round(e, 3),
+                "target": f"exponent <= {GROWTH_TARGET} over {min(sizes):,}-{max(sizes):,}",
+                "ok": e <= GROWTH_TARGET,
+            }
+        )
+    return out
+
+
 def render_table(results: list[dict]) -> str:
     lines = [
         "| stage | size | seconds | baseline s | ratio | target | ok | rows/s | peak RSS MB |",
@@ -90,6 +122,7 @@ def main(argv: list[str] | None = None) -> int:
     exponents = {name: growth_exponent(pts) for name, pts in growth.items()}
     for r in results:
         r["growth_exponent"] = exponents.get(r["name"])
+    results.extend(growth_checks(results, sizes))
     Path(args.out).write_text(json.dumps(results, indent=2))
     print(render_table(results))
     print()

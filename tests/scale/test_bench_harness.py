@@ -1,0 +1,28 @@
+"""The benchmark harness's growth exponent: the least-squares slope of log time on log size."""
+
+from __future__ import annotations
+
+import pytest
+
+from bench.run import growth_checks, growth_exponent
+
+
+def test_growth_exponent_of_an_exact_power_law_is_its_power():
+    # t = c * n**k gives log t = log c + k log n exactly, so the fitted slope is k (common practice)
+    pts = [(n, 0.004 * n**1.25) for n in (1_000_000, 10_000_000, 30_000_000)]
+    assert growth_exponent(pts) == pytest.approx(1.25, rel=1e-12)
+    assert growth_exponent([(1_000_000, 2.0)]) is None
+
+
+def test_growth_checks_flag_ingest_faster_than_linear_growth():
+    rows = [
+        {"name": "ingest_long_csv", "size": 1_000_000, "seconds": 2.0},
+        {"name": "ingest_long_csv", "size": 10_000_000, "seconds": 2.0 * 10**1.2},
+        {"name": "evaluate: incremental (one day) vs full", "size": 1_000_000, "baseline_seconds": 1.0},
+        {"name": "evaluate: incremental (one day) vs full", "size": 10_000_000, "baseline_seconds": 10.0},
+    ]
+    checks = {c["name"]: c for c in growth_checks(rows, (1_000_000, 10_000_000))}
+    assert checks["growth exponent: ingest time"]["ratio"] == pytest.approx(1.2, abs=1e-3)
+    assert checks["growth exponent: ingest time"]["ok"] is False
+    assert checks["growth exponent: full evaluation time"]["ratio"] == pytest.approx(1.0, abs=1e-3)
+    assert checks["growth exponent: full evaluation time"]["ok"] is True
