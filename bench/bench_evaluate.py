@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import math
 import shutil
 import subprocess
 import sys
@@ -114,8 +115,29 @@ def load_last_day(path: Path, rows: int, days: int) -> int:
     return int(after - before)
 
 
+LOT_SPAN_S = 360
+"""Seconds one tool is busy with one lot of this sampling (3 wafers, the last measured 4-5 minutes in)."""
+
+
+def tool_counts(n_lots: int, days: int) -> tuple[int, int]:
+    """(metrology tools, process tools): at least 4 and 3, and enough that no tool holds two lots at once.
+
+    The bench's fab grows with the size (more lots a day over the same days); a real fab running lots
+    faster than one tool can take them has more tools. Without this, at 30M measurements one CD-SEM would
+    measure four lots at the same time, and each new day's first lots would fall before the previous day's
+    last points of the same series, which (correctly) recomputes those series instead of appending.
+    """
+    gap = 86400.0 * days / n_lots  # seconds between lot starts
+    need = math.ceil(LOT_SPAN_S / gap)
+    n_proc = max(3, need)
+    while math.gcd(7, n_proc) != 1:  # lots go to process tool (7 * lot + layer) mod n: keep it a permutation
+        n_proc += 1
+    return max(4, need), n_proc
+
+
 def _insert_days(con, n_lots: int, days: int, day_list) -> None:
     per_day = n_lots / days
+    n_sem, n_proc = tool_counts(n_lots, days)
     for d in day_list:
         lo, hi = int(round(d * per_day)), int(round((d + 1) * per_day))
         fid_m, fid_h = 2 * d + 1, 2 * d + 2
@@ -127,10 +149,10 @@ def _insert_days(con, n_lots: int, days: int, day_list) -> None:
             )
         # process history: one lot-level row per lot and layer step
         con.execute(
-            """
+            f"""
 INSERT INTO process_history
 SELECT 'LOT' || lpad(lot::VARCHAR, 7, '0'), NULL, CASE WHEN lot % 5 < 3 THEN 'AX14' ELSE 'BX22' END,
-       layer || '_STEP', li + 1, 'TOOL-' || ((lot * 7 + li) % 3)::VARCHAR, 'CH' || ((lot * 3 + li) % 4)::VARCHAR, 'R1',
+       layer || '_STEP', li + 1, 'TOOL-' || ((lot * 7 + li) % {n_proc})::VARCHAR, 'CH' || ((lot * 3 + li) % 4)::VARCHAR, 'R1',
        TIMESTAMP '2026-01-01' + to_seconds((lot * ?::DOUBLE + li * 3600 - 600)::BIGINT), NULL, ?, lot * 4 + li + 1, NULL
 FROM range(?, ?) t(lot), (SELECT 'L' || li::VARCHAR AS layer, li FROM range(4) r(li))
 ORDER BY lot, li""",
@@ -148,7 +170,7 @@ SELECT 'LOT' || lpad(lot::VARCHAR, 7, '0'), 'LOT' || lpad(lot::VARCHAR, 7, '0') 
        CASE WHEN param = 'cd_mid' THEN 45 + 5 * li + 0.6 * {lot_eff} + 0.3 * {wafer_eff} + 0.5 * {site_eff}
             ELSE 3 + 0.1 * {lot_eff} + 0.2 * abs({site_eff}) END,
        'nm', TIMESTAMP '2026-01-01' + to_seconds((lot * ?::DOUBLE + li * 3600 + w * 120 + s * 5)::BIGINT),
-       'SEM-' || ((lot + li) % 4)::VARCHAR, 'R1', 1, 'production', ?, (i % 1000000) + 2, NULL
+       'SEM-' || ((lot + li) % {n_sem})::VARCHAR, 'R1', 1, 'production', ?, (i % 1000000) + 2, NULL
 FROM (SELECT i, i // {ROWS_PER_LOT} AS lot, (i % {ROWS_PER_LOT}) // 54 AS li,
              ((i % {ROWS_PER_LOT}) // 27) % 2 AS pi, ((i % {ROWS_PER_LOT}) // 9) % 3 AS w, i % 9 AS s
       FROM range(? * {ROWS_PER_LOT}, ? * {ROWS_PER_LOT}) t(i)) g,
