@@ -355,17 +355,29 @@ def read_changes(con, *, watermark: int) -> dict[str, pl.DataFrame]:
         cur.close()
 
 
+def glob_match(column: str, pattern: str) -> pl.Expr:
+    """A Polars predicate for a plan wildcard: true for ``*``, equality without wildcards, else a regex.
+
+    (A regex is compiled on every call; most plan selectors are ``*`` or an exact name.)
+    """
+    if pattern == "*":
+        return pl.col(column).is_not_null()
+    if "*" not in pattern and "?" not in pattern:
+        return pl.col(column) == pattern
+    return pl.col(column).str.contains(glob_regex(pattern))
+
+
 def changed_lots(e: PlanEntry, changes: dict[str, pl.DataFrame]) -> tuple[pl.DataFrame, bool]:
     """The entry's changed lots (lot_id, first_file_id) and whether its spec limits changed."""
-    layer = pl.col("layer").str.contains(glob_regex(e.layer))
-    product = pl.col("product").str.contains(glob_regex(e.product))
+    layer = glob_match("layer", e.layer)
+    product = glob_match("product", e.product)
     if e.is_defect:
         parts = [changes["inspections"].filter(layer & product).select("lot_id")]
         if e.statistic == "defect_density" and e.parameter != "total":
             parts.append(changes["defect_counts"].filter(layer).select("lot_id"))
         facts = changes["inspections"]
     else:
-        param = pl.col("parameter").str.contains(glob_regex(e.parameter))
+        param = glob_match("parameter", e.parameter)
         parts = [changes["measurements"].filter(layer & param & product).select("lot_id")]
         facts = changes["measurements"]
     firsts = [facts.select("lot_id", "first_file_id")]
@@ -381,10 +393,6 @@ def changed_lots(e: PlanEntry, changes: dict[str, pl.DataFrame]) -> tuple[pl.Dat
     if not e.is_defect and e.spec_check:
         spec = changes["spec_limits"]
         spec_changed = (
-            spec.filter(
-                pl.col("layer").str.contains(glob_regex(e.layer))
-                & pl.col("parameter").str.contains(glob_regex(e.parameter))
-            ).height
-            > 0
+            spec.filter(glob_match("layer", e.layer) & glob_match("parameter", e.parameter)).height > 0
         )
     return lots, spec_changed
