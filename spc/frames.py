@@ -106,6 +106,13 @@ def layout_points(points: pl.DataFrame, *, need_limits: bool = True) -> Layout:
     return Layout(frame, value, z, start, idx - first, block, n_series)
 
 
+def in_series_order(frame: pl.DataFrame) -> pl.DataFrame:
+    """The frame sorted by series and seq, or itself when it already is (each series one block, seq rising)."""
+    if frame.height and not _is_laid_out(frame):
+        return frame.sort([SERIES, SEQ], maintain_order=True)
+    return frame
+
+
 def _is_laid_out(frame: pl.DataFrame) -> bool:
     block = frame[SERIES].rle_id()
     firsts = frame[SERIES].filter(block != block.shift(1, fill_value=-1))

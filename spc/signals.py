@@ -13,7 +13,7 @@ import polars as pl
 
 from spc.cusum import CUSUM_HI, CUSUM_LO, CusumParams, cusum_arrays
 from spc.ewma import EWMA, EwmaParams, ewma_arrays
-from spc.frames import gather_signals, layout_points
+from spc.frames import POINT_COLUMNS, check_columns, gather_signals, in_series_order, layout_points
 from spc.rules import RuleParams, rule_masks
 
 CHUNK_POINTS = 1_000_000
@@ -40,7 +40,8 @@ def evaluate_signals(
     [(2, 'we1'), (2, 'ewma')]
     """
     if points.height > chunk_points:
-        frame = layout_points(points).frame  # sorted into series order (a no-op when it already is)
+        check_columns(points, POINT_COLUMNS)
+        frame = in_series_order(points)  # each slice is validated by layout_points below
         cuts = series_slices(frame, chunk_points)
         if len(cuts) > 1:
             return pl.concat(
