@@ -19,7 +19,7 @@ test: $(STAMP)
 	$(BIN)/python -m pytest -q -p no:cacheprovider
 
 bench: $(STAMP)
-	$(BIN)/python -m bench.run
+	$(BIN)/python -m bench.run --readme README.md
 
 bench-quick: $(STAMP)
 	$(BIN)/python -m bench.run --quick

@@ -14,6 +14,7 @@ import argparse
 import importlib
 import json
 import math
+import os
 import sys
 import time
 from pathlib import Path
@@ -90,15 +91,65 @@ def render_table(results: list[dict]) -> str:
     return "\n".join(lines)
 
 
+README_START = "<!-- bench-table:start (written by `make bench`; edits between these lines are replaced) -->"
+README_END = "<!-- bench-table:end -->"
+
+
+def render_report(results: list[dict]) -> str:
+    """The results table, then the growth exponent of every measurement over the sizes."""
+    exps: dict[str, float | None] = {}
+    for r in results:
+        if r.get("stage") != "growth":
+            exps.setdefault(r["name"], r.get("growth_exponent"))
+    lines = [render_table(results), "", "| measurement | growth exponent over sizes |", "| --- | ---: |"]
+    lines += [f"| {n} | {'' if e is None else format(e, '.2f')} |" for n, e in exps.items()]
+    return "\n".join(lines)
+
+
+def write_readme(path: Path, results: list[dict], note: str) -> None:
+    """Replace the block between README_START and README_END in ``path`` (atomically)."""
+    text = path.read_text()
+    a, b = text.find(README_START), text.find(README_END)
+    if a < 0 or b < a:
+        raise SystemExit(f"{path}: no benchmark block ({README_START} ... {README_END}) to replace")
+    block = f"{README_START}\n{note}\n\n{render_report(results)}\n{README_END}"
+    tmp = path.with_suffix(path.suffix + ".tmp")
+    tmp.write_text(text[:a] + block + text[b + len(README_END) :])
+    tmp.replace(path)
+
+
+def run_note(sizes: tuple[int, ...]) -> str:
+    load = os.getloadavg()
+    return (
+        f"Last run: {time.strftime('%Y-%m-%d', time.gmtime())}, sizes {', '.join(f'{s:,}' for s in sizes)}, "
+        f"{os.cpu_count()} cores, load average {load[0]:.1f} at the end of the run."
+    )
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="small sizes only")
     ap.add_argument("--sizes", type=lambda s: tuple(int(x) for x in s.split(",")), default=None)
     ap.add_argument("--only", default=None, help="comma-separated stage names")
     ap.add_argument("--out", default=str(Path(__file__).with_name("results.json")))
+    ap.add_argument("--readme", default=None, help="also rewrite the benchmark block of this README")
+    ap.add_argument(
+        "--render", default=None, help="render this results.json instead of running (with --readme)"
+    )
     args = ap.parse_args(argv)
     sizes = args.sizes or (QUICK_SIZES if args.quick else FULL_SIZES)
     only = set(args.only.split(",")) if args.only else None
+    if args.render:
+        results = json.loads(Path(args.render).read_text())
+        sizes = tuple(sorted({r["size"] for r in results if r.get("stage") == "ingest"})) or sizes
+        print(render_report(results))
+        if args.readme:
+            write_readme(
+                Path(args.readme),
+                results,
+                f"Rendered from `{args.render}` (see its run for the machine's load).",
+            )
+        return 0
 
     results: list[dict] = []
     growth: dict[str, list[tuple[int, float]]] = {}
@@ -124,12 +175,9 @@ def main(argv: list[str] | None = None) -> int:
         r["growth_exponent"] = exponents.get(r["name"])
     results.extend(growth_checks(results, sizes))
     Path(args.out).write_text(json.dumps(results, indent=2))
-    print(render_table(results))
-    print()
-    print("| measurement | growth exponent over sizes |")
-    print("| --- | ---: |")
-    for name, e in exponents.items():
-        print(f"| {name} | {'' if e is None else format(e, '.2f')} |")
+    print(render_report(results))
+    if args.readme:
+        write_readme(Path(args.readme), results, run_note(sizes))
     return 0 if all(r.get("ok") for r in results) else 1
 
 

@@ -26,3 +26,29 @@ def test_growth_checks_flag_ingest_faster_than_linear_growth():
     assert checks["growth exponent: ingest time"]["ok"] is False
     assert checks["growth exponent: full evaluation time"]["ratio"] == pytest.approx(1.0, abs=1e-3)
     assert checks["growth exponent: full evaluation time"]["ok"] is True
+
+
+def test_write_readme_replaces_only_the_benchmark_block(tmp_path):
+    from bench.run import README_END, README_START, write_readme
+
+    readme = tmp_path / "README.md"
+    readme.write_text(f"# top\n\ntext before\n{README_START}\nold table\n{README_END}\ntext after\n")
+    rows = [
+        {
+            "name": "ingest_long_csv",
+            "size": 1000,
+            "seconds": 2.0,
+            "baseline_seconds": 1.0,
+            "ratio": 2.0,
+            "target": 1.5,
+            "ok": False,
+            "growth_exponent": 0.9,
+            "stage": "ingest",
+        },
+    ]
+    write_readme(readme, rows, "Last run: test.")
+    text = readme.read_text()
+    assert text.startswith("# top\n\ntext before\n") and text.endswith(f"{README_END}\ntext after\n")
+    assert "old table" not in text and "Last run: test." in text
+    assert "| ingest_long_csv | 1,000 | 2.000 | 1.000 | 2.000 | 1.5 | NO |" in text
+    assert "| ingest_long_csv | 0.90 |" in text
