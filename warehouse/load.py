@@ -198,6 +198,8 @@ def _supersede(con: duckdb.DuckDBPyConnection, t: schema.Table, *, file_id: int,
     table: only rows whose group matches are touched, and DuckDB pushes the groups' min/max into the scan.
     Measured on the 12-day demo (310k rows): 0.6-0.9 s a file with a correlated EXISTS, ~0.05 s this way.
     """
+    if "lot_id" in t.supersede_key and not _older_lots_in_range(con, t, file_id):
+        return  # no older current row shares a lot with this file, so no group can match
     g_new = _group_exprs(t, "f")
     g_old = _group_exprs(t, "m")
     names = [f"g{i}" for i in range(len(g_new))]
@@ -234,6 +236,27 @@ def _supersede(con: duckdb.DuckDBPyConnection, t: schema.Table, *, file_id: int,
     for old_id, lot, n in hits:
         counts.supersessions[(int(old_id), t.name, str(lot))] += int(n)
         counts.superseded += int(n)
+
+
+def _older_lots_in_range(con: duckdb.DuckDBPyConnection, t: schema.Table, file_id: int) -> bool:
+    """Whether an older current row has a lot_id between the file's smallest and largest one.
+
+    An exact pre-check (a file of new lots, the usual daily file, supersedes nothing): two narrow scans that
+    the zone maps on lot_id and _source_file_id keep short, instead of collecting the file's groups (about
+    1 s per 10M rows).
+    """
+    lo, hi = con.execute(
+        f"SELECT min(lot_id), max(lot_id) FROM {_q(t.name)} WHERE {_q(schema.C_SOURCE_FILE_ID)} = ?",
+        [file_id],
+    ).fetchall()[0]
+    if lo is None:
+        return False
+    hit = con.execute(
+        f"SELECT 1 FROM {_q(t.name)} WHERE {_q(schema.C_SOURCE_FILE_ID)} < ? AND {_q(schema.C_SUPERSEDED_BY)} "
+        f"IS NULL AND lot_id BETWEEN ? AND ? LIMIT 1",
+        [file_id, lo, hi],
+    ).fetchall()
+    return bool(hit)
 
 
 def _cascade(
