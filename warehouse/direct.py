@@ -100,6 +100,14 @@ _TYPES = {
 }
 
 
+def _shaped(raw: str, shape: str, parsed: str) -> list[str]:
+    """Clean conditions of a parsed value: the raw text has the plain shape, and it parsed."""
+    return [
+        f"({raw} IS NULL OR regexp_full_match({raw}, {shape}))",
+        f"({raw} IS NULL OR {parsed} IS NOT NULL)",
+    ]
+
+
 def _value_sql(c: DirectColumn, p: _Params, t: schema.Table, typed: dict[str, str]) -> tuple[str, list[str]]:
     """(SQL of the canonical value, SQL conditions for the row to be clean)."""
     raw = _q(c.source) if c.source else "NULL"
@@ -117,9 +125,8 @@ def _value_sql(c: DirectColumn, p: _Params, t: schema.Table, typed: dict[str, st
             v = f"({v} * {p.add(c.factor)})"
         clean.append(f"({raw} IS NULL OR isfinite({v}))")
     elif c.kind == "int":
-        clean.append(f"({raw} IS NULL OR regexp_full_match({raw}, {p.add(INT_SHAPE)}))")
         v = f"TRY_CAST({raw} AS BIGINT)"
-        clean.append(f"({raw} IS NULL OR {v} IS NOT NULL)")
+        clean += _shaped(raw, p.add(INT_SHAPE), v)
     elif c.kind == "bool":
         v = (
             f"(CASE lower({raw}) WHEN 'true' THEN true WHEN '1' THEN true "
@@ -127,9 +134,8 @@ def _value_sql(c: DirectColumn, p: _Params, t: schema.Table, typed: dict[str, st
         )
         clean.append(f"({raw} IS NULL OR {v} IS NOT NULL)")
     elif c.kind == "iso_utc":
-        clean.append(f"({raw} IS NULL OR regexp_full_match({raw}, {p.add(ISO_UTC_SHAPE)}))")
         v = f"TRY_CAST(replace({raw}, 'Z', '') AS TIMESTAMP)"
-        clean.append(f"({raw} IS NULL OR {v} IS NOT NULL)")
+        clean += _shaped(raw, p.add(ISO_UTC_SHAPE), v)
     elif c.kind == "constant":
         v = "NULL" if c.constant is None else p.add(c.constant)
         v = f"CAST({v} AS {_TYPES[t.column(c.name).dtype]})"
