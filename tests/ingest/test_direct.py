@@ -199,3 +199,11 @@ def test_reexport_through_duckdb_supersedes_like_polars(tmp_path):
         con.close()
     assert results[0] == results[1]
     assert results[0][0][1][1] > 0  # the re-export superseded rows
+
+
+def test_utf8_bom_file_keeps_the_duckdb_reader_and_the_same_rows(tmp_path):
+    text = "\ufeff" + "\n".join([LONG_HEADER, *_rows(300, seed=13)]) + "\n"
+    (f, rows, rejects), (_, rows2, rejects2) = _both(tmp_path, text)
+    assert f.reader == "duckdb"
+    assert rows == rows2 and rejects == rejects2 == []
+    assert rows[0][0].startswith("HC")  # the mark is not part of the first value
