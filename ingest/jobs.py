@@ -16,6 +16,7 @@ Example:
 
 from __future__ import annotations
 
+import contextlib
 import getpass
 import gzip
 import hashlib
@@ -279,34 +280,24 @@ def ingest_file(
     fmt = export_format(path) or "csv"
     scan = scan_file(path, text=duckdb_reader and fmt == "csv" and not path.name.lower().endswith(".gz"))
     sha, size = scan.sha256, scan.size
-    if batch is not None:
-        with batch.unit() as con:
-            return _ingest_one(
-                con,
-                path,
-                sha,
-                size,
-                profiles=profiles,
-                forced=forced,
-                user=user,
-                chunk_bytes=chunk_bytes,
-                on_bytes=on_bytes,
-                scan=scan,
+    with contextlib.ExitStack() as stack:
+        if batch is None:  # a file on its own: open the warehouse for it alone
+            batch = stack.enter_context(
+                store.Batch(db, create=True, wait_s=wait_s, max_units=1, on_open=load.configure_for_ingest)
             )
-    with store.Batch(db, create=True, wait_s=wait_s, max_units=1, on_open=load.configure_for_ingest) as own:
-        with own.unit() as con:
-            return _ingest_one(
-                con,
-                path,
-                sha,
-                size,
-                profiles=profiles,
-                forced=forced,
-                user=user,
-                chunk_bytes=chunk_bytes,
-                on_bytes=on_bytes,
-                scan=scan,
-            )
+        con = stack.enter_context(batch.unit())
+        return _ingest_one(
+            con,
+            path,
+            sha,
+            size,
+            profiles=profiles,
+            forced=forced,
+            user=user,
+            chunk_bytes=chunk_bytes,
+            on_bytes=on_bytes,
+            scan=scan,
+        )
 
 
 def _ingest_one(
