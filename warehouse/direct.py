@@ -140,7 +140,7 @@ def _value_sql(c: DirectColumn, p: _Params, t: schema.Table, typed: dict[str, st
         v = "NULL" if c.constant is None else p.add(c.constant)
         v = f"CAST({v} AS {_TYPES[t.column(c.name).dtype]})"
     elif c.kind == "unit":
-        param = typed.get("parameter", "NULL")
+        param = typed["parameter"]  # declared before unit in both tables that derive it (schema order)
         whens = " ".join(f"WHEN {p.add(k)} THEN {p.add(u)}" for k, u in schema.PARAMETER_UNITS.items())
         v = f"(CASE {param} {whens} ELSE 'nm' END)"
     else:  # pragma: no cover - the program builder only makes the kinds above
