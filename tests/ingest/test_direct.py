@@ -207,3 +207,74 @@ def test_utf8_bom_file_keeps_the_duckdb_reader_and_the_same_rows(tmp_path):
     assert f.reader == "duckdb"
     assert rows == rows2 and rejects == rejects2 == []
     assert rows[0][0].startswith("HC")  # the mark is not part of the first value
+
+
+UM_PROFILE = """
+name = "sem_um_long"
+kind = "measurements"
+format = "csv"
+
+[csv]
+delimiter = ";"
+
+[columns]
+lot_id = "Lot"
+wafer_id = "Wafer"
+site_id = "Site"
+x_mm = { source = "X_um", unit = "um" }
+y_mm = { source = "Y_um", unit = "um" }
+product = "Device"
+layer = "Level"
+parameter = "Item"
+value = { source = "Value_um", unit = "um" }
+measured_at = "Time"
+metrology_tool = "Tool"
+repeat = "Rep"
+sample_kind = "Kind"
+
+[values.parameter]
+CD = "cd_mid"
+SWA = "swa"
+
+[values.sample_kind]
+P = "production"
+
+[limits.value]
+at_most = 1000
+"""
+
+
+def test_user_profile_in_micrometres_with_an_angle_parameter_matches_polars(tmp_path):
+    # lengths in µm become nm (x 1000, NIST SP 811: 1 µm = 1e-6 m, 1 nm = 1e-9 m); an angle keeps its degrees
+    prof = tmp_path / "profiles"
+    prof.mkdir()
+    (prof / "sem_um_long.toml").write_text(UM_PROFILE)
+    rnd = random.Random(21)
+    lines = ["Lot;Wafer;Site;X_um;Y_um;Device;Level;Item;Value_um;Time;Tool;Rep;Kind"]
+    for i in range(400):
+        item = "SWA" if i % 4 == 3 else "CD"
+        value = f"{rnd.uniform(86, 89):.2f}" if item == "SWA" else f"{rnd.uniform(0.02, 0.09):.5f}"
+        lines.append(
+            f"L{i // 20:03d};L{i // 20:03d}-{i % 5 + 1:02d};S{i % 9};{rnd.uniform(-140000, 140000):.1f};"
+            f"{rnd.uniform(-140000, 140000):.1f};DV1;M1;{item};{value};2026-09-03T07:{i % 60:02d}:05Z;"
+            f"SEM-{i % 2};{i // 200 + 1};P"
+        )
+    text = "\n".join(lines) + "\n"
+    out = {}
+    for name, chunk in (("duckdb", SMALL), ("polars", HUGE)):
+        d = tmp_path / name
+        d.mkdir()
+        (d / "um.csv").write_text(text)
+        f = ingest_paths([d / "um.csv"], db=d / "wh.duckdb", chunk_bytes=chunk, profile_dirs=[prof]).files[0]
+        con = duckdb.connect(str(d / "wh.duckdb"), read_only=True)
+        out[name] = (
+            f.reader,
+            f.rows_loaded,
+            con.execute(f"SELECT {COLUMNS} FROM measurements ORDER BY _source_line").fetchall(),
+        )
+        con.close()
+    assert out["duckdb"][0] == "duckdb" and out["polars"][0] == "polars"
+    assert out["duckdb"][1:] == out["polars"][1:] and out["duckdb"][1] == 400
+    by_param = {r[9]: r for r in out["duckdb"][2]}
+    assert by_param["swa"][12] == "deg" and 86 <= by_param["swa"][11] <= 89
+    assert by_param["cd_mid"][12] == "nm" and 20 <= by_param["cd_mid"][11] <= 90
