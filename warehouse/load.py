@@ -98,6 +98,14 @@ def find_loaded_file(con: duckdb.DuckDBPyConnection, sha256: str) -> int | None:
     return rows[0][0] if rows and rows[0][0] is not None else None
 
 
+def loaded_file_of_size(con: duckdb.DuckDBPyConnection, size: int) -> bool:
+    """Whether a loaded file has exactly this many bytes (a file of another size cannot hold the same bytes)."""
+    rows = con.execute(
+        "SELECT 1 FROM source_files WHERE size_bytes = ? AND status = 'loaded' LIMIT 1", [size]
+    ).fetchall()
+    return bool(rows)
+
+
 def new_file_id(con: duckdb.DuckDBPyConnection) -> int:
     """A fresh file id (ids only grow: every older file has a smaller id)."""
     return int(con.execute("SELECT nextval('file_id_seq')").fetchall()[0][0])

@@ -278,3 +278,25 @@ def test_user_profile_in_micrometres_with_an_angle_parameter_matches_polars(tmp_
     by_param = {r[9]: r for r in out["duckdb"][2]}
     assert by_param["swa"][12] == "deg" and 86 <= by_param["swa"][11] <= 89
     assert by_param["cd_mid"][12] == "nm" and 20 <= by_param["cd_mid"][11] <= 90
+
+
+def test_same_big_file_twice_is_a_duplicate_while_hashed_beside_the_load(tmp_path):
+    text = "\n".join([LONG_HEADER, *_rows(300, seed=17)]) + "\n"
+    path = tmp_path / "a.csv"
+    path.write_text(text)
+    copy = tmp_path / "b.csv"
+    copy.write_text(text)
+    rep = ingest_paths([path, copy], db=tmp_path / "wh.duckdb", chunk_bytes=SMALL)
+    assert [(f.status, f.reader) for f in rep.files] == [("loaded", "duckdb"), ("duplicate", None)]
+    assert rep.files[1].message == f"same bytes as file {rep.files[0].file_id}; nothing loaded"
+
+
+def test_a_quote_after_the_first_block_is_found_by_the_scan_and_sends_the_file_to_polars(tmp_path):
+    # the first 8 MiB block decides to try DuckDB; the scan beside the load finds the quote further on
+    lines = [LONG_HEADER, *_rows(90_000, seed=19)]
+    assert len("\n".join(lines[:-10])) > 8 * 1024 * 1024
+    lines[-3] = lines[-3].replace("SEM-", '"SEM-', 1).replace(",", '",', 14)
+    text = "\n".join(lines) + "\n"
+    (f, rows, rejects), (_, rows2, rejects2) = _both(tmp_path, text)
+    assert f.reader == "polars"
+    assert rows == rows2 and rejects == rejects2
