@@ -2,7 +2,7 @@
 
     python -m bench.bench_evaluate [--rows N] [--days 60]      # default 10,000,000 measurements
 
-Builds a warehouse under ``bench/out/`` (reused when its row count matches): N invented site measurements
+Builds a warehouse under ``bench/out/`` (anew on every run): N invented site measurements
 in time order (lots of 3 wafers x 9 sites x 2 parameters x 4 layers, spread over ``--days`` days, one
 source file of measurements and one of process history per day), and a monitoring plan of EWMA, CUSUM and
 individuals charts split by metrology tool, process tool/chamber and product.
