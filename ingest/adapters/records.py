@@ -176,15 +176,21 @@ def parquet_columns(data: bytes, *, path: str) -> list[str]:
     try:
         return list(pl.read_parquet_schema(io.BytesIO(data)))
     except Exception as exc:  # polars raises several types for corrupt files
-        raise IngestError(
-            "file is not readable Parquet",
-            path=path,
-            line=1,
-            column=1,
-            details=str(exc).splitlines()[0][:200],
-            expected="a Parquet file",
-            fix="re-export the file, or rename it if it is not Parquet",
+        raise _unreadable_parquet(
+            exc, path, "re-export the file, or rename it if it is not Parquet"
         ) from None
+
+
+def _unreadable_parquet(exc: Exception, path: str, fix: str) -> IngestError:
+    return IngestError(
+        "file is not readable Parquet",
+        path=path,
+        line=1,
+        column=1,
+        details=str(exc).splitlines()[0][:200],
+        expected="a Parquet file",
+        fix=fix,
+    )
 
 
 def parse_parquet(
@@ -194,15 +200,7 @@ def parse_parquet(
     try:
         df = pl.read_parquet(io.BytesIO(data))
     except Exception as exc:
-        raise IngestError(
-            "file is not readable Parquet",
-            path=path,
-            line=1,
-            column=1,
-            details=str(exc).splitlines()[0][:200],
-            expected="a Parquet file",
-            fix="re-export the file",
-        ) from None
+        raise _unreadable_parquet(exc, path, "re-export the file") from None
     if df.height == 0:
         raise IngestError(
             "file has a header but no data rows",
