@@ -17,6 +17,7 @@ Example:
 from __future__ import annotations
 
 import contextlib
+import functools
 import getpass
 import gzip
 import hashlib
@@ -27,7 +28,7 @@ import tempfile
 import threading
 import zlib
 from collections.abc import Callable, Iterable, Iterator
-from dataclasses import asdict, dataclass, field
+from dataclasses import dataclass, field, fields
 from pathlib import Path
 from typing import BinaryIO, TypeVar
 
@@ -78,13 +79,20 @@ class FileResult:
     """Which reader parsed the file: ``duckdb`` (a big plain CSV loaded directly, see ingest.direct) or
     ``polars`` (every other file, and a plain CSV with any row that needs a reject or a closer look)."""
     message: str | None = None
-    affected: list[dict[str, str]] = field(default_factory=list)
-    """Distinct (table, lot_id, layer, parameter) the file wrote: the hook for re-evaluating series."""
+    affected_keys: dict[str, list[pl.DataFrame]] = field(default_factory=dict, repr=False)
+    """Per table, frames of the (lot_id, layer, parameter) the file wrote (repeats allowed)."""
+
+    @functools.cached_property
+    def affected(self) -> list[dict[str, str]]:
+        """Distinct (table, lot_id, layer, parameter) the file wrote: the hook for re-evaluating series.
+
+        Built on first use: a 10M-row file writes ~370k such keys, and making them Python dicts took ~1 s of
+        its ingest when it was done for every file.
+        """
+        return _affected_list(self.affected_keys)
 
     def to_dict(self) -> dict[str, object]:
-        d = asdict(self)
-        d.pop("affected")
-        return d
+        return {f.name: getattr(self, f.name) for f in fields(self) if f.name != "affected_keys"}
 
 
 @dataclass
@@ -426,7 +434,7 @@ def _ingest_one(
         rows_superseded=counts.superseded,
         rows_skipped=counts.skipped,
         reader=str(state.get("reader", "polars")),
-        affected=result,
+        affected_keys=result,
     )
 
 
@@ -539,7 +547,7 @@ def _load_content(
     on_bytes,
     state: dict[str, object],
     scan: ScanJob | None = None,
-) -> list[dict]:
+) -> dict[str, list[pl.DataFrame]]:
     shown = str(path)
     reader = _Reader(path, on_bytes)
     small_file = path.stat().st_size <= chunk_bytes
@@ -746,7 +754,7 @@ def _load_content(
             dup = load.reject_in_file_duplicates(con, table, cand, file_id=file_id, counts=counts)
             if dup.height:
                 counts.reject_frames.append(dup)
-    return _affected_list(affected)
+    return affected
 
 
 DIRECT_SAMPLES = 64
@@ -781,7 +789,7 @@ def _load_direct(
     file_id: int,
     counts: load.FileCounts,
     on_bytes,
-) -> list[dict]:
+) -> dict[str, list[pl.DataFrame]]:
     """Load a plain CSV file inside DuckDB (see :mod:`warehouse.direct`); raise _DirectDeclined to fall back.
 
     Kept only when every data line became a row (no line was dropped or unclean), so that row ids number
@@ -813,7 +821,7 @@ def _load_direct(
     keys = counts.written_keys.get(table)
     if keys is None:
         keys = direct.written_keys(con, table, file_id=file_id)
-    return _affected_list({table: [keys]} if keys is not None else {})
+    return {table: [keys]} if keys is not None else {}
 
 
 def _check_direct_lines(con, path: Path, prog: DirectProgram, scan: FileScan, *, file_id: int) -> None:

@@ -300,3 +300,21 @@ def test_a_quote_after_the_first_block_is_found_by_the_scan_and_sends_the_file_t
     (f, rows, rejects), (_, rows2, rejects2) = _both(tmp_path, text)
     assert f.reader == "polars"
     assert rows == rows2 and rejects == rejects2
+
+
+def test_both_readers_report_the_lot_layer_parameter_keys_the_file_wrote(tmp_path):
+    # the expected keys come from the generated lines themselves (lot HC<i // 50>, layer M1 from
+    # ingest_cases.long_row, the profile maps CD_MID -> cd_mid and so on)
+    lines = _rows(400, seed=5)
+    text = "\n".join([LONG_HEADER, *lines]) + "\n"
+    (f, _, _), (g, _, _) = _both(tmp_path, text)
+    assert f.reader == "duckdb"
+    header = LONG_HEADER.split(",")
+    li, pi, yi = header.index("LotID"), header.index("Parameter"), header.index("Layer")
+    want = sorted(
+        {("measurements", ln.split(",")[li], ln.split(",")[yi], ln.split(",")[pi].lower()) for ln in lines}
+    )
+    for res in (f, g):
+        got = [(a["table"], a["lot_id"], a["layer"], a["parameter"]) for a in res.affected]
+        assert got == want
+        assert "affected_keys" not in res.to_dict() and "affected" not in res.to_dict()
