@@ -21,7 +21,7 @@ from dataclasses import dataclass
 import numpy as np
 import polars as pl
 
-from spc.ewma import _final_state, _initial
+from spc.ewma import _final_state, _initial_series
 from spc.frames import Layout, gather_signals, layout_points
 
 CUSUM_HI = "cusum_hi"
@@ -56,10 +56,10 @@ def cusum_arrays(lay: Layout, p: CusumParams, state: pl.DataFrame | None = None)
     """Return (s_hi, s_lo, state_hi, state_lo); state_* (sums carried on, after any reset) hold at each series' last row."""
     n = lay.frame.height
     u = lay.z
-    hi0, lo0 = _initial(lay, state, [STATE_HI, STATE_LO], p.headstart)
+    hi, lo = (v.copy() for v in _initial_series(lay, state, [STATE_HI, STATE_LO], p.headstart))
     starts = np.flatnonzero(lay.start)
     ends = np.append(starts[1:], n)
-    cur, hi, lo = starts.copy(), hi0[starts], lo0[starts]
+    cur = starts.copy()
     s_hi, s_lo = np.empty(n), np.empty(n)
     c_hi, c_lo = np.empty(n), np.empty(n)
     active = np.flatnonzero(cur < ends)

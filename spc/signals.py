@@ -12,8 +12,8 @@ import numpy as np
 import polars as pl
 
 from spc.cusum import CUSUM_HI, CUSUM_LO, CusumParams, cusum_arrays
-from spc.ewma import EWMA, EwmaParams, ewma_arrays
-from spc.frames import POINT_COLUMNS, check_columns, gather_signals, in_series_order, layout_points
+from spc.ewma import EWMA, EwmaParams, ewma_limit, ewma_w
+from spc.frames import POINT_COLUMNS, check_columns, gather_signals, layout_points, series_order
 from spc.rules import RuleParams, rule_masks
 
 CHUNK_POINTS = 1_000_000
@@ -39,22 +39,24 @@ def evaluate_signals(
     >>> evaluate_signals(pts, ["we1"], ewma=EwmaParams(lam=0.5, L=2.0)).select("seq", "rule").rows()
     [(2, 'we1'), (2, 'ewma')]
     """
-    if points.height > chunk_points:
-        check_columns(points, POINT_COLUMNS)
-        frame = in_series_order(points)  # each slice is validated by layout_points below
-        cuts = series_slices(frame, chunk_points)
-        if len(cuts) > 1:
-            return pl.concat(
-                [_evaluate_one(frame.slice(a, b - a), rules, ewma, cusum, passthrough) for a, b in cuts]
+    if points.height <= chunk_points:
+        return _evaluate_one(layout_points(points), rules, ewma, cusum, passthrough)
+    check_columns(points, POINT_COLUMNS)
+    frame = series_order(points)  # checked once here; slices of whole series stay in order
+    return pl.concat(
+        [
+            _evaluate_one(
+                layout_points(frame.slice(a, b - a), in_order=True), rules, ewma, cusum, passthrough
             )
-        points = frame
-    return _evaluate_one(points, rules, ewma, cusum, passthrough)
+            for a, b in series_slices(frame, chunk_points)
+        ]
+    )
 
 
 def series_slices(frame: pl.DataFrame, size: int) -> list[tuple[int, int]]:
     """(start, end) row ranges of a frame in series order, each of whole series and about ``size`` rows."""
     block = frame["series"].rle_id().to_numpy()
-    starts = np.flatnonzero(np.diff(block, prepend=-1))
+    starts = np.flatnonzero(np.concatenate([[True], block[1:] != block[:-1]]))
     out, a = [], 0
     while a < frame.height:
         # the first series start at or after a + size ends this slice (a series longer than size stays whole)
@@ -65,16 +67,14 @@ def series_slices(frame: pl.DataFrame, size: int) -> list[tuple[int, int]]:
     return out
 
 
-def _evaluate_one(points, rules, ewma, cusum, passthrough) -> pl.DataFrame:
-    lay = layout_points(points)
+def _evaluate_one(lay, rules, ewma, cusum, passthrough) -> pl.DataFrame:
     hits = rule_masks(lay, rules)
-    values: dict[str, np.ndarray] = {}
+    values: dict = {}
     if ewma is not None:
-        w, limit, _ = ewma_arrays(lay, ewma)
-        center = lay.frame["center"].cast(pl.Float64).to_numpy()
-        sigma = lay.frame["sigma"].cast(pl.Float64).to_numpy()
-        hits.append((EWMA, np.abs(w) > limit))
-        values[EWMA] = center + sigma * w
+        w, count_prev = ewma_w(lay, ewma)
+        hits.append((EWMA, np.abs(w) > ewma_limit(lay, ewma, count_prev)))
+        center, sigma = (lay.frame[c].cast(pl.Float64).to_numpy() for c in ("center", "sigma"))
+        values[EWMA] = lambda ix: center[ix] + sigma[ix] * w[ix]  # the statistic at signalling rows only
     if cusum is not None:
         s_hi, s_lo, _, _ = cusum_arrays(lay, cusum)
         hits += [(CUSUM_HI, s_hi > cusum.h), (CUSUM_LO, s_lo > cusum.h)]
