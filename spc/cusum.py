@@ -55,12 +55,12 @@ class CusumResult:
 def cusum_arrays(lay: Layout, p: CusumParams, state: pl.DataFrame | None = None):
     """Return (s_hi, s_lo, state_hi, state_lo); state_* (sums carried on, after any reset) hold at each series' last row."""
     n = lay.frame.height
-    u = lay.z
+    u = np.append(lay.z, 0.0)  # row n is the padding cell of ragged blocks
     hi, lo = (v.copy() for v in _initial_series(lay, state, [STATE_HI, STATE_LO], p.headstart))
     starts = np.flatnonzero(lay.start)
     ends = np.append(starts[1:], n)
     cur = starts.copy()
-    s_hi, s_lo = np.empty(n), np.empty(n)
+    s_hi, s_lo = np.empty(n + 1), np.empty(n + 1)  # row n takes the writes of padding cells
     c_hi, c_lo = np.empty(n), np.empty(n)
     active = np.flatnonzero(cur < ends)
     block = _BLOCK
@@ -73,57 +73,73 @@ def cusum_arrays(lay: Layout, p: CusumParams, state: pl.DataFrame | None = None)
             _advance(u, p, a, cur, ends, hi, lo, s_hi, s_lo, c_hi, c_lo, width)
         active = active[cur[active] < ends[active]]
         block = _RESTART_BLOCK
-    return s_hi, s_lo, c_hi, c_lo
+    return s_hi[:n], s_lo[:n], c_hi, c_lo
 
 
 def _advance(u, p, active, cur, ends, hi, lo, s_hi, s_lo, c_hi, c_lo, block) -> None:
     """Advance the series in `active` to their first signal or the end of one block, in place.
 
     Rows after a signal are written too; a later pass (restarting after the signal) overwrites them.
+    Contiguous series of equal length are computed in place in the output, one row per series; others are
+    gathered time-major (one row per position, one column per series), so numpy's cumulative sums run along
+    whole rows instead of one short row per series (1M points in series of 3-10: 110-125 ms for CUSUM
+    instead of 130-165 ms). Both take the same additions in the same order, so the values do not depend
+    on the layout; working in place instead of fresh arrays per step took the first pass over 1M points in
+    series of 1000 from 46-48 ms to 32-34 ms.
     """
-    n = u.size
     c = cur[active]
     ln = np.minimum(ends[active] - c, block)
     width = int(ln.max())
     rows = active.size
     if np.all(ln == width) and (rows == 1 or np.all(np.diff(c) == width)):
-        flat = slice(int(c[0]), int(c[0]) + rows * width)  # contiguous equal blocks: a view, no gather
+        flat = slice(int(c[0]), int(c[0]) + rows * width)  # contiguous equal blocks: views, no gather
         y = u[flat].reshape(rows, width)
-        idx = None
+        sh, sl = s_hi[flat].reshape(rows, width), s_lo[flat].reshape(rows, width)
+        idx, ax = None, 1
     else:
-        off = np.arange(width)
-        valid = off[None, :] < ln[:, None]
-        idx = np.minimum(c[:, None] + off[None, :], n - 1)
-        y = np.where(valid, u[idx], 0.0)
-    sh = _lindley(hi[active], y - p.k)
-    sl = _lindley(lo[active], -y - p.k)
+        off = np.arange(width)[:, None]
+        valid = off < ln[None, :]
+        idx = np.where(valid, c[None, :] + off, u.size - 1)  # padding cells read and write row n
+        y = u[idx]
+        sh, sl = np.empty_like(y), np.empty_like(y)
+        ax = 0
+    work = np.empty_like(y)
+    np.subtract(y, p.k, out=sh)
+    _lindley(hi[active], sh, work, ax)
+    np.subtract(-p.k, y, out=sl)  # equals -y - k bit for bit: negation is exact and rounding symmetric
+    _lindley(lo[active], sl, work, ax)
+    r = np.arange(rows)
+    by_series = (lambda a: a) if ax == 1 else (lambda a: a.T)  # index as [series, position]
     if p.reset:
-        sig = (sh > p.h) | (sl > p.h)
+        sig = np.greater(sh, p.h, out=work.view(np.bool_)[:, : y.shape[1]])
+        sig |= sl > p.h
         if idx is not None:
             sig &= valid
-        any_sig = sig.any(axis=1)
-        first = np.where(any_sig, np.argmax(sig, axis=1), ln - 1)
+        first = np.argmax(sig, axis=ax)
+        any_sig = by_series(sig)[r, first]
+        first = np.where(any_sig, first, ln - 1)
     else:
         any_sig = np.zeros(rows, dtype=bool)
         first = ln - 1
-    if idx is None:
-        s_hi[flat], s_lo[flat] = sh.ravel(), sl.ravel()
-    else:
-        w = idx[valid]
-        s_hi[w], s_lo[w] = sh[valid], sl[valid]
-    r = np.arange(rows)
+    if idx is not None:
+        s_hi[idx], s_lo[idx] = sh, sl
     last_rows = c + first
-    c_hi[last_rows] = np.where(any_sig, p.headstart, sh[r, first])
-    c_lo[last_rows] = np.where(any_sig, p.headstart, sl[r, first])
+    c_hi[last_rows] = np.where(any_sig, p.headstart, by_series(sh)[r, first])
+    c_lo[last_rows] = np.where(any_sig, p.headstart, by_series(sl)[r, first])
     hi[active], lo[active] = c_hi[last_rows], c_lo[last_rows]
     cur[active] = c + first + 1
 
 
-def _lindley(s0: np.ndarray, y: np.ndarray) -> np.ndarray:
-    """Row-wise s_t = max(0, s_{t-1} + y_t) from s0, via cumulative sums and cumulative minima."""
-    y[:, 0] += s0  # y is a fresh array; summing s0 first keeps the loop's order of additions
-    d = np.cumsum(y, axis=1)
-    return d - np.minimum(0.0, np.minimum.accumulate(d, axis=1))
+def _lindley(s0: np.ndarray, y: np.ndarray, work: np.ndarray, axis: int) -> None:
+    """s_t = max(0, s_{t-1} + y_t) from s0 along `axis`, via cumulative sums and minima, in place in y."""
+    if axis == 1:
+        y[:, 0] += s0  # summing s0 first keeps the loop's order of additions
+    else:
+        y[0] += s0
+    np.cumsum(y, axis=axis, out=y)
+    np.minimum.accumulate(y, axis=axis, out=work)
+    np.minimum(0.0, work, out=work)
+    np.subtract(y, work, out=y)
 
 
 def evaluate_cusum(

@@ -174,19 +174,15 @@ def window_all(cond: np.ndarray, pos: np.ndarray, width: int) -> np.ndarray:
     done = 0
     while need:
         if need & 1:
-            # cover `span` more rows ending `done + 1` rows back
+            # cover `span` more rows ending `done + 1` rows back (rows before that have no such window)
             sh = done + 1
-            tmp = np.zeros_like(out)
-            if sh < out.size:
-                tmp[sh:] = acc[: out.size - sh]
-            out &= tmp
+            out[sh:] &= acc[: max(out.size - sh, 0)]
+            out[:sh] = False
             done += span
         need >>= 1
         if need:
-            tmp = np.zeros_like(acc)
-            if span < acc.size:
-                tmp[span:] = acc[: acc.size - span]
-            acc &= tmp
+            acc[span:] &= acc[: max(acc.size - span, 0)]  # overlapping operands: numpy reads a copy
+            acc[:span] = False
             span *= 2
     return out & (pos >= width - 1)
 
