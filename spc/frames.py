@@ -187,11 +187,16 @@ def window_all(cond: np.ndarray, pos: np.ndarray, width: int) -> np.ndarray:
     return out & (pos >= width - 1)
 
 
-def window_count_small(cond: np.ndarray, pos: np.ndarray, width: int) -> np.ndarray:
-    """`window_count` for short windows by shifted additions (cheaper than cumulative sums)."""
+def window_count_small(cond: np.ndarray, pos: np.ndarray, width: int, reach=None) -> np.ndarray:
+    """`window_count` for short windows by shifted additions (cheaper than cumulative sums).
+
+    `reach(j)`, if given, returns ``pos[j:] >= j`` (the rows whose series reaches j rows back), so that
+    several counts over one layout can share those masks.
+    """
     out = cond.astype(np.int16)
     for j in range(1, width):
-        out[j:] += cond[:-j] & (pos[j:] >= j)
+        back = reach(j) if reach is not None else pos[j:] >= j
+        out[j:] += cond[:-j] & back
     return out
 
 

@@ -219,9 +219,13 @@ def rule_masks(lay: Layout, rules: Sequence[str | RuleParams]) -> list[tuple[str
             memo[key] = fn()
         return memo[key]
 
+    def reach(j):
+        return cached(("reach", j), lambda: pos[j:] >= j)
+
     def count(cond_key, cond, width):
-        fn = window_count_small if width <= 8 else window_count
-        return cached(("count", cond_key, width), lambda: fn(cond(), pos, width))
+        if width <= 8:
+            return cached(("count", cond_key, width), lambda: window_count_small(cond(), pos, width, reach))
+        return cached(("count", cond_key, width), lambda: window_count(cond(), pos, width))
 
     above = lambda k: cached(("gt", k), lambda: z > k)  # noqa: E731
     below = lambda k: cached(("lt", k), lambda: z < -k)  # noqa: E731
