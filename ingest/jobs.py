@@ -205,24 +205,38 @@ class ScanJob:
     ``_ingest_one`` waits for it only then.
     """
 
-    def __init__(self, path: Path, *, text: bool, background: bool) -> None:
-        self.size = path.stat().st_size
+    def __init__(self, path: Path, *, text: bool, background: bool, big: int = 0) -> None:
         self._result: FileScan | None = None
         self._error: BaseException | None = None
         self._thread: threading.Thread | None = None
-        if background:
+        try:
+            self.size = path.stat().st_size
+        except OSError as exc:  # gone since it was listed: the file fails with a message, the run goes on
+            self.size, self._error = 0, unreadable_file(str(path), exc)
+            return
+        if background and self.size > big:
             self._thread = threading.Thread(
                 target=self._run, args=(path, text), name="lotline-scan", daemon=True
             )
             self._thread.start()
         else:
-            self._result = scan_file(path, text=text)
+            self._run(path, text)
 
     def _run(self, path: Path, text: bool) -> None:
         try:
             self._result = scan_file(path, text=text)
+        except OSError as exc:  # re-raised by result(), as the file's own error
+            self._error = unreadable_file(str(path), exc)
         except BaseException as exc:  # re-raised by result()
             self._error = exc
+
+    @property
+    def known_sha256(self) -> str:
+        """The hash when the scan succeeded, else "" (a file that could not be read is recorded without one)."""
+        try:
+            return self.sha256
+        except IngestError:
+            return ""
 
     @property
     def done(self) -> bool:
@@ -332,7 +346,7 @@ def ingest_file(
     """
     fmt = export_format(path) or "csv"
     text = duckdb_reader and fmt == "csv" and not path.name.lower().endswith(".gz")
-    scan = ScanJob(path, text=text, background=text and path.stat().st_size > chunk_bytes)
+    scan = ScanJob(path, text=text, background=text, big=chunk_bytes)
     with contextlib.ExitStack() as stack:
         if batch is None:  # a file on its own: open the warehouse for it alone
             batch = stack.enter_context(
@@ -366,7 +380,10 @@ def _ingest_one(
     fmt = export_format(path) or "csv"
     size = scan.size
     maybe_duplicate = scan.done or load.loaded_file_of_size(con, size)
-    first = load.find_loaded_file(con, scan.sha256) if maybe_duplicate else None
+    try:
+        first = load.find_loaded_file(con, scan.sha256) if maybe_duplicate else None
+    except IngestError as exc:  # the file could not be read to hash it
+        return _failed(con, exc, shown=shown, scan=scan, size=size, prof=None, user=user)
     if first is not None:
         sha = scan.sha256
         with store.transaction(con):
@@ -399,29 +416,10 @@ def _ingest_one(
             )
         prof: Profile = state["profile"]  # type: ignore[assignment]
     except IngestError as exc:
-        if exc.path is None:
-            exc = _with_path(exc, shown)
-        prof = state.get("profile")  # type: ignore[assignment]
-        with store.transaction(con):
-            fid = load.record_file(
-                con,
-                status="failed",
-                path=shown,
-                sha256=scan.sha256,
-                size=size,
-                kind=getattr(prof, "kind", None),
-                profile=getattr(prof, "name", None),
-                user=user,
-                message=str(exc),
-            )
-        return FileResult(
-            path=shown,
-            status="failed",
-            file_id=fid,
-            profile=getattr(prof, "name", None),
-            kind=getattr(prof, "kind", None),
-            message=str(exc),
-        )
+        return _failed(con, exc, shown=shown, scan=scan, size=size, prof=state.get("profile"), user=user)
+    except OSError as exc:  # the export vanished or became unreadable while it was being read
+        exc2 = unreadable_file(shown, exc)
+        return _failed(con, exc2, shown=shown, scan=scan, size=size, prof=state.get("profile"), user=user)
     rejected = rejects.select(pl.col("line").n_unique()).item() if rejects.height else 0
     return FileResult(
         path=shown,
@@ -483,6 +481,42 @@ def _load_in_transaction(con, path, fmt, scan, profiles, forced, user, chunk_byt
             rejects=rejects,
         )
     return fid, counts, result, rejects
+
+
+def unreadable_file(path: str, exc: OSError) -> IngestError:
+    """The error of an export that could not be read (gone, or no permission) while it was ingested."""
+    return IngestError(
+        "file could not be read",
+        path=path,
+        found=exc.strerror or type(exc).__name__,
+        fix="check that the file is still there and readable, then ingest it again; nothing of it was loaded",
+    )
+
+
+def _failed(con, exc: IngestError, *, shown: str, scan: ScanJob, size: int, prof, user: str) -> FileResult:
+    """Record a file that failed whole (its own transaction; the load's was rolled back) and its result."""
+    if exc.path is None:
+        exc = _with_path(exc, shown)
+    with store.transaction(con):
+        fid = load.record_file(
+            con,
+            status="failed",
+            path=shown,
+            sha256=scan.known_sha256,
+            size=size,
+            kind=getattr(prof, "kind", None),
+            profile=getattr(prof, "name", None),
+            user=user,
+            message=str(exc),
+        )
+    return FileResult(
+        path=shown,
+        status="failed",
+        file_id=fid,
+        profile=getattr(prof, "name", None),
+        kind=getattr(prof, "kind", None),
+        message=str(exc),
+    )
 
 
 def _with_path(exc: IngestError, path: str) -> IngestError:

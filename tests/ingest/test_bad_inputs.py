@@ -441,3 +441,50 @@ def test_ingest_parquet_zero_area_is_rejected(db, tmp_path, loaded):
     assert query(db, 'SELECT line, "column", value, reason FROM rejects') == [
         (1, "AREA_CM2", "0.0", "out of range (must be > 0)")
     ]
+
+
+VANISHED = (
+    '{p}: file could not be read (found "No such file or directory").\n'
+    "  Fix: check that the file is still there and readable, then ingest it again; nothing of it was loaded."
+)
+
+
+@pytest.mark.parametrize("when", ["while it is hashed", "after it is hashed", "before it is opened"])
+@pytest.mark.parametrize("chunk_bytes", [2048, 1 << 30], ids=["duckdb-reader", "polars-reader"])
+def test_ingest_file_that_vanishes_fails_with_a_message_and_the_next_file_loads(
+    db, write, loaded, monkeypatch, when, chunk_bytes
+):
+    # an export removed by its tool while lotline reads it: the real OS error (the file is deleted for
+    # real), reported as that file's failure; the other file of the run still loads (common practice:
+    # drop folders are written to while they are watched)
+    from ingest import jobs
+
+    gone = write("gone.csv", _long(*[long_row(f"S{i:03d}", lot="HC2609-030") for i in range(200)]))
+    other = write("other.csv", _long(long_row("S01", lot="HC2609-031")))
+    real_scan, real_stat = jobs.scan_file, jobs.ScanJob.__init__
+
+    def scan(path, **kw):
+        if path == gone and when == "while it is hashed":
+            gone.unlink()
+        out = real_scan(path, **kw)
+        if path == gone and when == "after it is hashed":
+            gone.unlink()
+        return out
+
+    def init(self, path, **kw):
+        if path == gone and when == "before it is opened":
+            gone.unlink()
+        real_stat(self, path, **kw)
+
+    monkeypatch.setattr(jobs, "scan_file", scan)
+    monkeypatch.setattr(jobs.ScanJob, "__init__", init)
+    files = ingest_paths([gone, other], db=db, chunk_bytes=chunk_bytes).files
+    assert [f.status for f in files] == ["failed", "loaded"]
+    assert files[0].message == VANISHED.format(p=gone)
+    assert query(db, "SELECT status, message, rows_loaded FROM source_files WHERE path = ?", [str(gone)]) == [
+        ("failed", files[0].message, 0)
+    ]
+    assert query(db, "SELECT count(*) FROM measurements WHERE lot_id = 'HC2609-030'") == [(0,)]
+    assert query(db, "SELECT count(*) FROM measurements WHERE lot_id = 'HC2609-031'") == [(1,)]
+    now = snapshot(db)
+    assert all(set(rows) <= set(now[t]) for t, rows in loaded.items())  # nothing stored before was lost
