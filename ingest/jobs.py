@@ -205,16 +205,17 @@ class ScanJob:
     ``_ingest_one`` waits for it only then.
     """
 
-    def __init__(self, path: Path, *, text: bool, background: bool, big: int = 0) -> None:
+    def __init__(self, path: Path, *, text: bool, background_above: int | None = None) -> None:
+        """Scan in a background thread when the file is bigger than ``background_above`` bytes."""
         self._result: FileScan | None = None
         self._error: BaseException | None = None
         self._thread: threading.Thread | None = None
         try:
             self.size = path.stat().st_size
         except OSError as exc:  # gone since it was listed: the file fails with a message, the run goes on
-            self.size, self._error = 0, unreadable_file(str(path), exc)
+            self.size, self._error = 0, _unreadable_file(str(path), exc)
             return
-        if background and self.size > big:
+        if background_above is not None and self.size > background_above:
             self._thread = threading.Thread(
                 target=self._run, args=(path, text), name="lotline-scan", daemon=True
             )
@@ -226,7 +227,7 @@ class ScanJob:
         try:
             self._result = scan_file(path, text=text)
         except OSError as exc:  # re-raised by result(), as the file's own error
-            self._error = unreadable_file(str(path), exc)
+            self._error = _unreadable_file(str(path), exc)
         except BaseException as exc:  # re-raised by result()
             self._error = exc
 
@@ -346,7 +347,7 @@ def ingest_file(
     """
     fmt = export_format(path) or "csv"
     text = duckdb_reader and fmt == "csv" and not path.name.lower().endswith(".gz")
-    scan = ScanJob(path, text=text, background=text, big=chunk_bytes)
+    scan = ScanJob(path, text=text, background_above=chunk_bytes if text else None)
     with contextlib.ExitStack() as stack:
         if batch is None:  # a file on its own: open the warehouse for it alone
             batch = stack.enter_context(
@@ -418,8 +419,8 @@ def _ingest_one(
     except IngestError as exc:
         return _failed(con, exc, shown=shown, scan=scan, size=size, prof=state.get("profile"), user=user)
     except OSError as exc:  # the export vanished or became unreadable while it was being read
-        exc2 = unreadable_file(shown, exc)
-        return _failed(con, exc2, shown=shown, scan=scan, size=size, prof=state.get("profile"), user=user)
+        err = _unreadable_file(shown, exc)
+        return _failed(con, err, shown=shown, scan=scan, size=size, prof=state.get("profile"), user=user)
     rejected = rejects.select(pl.col("line").n_unique()).item() if rejects.height else 0
     return FileResult(
         path=shown,
@@ -483,12 +484,15 @@ def _load_in_transaction(con, path, fmt, scan, profiles, forced, user, chunk_byt
     return fid, counts, result, rejects
 
 
-def unreadable_file(path: str, exc: OSError) -> IngestError:
+def _unreadable_file(path: str, exc: OSError) -> IngestError:
     """The error of an export that could not be read (gone, or no permission) while it was ingested."""
+    found = exc.strerror or type(exc).__name__
+    if exc.filename is not None and str(exc.filename) != path:  # e.g. the temporary folder of a big file
+        found = f"{found}: {exc.filename}"
     return IngestError(
         "file could not be read",
         path=path,
-        found=exc.strerror or type(exc).__name__,
+        found=found,
         fix="check that the file is still there and readable, then ingest it again; nothing of it was loaded",
     )
 
