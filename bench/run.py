@@ -161,7 +161,8 @@ def main(argv: list[str] | None = None) -> int:
         except ModuleNotFoundError as exc:
             print(f"[bench] {stage}: not available ({exc})", file=sys.stderr)
             continue
-        for size in sizes:
+        # a stage may run at sizes of its own (the drill-down analyses: their target's window, and a cap)
+        for size in getattr(module, "bench_sizes", lambda s: s)(sizes):
             t0 = time.perf_counter()
             rows = module.run(size)
             print(f"[bench] {stage} at {size:,}: {time.perf_counter() - t0:.1f} s", file=sys.stderr)

@@ -52,3 +52,17 @@ def test_write_readme_replaces_only_the_benchmark_block(tmp_path):
     assert "old table" not in text and "Last run: test." in text
     assert "| ingest_long_csv | 1,000 | 2.000 | 1.000 | 2.000 | 1.5 | NO |" in text
     assert "| ingest_long_csv | 0.90 |" in text
+
+
+def test_drill_down_target_is_checked_at_its_window_and_the_cap_is_informative():
+    # the < 1 s target is stated for one 2,000-lot window (issue text); 20,000 lots is the bench's cap
+    from bench.bench_commonality import _row, bench_sizes
+
+    assert bench_sizes((1_000_000, 10_000_000, 30_000_000)) == (100_000, 1_000_000)
+    assert bench_sizes((200_000,)) == (100_000, 200_000)
+    slow_window = _row("commonality: association", 100_000, 1.2, 10.0, of_lots=2_000)
+    assert (slow_window["ok"], slow_window["target"]) == (False, "< 1 s")
+    fast_window = _row("commonality: association", 100_000, 0.4, 10.0, of_lots=2_000)
+    assert fast_window["ok"] is True
+    cap = _row("commonality: association", 1_000_000, 1.2, 10.0, of_lots=20_000)
+    assert cap["ok"] is True and cap["target"].startswith("informative (20,000 lots")
