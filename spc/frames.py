@@ -114,13 +114,6 @@ def series_order(frame: pl.DataFrame) -> pl.DataFrame:
     return frame
 
 
-def in_series_order(frame: pl.DataFrame) -> pl.DataFrame:
-    """The frame sorted by series and seq, or itself when it already is (each series one block, seq rising)."""
-    if frame.height and not _is_laid_out(frame):
-        return frame.sort([SERIES, SEQ], maintain_order=True)
-    return frame
-
-
 def _is_laid_out(frame: pl.DataFrame) -> bool:
     # numpy comparisons of neighbours instead of polars shifts and boolean-indexed copies: 5.5 ms instead of
     # 26 ms on 1M points in 1000 series.
