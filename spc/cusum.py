@@ -111,7 +111,7 @@ def _advance(u, p, active, cur, ends, hi, lo, s_hi, s_lo, c_hi, c_lo, block) -> 
     r = np.arange(rows)
     by_series = (lambda a: a) if ax == 1 else (lambda a: a.T)  # index as [series, position]
     if p.reset:
-        sig = np.greater(sh, p.h, out=work.view(np.bool_)[:, : y.shape[1]])
+        sig = sh > p.h
         sig |= sl > p.h
         if idx is not None:
             sig &= valid
