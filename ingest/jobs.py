@@ -1,6 +1,9 @@
 """Ingest jobs: find export files, read them, pick a profile, run the adapters, hand frames to the warehouse.
 
-Each file is one unit of work: its rows go in one transaction. The files of one ``ingest_paths`` run share
+Each file is one unit of work: its rows go in one transaction, or, on the DuckDB reader of a big plain CSV
+file, in two whose first stores them hidden from every query of current rows (see
+``warehouse.store.INTERRUPTED_LOAD_KEY``): either way the file's rows become current all at once or not at
+all. The files of one ``ingest_paths`` run share
 a connection in batches (``store.Batch``): the warehouse is opened (with lock retry) for the first file of a
 batch and closed after the file that ends it, once the batch has been open for about 2 s or has taken 50
 files, so a waiting reader gets in between batches and no connection outlives a batch of work. A single
@@ -442,10 +445,25 @@ class _DirectDeclined(Exception):
 
 
 def _load_in_transaction(con, path, fmt, scan, profiles, forced, user, chunk_bytes, on_bytes, state, duck):
-    """One attempt at the file in its own transaction; returns (file_id, counts, affected, rejects).
+    """One attempt at the file in its own transaction (two on the DuckDB reader); returns (file_id, counts,
+    affected, rejects).
 
-    ``duck``: whether the DuckDB reader may take the file (False after it declined it once).
+    ``duck``: whether the DuckDB reader may take the file (False after it declined it once). When the
+    attempt fails after the DuckDB reader's first commit, the hidden rows it stored are deleted here (and,
+    should this process die first, by the next open of the warehouse).
     """
+    try:
+        return _attempt(con, path, fmt, scan, profiles, forced, user, chunk_bytes, on_bytes, state, duck)
+    except BaseException:
+        if state.get("hidden_rows"):
+            with contextlib.suppress(Exception):  # left for the next open when even this fails
+                store.discard_interrupted_load(con)
+        raise
+    finally:
+        state.pop("hidden_rows", None)
+
+
+def _attempt(con, path, fmt, scan, profiles, forced, user, chunk_bytes, on_bytes, state, duck):
     shown = str(path)
     with store.transaction(con):
         fid = load.new_file_id(con)
@@ -744,7 +762,9 @@ def _load_content(
             if prog is not None:
                 reader.close()
                 state["reader"] = "duckdb"
-                return _load_direct(con, path, prog, scan, file_id=file_id, counts=counts, on_bytes=on_bytes)
+                return _load_direct(
+                    con, path, prog, scan, file_id=file_id, counts=counts, on_bytes=on_bytes, state=state
+                )
             enc = bom or prof.encoding
             chunker = LineChunker(
                 path=shown, encoding=enc, skip_lines=prof.header_line, chunk_bytes=chunk_bytes
@@ -827,11 +847,15 @@ def _load_direct(
     file_id: int,
     counts: load.FileCounts,
     on_bytes,
+    state: dict,
 ) -> dict[str, list[pl.DataFrame]]:
     """Load a plain CSV file inside DuckDB (see :mod:`warehouse.direct`); raise _DirectDeclined to fall back.
 
     Kept only when every data line became a row (no line was dropped or unclean), so that row ids number
-    the lines, and when a sample of stored rows matches the text of their lines.
+    the lines, and when a sample of stored rows matches the text of their lines. Every check runs in the
+    first transaction, on the hidden rows; after its commit (``state["hidden_rows"]`` set: a failure from
+    here on must discard them, :func:`_load_in_transaction`) the second numbers the lines, makes the rows
+    current and supersedes older rows, and the caller's commit ends it.
     """
     table = prog.table
     done = direct.insert_rows(con, prog, path=str(path), file_id=file_id, max_line_bytes=MAX_LINE_BYTES)
@@ -845,13 +869,20 @@ def _load_direct(
     if n != expected or unclean:
         raise _DirectDeclined(f"{expected - n} of {expected} lines dropped, {unclean} rows not clean")
     first = prog.header_line + 1
-    base = direct.number_lines(con, table, file_id=file_id, first_line=first)
     _check_direct_lines(con, path, prog, scan, file_id=file_id)
+    store.mark_interrupted_load(con, table, file_id)
+    state["hidden_rows"] = True
+    store.commit_and_begin(con)
+    try:
+        direct.number_lines(con, table, file_id=file_id, first_line=first, rows=n)
+    except direct.LinesNotConsecutive as exc:
+        raise _DirectDeclined(str(exc)) from exc
+    store.clear_interrupted_load(con)
     if on_bytes:
         on_bytes(scan.size)
     counts.loaded += n
     load.supersede_file(con, [table], file_id=file_id, counts=counts)
-    cand = [rowid - base + first for rowid in repeated]
+    cand = [off + first for off in repeated]
     if cand:
         dup = load.reject_in_file_duplicates(con, table, cand, file_id=file_id, counts=counts)
         if dup.height:
@@ -875,8 +906,12 @@ def _check_direct_lines(con, path: Path, prog: DirectProgram, scan: FileScan, *,
     if not picks:
         return
     index = {h: i for i, h in enumerate(prog.header)}
-    stored = direct.stored_at_lines(
-        con, prog.table, file_id=file_id, lines=[ln for ln, _ in picks], columns=[c.name for c in cols]
+    stored = direct.stored_at_offsets(
+        con,
+        prog.table,
+        file_id=file_id,
+        offsets=[ln - first for ln, _ in picks],
+        columns=[c.name for c in cols],
     )
     with open(path, "rb") as f:
         for ln, off in picks:
@@ -884,8 +919,9 @@ def _check_direct_lines(con, path: Path, prog: DirectProgram, scan: FileScan, *,
             text = f.readline().decode("utf-8", errors="replace").rstrip("\r\n")
             fields = text.split(prog.delimiter)
             want = tuple(fields[index[c.source]] if c.source in index else None for c in cols)
-            if stored.get(ln) != want:
-                raise _DirectDeclined(f"line {ln}: stored {stored.get(ln)!r}, file has {want!r}")
+            got = stored.get(ln - first)
+            if got != want:
+                raise _DirectDeclined(f"line {ln}: stored {got!r}, file has {want!r}")
 
 
 def _affected_list(affected: dict[str, list[pl.DataFrame]]) -> list[dict[str, str]]:

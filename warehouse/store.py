@@ -187,8 +187,13 @@ def open_warehouse(
     try:
         if not read_only:
             migrate(con, p)
+            discard_interrupted_load(con)
         else:
             _check_readable(con, p)
+            if interrupted_load(con) is not None:  # a crashed two-step load: repair it, then read
+                con.close()
+                _repair_interrupted_load(p, wait_s=wait_s)
+                con = _connect_with_retry(p, read_only=True, wait_s=wait_s)
         yield con
     finally:
         con.close()
@@ -324,6 +329,78 @@ def _connect_with_retry(path: Path, *, read_only: bool, wait_s: float) -> duckdb
             ) from exc
 
 
+# ------------------------------------------------------------------------------------------ two-step loads
+
+INTERRUPTED_LOAD_KEY = "interrupted_direct_load"
+"""``meta`` key of a direct load between its two commits: ``{"table": ..., "file_id": ...}``.
+
+A big plain CSV file is loaded in two transactions (``ingest/jobs.py``): the first inserts and checks its
+rows, which stay hidden (``_superseded_by`` holds the file's own id, so no query of current rows sees them),
+and writes this key; the second numbers the rows' lines, makes them current, supersedes older rows,
+records the file and deletes the key. A process that dies between the two leaves the key behind, and the
+next open deletes the hidden rows, so the warehouse is as it was before the file.
+"""
+
+
+def mark_interrupted_load(con: duckdb.DuckDBPyConnection, table: str, file_id: int) -> None:
+    """Record (inside the first transaction) that ``table`` holds hidden rows of ``file_id``."""
+    import json
+
+    con.execute("DELETE FROM meta WHERE key = ?", [INTERRUPTED_LOAD_KEY])
+    con.execute(
+        "INSERT INTO meta VALUES (?, ?)",
+        [INTERRUPTED_LOAD_KEY, json.dumps({"table": table, "file_id": int(file_id)})],
+    )
+
+
+def clear_interrupted_load(con: duckdb.DuckDBPyConnection) -> None:
+    """The second transaction made the rows current: drop the record (inside that transaction)."""
+    con.execute("DELETE FROM meta WHERE key = ?", [INTERRUPTED_LOAD_KEY])
+
+
+def interrupted_load(con: duckdb.DuckDBPyConnection) -> tuple[str, int] | None:
+    """(table, file id) of a load stopped between its two commits, or None."""
+    import json
+
+    rows = con.execute("SELECT value FROM meta WHERE key = ?", [INTERRUPTED_LOAD_KEY]).fetchall()
+    if not rows:
+        return None
+    rec = json.loads(rows[0][0])
+    table = str(rec["table"])
+    schema.table(table)  # a known table (raises KeyError otherwise): the name goes into the SQL text
+    return table, int(rec["file_id"])
+
+
+def discard_interrupted_load(con: duckdb.DuckDBPyConnection) -> int | None:
+    """Delete the hidden rows of a load stopped between its two commits (own transaction); its file id."""
+    found = interrupted_load(con)
+    if found is None:
+        return None
+    table, file_id = found
+    with transaction(con):
+        con.execute(
+            f'DELETE FROM "{table}" WHERE "{schema.C_SOURCE_FILE_ID}" = ? AND "{schema.C_SUPERSEDED_BY}" = ?',
+            [file_id, file_id],
+        )
+        clear_interrupted_load(con)
+    return file_id
+
+
+def _repair_interrupted_load(path: Path, *, wait_s: float) -> None:
+    """A read-only open found a crashed load: open read-write once to discard it (skipped when the file
+    cannot be written, e.g. a read-only copy; its hidden rows are then still not current rows)."""
+    try:
+        con = _connect_with_retry(path, read_only=False, wait_s=wait_s)
+    except WarehouseLockedError:
+        raise
+    except WarehouseError:
+        return
+    try:
+        discard_interrupted_load(con)
+    finally:
+        con.close()
+
+
 # ------------------------------------------------------------------------------------------ writing
 
 
@@ -344,6 +421,13 @@ def transaction(con: duckdb.DuckDBPyConnection) -> Iterator[duckdb.DuckDBPyConne
             pass
         raise
     con.execute("COMMIT")
+
+
+def commit_and_begin(con: duckdb.DuckDBPyConnection) -> None:
+    """Commit the open transaction and begin the next one (inside a :func:`transaction` block, whose own
+    commit or rollback then ends the second)."""
+    con.execute("COMMIT")
+    con.execute("BEGIN TRANSACTION")
 
 
 def bump_data_version(con: duckdb.DuckDBPyConnection) -> int:

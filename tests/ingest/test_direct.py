@@ -318,3 +318,64 @@ def test_both_readers_report_the_lot_layer_parameter_keys_the_file_wrote(tmp_pat
         got = [(a["table"], a["lot_id"], a["layer"], a["parameter"]) for a in res.affected]
         assert got == want
         assert "affected_keys" not in res.to_dict() and "affected" not in res.to_dict()
+
+
+# --------------------------------------------------------------------------- the two commits of the load
+# The DuckDB reader commits the file's rows hidden (``_superseded_by`` = the file's id), then numbers them
+# and makes them current in a second transaction (warehouse.store.INTERRUPTED_LOAD_KEY). A failure in the
+# second must leave the warehouse as it was; the crash cases are in tests/warehouse/test_load.py.
+
+HIDDEN = "SELECT count(*) FROM measurements WHERE _superseded_by = _source_file_id"
+MARKER = "SELECT count(*) FROM meta WHERE key = 'interrupted_direct_load'"
+
+
+def _query(db, sql):
+    con = duckdb.connect(str(db), read_only=True)
+    try:
+        return con.execute(sql).fetchall()
+    finally:
+        con.close()
+
+
+def test_a_failure_in_the_second_transaction_deletes_the_hidden_rows_and_keeps_the_earlier_file(
+    tmp_path, monkeypatch
+):
+    from warehouse import load
+    from warehouse.errors import IngestError
+
+    d = tmp_path / "w"
+    d.mkdir()
+    (d / "a.csv").write_text("\n".join([LONG_HEADER, *_rows(200, seed=4)]) + "\n")
+    (d / "b.csv").write_text("\n".join([LONG_HEADER, *_rows(300, seed=8)]) + "\n")
+    db = d / "wh.duckdb"
+    a = ingest_paths([d / "a.csv"], db=db, chunk_bytes=SMALL).files[0]
+    assert (a.reader, a.rows_loaded) == ("duckdb", 200)
+    before = _query(db, f"SELECT {COLUMNS} FROM measurements ORDER BY ALL")
+
+    def fail(*args, **kwargs):
+        raise IngestError("supersession failed for the test")
+
+    monkeypatch.setattr(load, "supersede_file", fail)  # runs after the first commit
+    b = ingest_paths([d / "b.csv"], db=db, chunk_bytes=SMALL).files[0]
+    assert b.status == "failed" and "supersession failed for the test" in b.message
+    assert _query(db, f"SELECT {COLUMNS} FROM measurements ORDER BY ALL") == before
+    assert _query(db, HIDDEN) == [(0,)] and _query(db, MARKER) == [(0,)]
+
+
+def test_rows_whose_row_ids_are_not_consecutive_after_the_first_commit_are_read_again_by_polars(
+    tmp_path, monkeypatch
+):
+    from warehouse import direct
+
+    def renumbered(*args, **kwargs):
+        raise direct.LinesNotConsecutive("row ids 5..900 for 300 rows (made up for the test)")
+
+    monkeypatch.setattr(direct, "number_lines", renumbered)
+    text = "\n".join([LONG_HEADER, *_rows(300, seed=6)]) + "\n"
+    f, rows, rejects = _load(tmp_path, "duckdb", text, SMALL)
+    g, rows2, rejects2 = _load(tmp_path, "polars", text, HUGE)
+    assert (f.reader, f.status, f.rows_loaded) == ("polars", "loaded", 300)
+    assert rows == rows2 and rejects == rejects2
+    db = tmp_path / "duckdb" / "wh.duckdb"
+    assert _query(db, HIDDEN) == [(0,)] and _query(db, MARKER) == [(0,)]
+    assert _query(db, "SELECT count(*) FROM measurements") == [(300,)]
