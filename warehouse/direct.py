@@ -26,6 +26,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import duckdb
+import numpy as np
 import polars as pl
 
 from warehouse import schema
@@ -243,20 +244,22 @@ def insert_rows(
     within the file (candidates for the exact duplicate check). Returns None when DuckDB refused the file,
     e.g. a required value missing (the transaction is then aborted).
 
-    The repeats are found by one ``GROUP BY`` of the hashes (10M rows: 1.6 s; sorting them and comparing
-    neighbours took 2.6 s, DuckDB 2.0.1 on 2 cores).
+    The repeats are found by sorting the hashes in NumPy and comparing neighbours: on 10M rows 0.2 s to
+    fetch them and 0.2 s to sort, against 1.5-1.7 s for a ``GROUP BY`` of the same column and 2.5-2.7 s for
+    the same sort as a window in DuckDB (DuckDB 2.0.1, NumPy 2, 2 cores).
     """
     sql, params = insert_sql(prog, path=path, file_id=file_id, max_line_bytes=max_line_bytes)
     L, F, t = _q(schema.C_SOURCE_LINE), _q(schema.C_SOURCE_FILE_ID), _q(prog.table)
     try:
         con.execute("SET preserve_insertion_order = true")
         n = int(con.execute(sql, params).fetchall()[0][0])
-        bad, repeated = con.execute(
-            f"WITH g AS (SELECT {L} AS k, count(*) AS n FROM {t} WHERE {F} = ? GROUP BY k "
-            f"HAVING count(*) > 1 OR k < 0) "
-            f"SELECT coalesce(sum(n) FILTER (WHERE k < 0), 0), list(k) FILTER (WHERE k >= 0) FROM g",
-            [int(file_id)],
-        ).fetchall()[0]
+        marks = con.execute(f"SELECT {L} FROM {t} WHERE {F} = ?", [int(file_id)]).fetchnumpy()
+        k = np.asarray(marks[schema.C_SOURCE_LINE], dtype=np.int64)
+        k.sort()
+        bad = int(np.searchsorted(k, 0))  # the -1 marks of rows not clean sort first
+        good = k[bad:]
+        repeated = np.unique(good[1:][good[1:] == good[:-1]]).tolist()
+        del marks, k, good
         offsets: list[int] = []
         if repeated and not bad:
             offsets = [
