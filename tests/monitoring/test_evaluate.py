@@ -334,3 +334,39 @@ def test_evaluate_new_plan_without_a_chart_withdraws_its_signals(wh):
         exc = queries.list_excursions(con, chart="m1-cd")
     assert set(old["withdrawn_reason"]) == {evaluate.WITHDRAWN_CHART_REMOVED}
     assert set(exc["state"]) == {"closed"}
+
+
+def test_points_query_without_a_matching_spec_row_leaves_out_the_spec_join_and_reads_the_same(wh):
+    # read_points drops the spec join when no spec row can match the entry; the points must be the same
+    # as the joined query's (which then matches nothing), and a spec row of another layer keeps it off
+    from warehouse import points
+
+    load(wh, make_lots(12))
+    with store.open_warehouse(wh) as con:
+        insert_facts(
+            con,
+            schema.SPEC_LIMITS,
+            [
+                dict(
+                    product="*",
+                    layer="OTHER_LAYER",
+                    parameter="cd_mid",
+                    lsl=40.5,
+                    target=45.0,
+                    usl=49.5,
+                    unit="nm",
+                    effective_from=datetime(2026, 1, 1),
+                )
+            ],
+        )
+    plan = parse_plan(PLAN, path="plan.toml")
+    with store.open_warehouse(wh, read_only=True) as con:
+        for e in plan.entries:
+            joined_sql, params = points.points_sql(e, specs=True)
+            assert "spec_limits" in joined_sql and "spec_limits" not in points.points_sql(e, specs=False)[0]
+            joined = points.fetch_frame(con.sql(joined_sql, params=params))
+            if "_generic" in joined.columns:
+                joined = joined.drop("_generic")
+            assert joined.height > 0
+            assert not points.has_spec_rows(con, e)
+            assert points.read_points(con, e).equals(joined)
