@@ -201,6 +201,20 @@ def test_evaluate_split_by_history_new_tool_gets_its_series_automatically(tmp_pa
     assert info["split_json"][1] == '{"chamber": "PEB-3", "process_tool": "TRACK-2"}'
 
 
+def _generic_spec(layer: str) -> dict:
+    """A spec row for every product of ``layer`` (cd_mid 40.5-49.5 nm, in force since 2026-01-01)."""
+    return dict(
+        product="*",
+        layer=layer,
+        parameter="cd_mid",
+        lsl=40.5,
+        target=45.0,
+        usl=49.5,
+        unit="nm",
+        effective_from=datetime(2026, 1, 1),
+    )
+
+
 def test_evaluate_out_of_spec_is_its_own_signal_without_limit_version(wh):
     lots = make_lots(30)
     lots.append(site_rows("L9000", "L9000-01", [45.0, 45.0, 45.0, 45.0, 50.5], datetime(2026, 9, 20)))
@@ -209,18 +223,7 @@ def test_evaluate_out_of_spec_is_its_own_signal_without_limit_version(wh):
         insert_facts(
             con,
             schema.SPEC_LIMITS,
-            [
-                dict(
-                    product="*",
-                    layer="M1_DEV",
-                    parameter="cd_mid",
-                    lsl=40.5,
-                    target=45.0,
-                    usl=49.5,
-                    unit="nm",
-                    effective_from=datetime(2026, 1, 1),
-                )
-            ],
+            [_generic_spec("M1_DEV")],
         )
     evaluate.evaluate_warehouse(wh, user="t")
     sig = _signals(wh)
@@ -346,18 +349,7 @@ def test_points_query_without_a_matching_spec_row_leaves_out_the_spec_join_and_r
         insert_facts(
             con,
             schema.SPEC_LIMITS,
-            [
-                dict(
-                    product="*",
-                    layer="OTHER_LAYER",
-                    parameter="cd_mid",
-                    lsl=40.5,
-                    target=45.0,
-                    usl=49.5,
-                    unit="nm",
-                    effective_from=datetime(2026, 1, 1),
-                )
-            ],
+            [_generic_spec("OTHER_LAYER")],
         )
     plan = parse_plan(PLAN, path="plan.toml")
     with store.open_warehouse(wh, read_only=True) as con:
