@@ -226,9 +226,14 @@ WHERE {sel} AND {cpred} AND c.defect_class GLOB $parameter AND f.inspected_area_
 GROUP BY f.layer, c.defect_class, f.inspection_tool, f.lot_id, f.wafer_id, f.inspected_at"""
 
 
+def _checks_specs(e: PlanEntry) -> bool:
+    """Whether the entry's points carry spec limits (measurement statistics with ``spec_check``)."""
+    return not e.is_defect and e.statistic in ("site_value", "wafer_mean", "lot_mean") and e.spec_check
+
+
 def _spec_join(e: PlanEntry) -> dict[str, str]:
     base = "SELECT {cols}, p.lot_id, p.wafer_id, p.point_key, p.point_at, p.value, p.n, p.vmin, p.vmax, p.area_cm2, p.product_any"
-    if e.is_defect or e.statistic not in ("site_value", "wafer_mean", "lot_mean") or not e.spec_check:
+    if not _checks_specs(e):
         return {"select": base + ", NULL::DOUBLE AS lsl, NULL::DOUBLE AS usl", "join": "", "qualify": ""}
     return {
         "select": base + ", s.lsl, s.usl, (s.product = '*') AS _generic",
@@ -270,7 +275,7 @@ def read_points(
     """
     cur = con.cursor()
     try:
-        specs = _spec_join(e)["join"] != "" and has_spec_rows(cur, e)
+        specs = _checks_specs(e) and has_spec_rows(cur, e)
         sql, params = points_sql(
             e, scope=scope, lots=dirty_lots is not None, series=wanted is not None, specs=specs
         )

@@ -17,6 +17,7 @@ Only ``warehouse/`` holds SQL text; values are always bound parameters.
 
 from __future__ import annotations
 
+import json
 import os
 import re
 import time
@@ -344,8 +345,6 @@ next open deletes the hidden rows, so the warehouse is as it was before the file
 
 def mark_interrupted_load(con: duckdb.DuckDBPyConnection, table: str, file_id: int) -> None:
     """Record (inside the first transaction) that ``table`` holds hidden rows of ``file_id``."""
-    import json
-
     con.execute("DELETE FROM meta WHERE key = ?", [INTERRUPTED_LOAD_KEY])
     con.execute(
         "INSERT INTO meta VALUES (?, ?)",
@@ -360,15 +359,24 @@ def clear_interrupted_load(con: duckdb.DuckDBPyConnection) -> None:
 
 def interrupted_load(con: duckdb.DuckDBPyConnection) -> tuple[str, int] | None:
     """(table, file id) of a load stopped between its two commits, or None."""
-    import json
-
     rows = con.execute("SELECT value FROM meta WHERE key = ?", [INTERRUPTED_LOAD_KEY]).fetchall()
     if not rows:
         return None
-    rec = json.loads(rows[0][0])
-    table = str(rec["table"])
-    schema.table(table)  # a known table (raises KeyError otherwise): the name goes into the SQL text
-    return table, int(rec["file_id"])
+    try:
+        rec = json.loads(rows[0][0])
+        table, file_id = str(rec["table"]), int(rec["file_id"])
+        if table not in {t.name for t in schema.FACT_TABLES}:  # the name goes into the SQL text
+            raise ValueError(table)
+    except (ValueError, KeyError, TypeError) as exc:
+        raise WarehouseError(
+            "the record of an interrupted load is unreadable",
+            found=f"meta {INTERRUPTED_LOAD_KEY} = {rows[0][0]!r}",
+            fix=(
+                "delete the rows whose _superseded_by equals their own _source_file_id (hidden rows of that "
+                f"load), then the meta row: DELETE FROM meta WHERE key = '{INTERRUPTED_LOAD_KEY}'"
+            ),
+        ) from exc
+    return table, file_id
 
 
 def discard_interrupted_load(con: duckdb.DuckDBPyConnection) -> int | None:

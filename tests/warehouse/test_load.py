@@ -268,3 +268,26 @@ def test_load_concurrent_readers_and_writer_never_fail_and_lose_nothing(db_path,
     assert [r.status for r in results] == ["loaded"] * 5
     assert _q(db_path, "SELECT count(*) FROM measurements") == [(54,)]
     assert _q(db_path, "SELECT count(*) FROM tool_events") == [(6,)]
+
+
+def test_an_unreadable_interrupted_load_record_is_a_clear_error_on_open(db_path, tmp_path):
+    from warehouse.errors import WarehouseError
+
+    ingest_paths([_write(tmp_path / "small.csv", _row("S01", "45.0", lot="KEEP"))], db=db_path)
+    raw = duckdb.connect(str(db_path))
+    raw.execute('INSERT INTO meta VALUES (\'interrupted_direct_load\', \'{"table": "meta", "file_id": 1}\')')
+    raw.close()
+    with pytest.raises(WarehouseError) as err:
+        with open_warehouse(db_path):
+            pass
+    text = str(err.value)
+    assert "record of an interrupted load is unreadable" in text and "DELETE FROM meta" in text
+    assert _q_raw(db_path, "SELECT count(*) FROM measurements") == [(1,)]  # nothing was deleted
+
+
+def _q_raw(db, sql):
+    con = duckdb.connect(str(db), read_only=True)
+    try:
+        return con.execute(sql).fetchall()
+    finally:
+        con.close()
