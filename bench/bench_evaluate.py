@@ -12,6 +12,10 @@ Steps, each evaluation in its own process so that its peak RSS is its own:
 2. day D loaded, **incremental** evaluation (timed);
 3. ``--full`` evaluation of the same warehouse, every series from its first point (timed, the baseline).
 
+Each time is the whole unit of work a user waits for: opening the file, the evaluation, its commit and the
+checkpoint on close (``evaluate.evaluate_warehouse``). The time inside the transaction alone (the run
+summary's ``seconds``) is kept beside it as ``in_transaction_seconds``.
+
 Target (issue 4): incremental time of one day <= 5 % of the full evaluation's time.
 """
 
@@ -188,7 +192,11 @@ s = evaluate.evaluate_warehouse(sys.argv[1], full=sys.argv[2] == "full", user="b
 sec = time.perf_counter() - t
 # VmHWM (peak resident set of this process image); ru_maxrss would carry the parent's peak across fork/exec
 rss = next(int(l.split()[1]) for l in open("/proc/self/status") if l.startswith("VmHWM")) / 1024
-print(json.dumps({"seconds": sec, "peak_rss_mb": rss, **s.as_dict()}))
+# "seconds" is the whole unit of work (open, evaluate, commit, close with its checkpoint): what a user waits
+# for; the summary's own "seconds" (inside the transaction) is kept as "in_transaction_seconds"
+d = s.as_dict()
+d["in_transaction_seconds"] = d.pop("seconds")
+print(json.dumps({**d, "seconds": sec, "peak_rss_mb": rss}))
 """
 
 
@@ -232,6 +240,8 @@ def run(size: int, *, days: int = 60) -> list[dict]:
             "ok": ratio is not None and ratio <= TARGET_RATIO,
             "peak_rss_mb": round(inc["peak_rss_mb"]),
             "baseline_peak_rss_mb": round(full["peak_rss_mb"]),
+            "in_transaction_seconds": round(inc["in_transaction_seconds"], 3),
+            "baseline_in_transaction_seconds": round(full["in_transaction_seconds"], 3),
             "incremental_points": inc["points"],
             "incremental_series": inc["series"],
             **common,

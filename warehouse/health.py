@@ -226,7 +226,8 @@ ORDER BY m.tool, r.reference_method, r.reference_value
 
 
 def spec_limits_at(con: Con, *, at: datetime, parameter: str | None = None) -> pl.DataFrame:
-    """Spec limits in force at ``at`` (current rows), optionally of one parameter.
+    """Spec limits in force at ``at`` (current rows), optionally of one parameter: per product, layer and
+    parameter the newest version begun by then (an open-ended version ends where the next one begins).
 
     Columns: product, layer, parameter, lsl, target, usl, unit.
     """
@@ -234,6 +235,7 @@ def spec_limits_at(con: Con, *, at: datetime, parameter: str | None = None) -> p
 SELECT product, layer, parameter, lsl, target, usl, unit FROM spec_limits
 WHERE _superseded_by IS NULL AND effective_from <= ? AND (effective_to IS NULL OR effective_to > ?)
   AND (?::VARCHAR IS NULL OR parameter = ?)
+QUALIFY row_number() OVER (PARTITION BY product, layer, parameter ORDER BY effective_from DESC) = 1
 ORDER BY layer, parameter, product
 """
     return _frame(con, sql, [at, at, parameter, parameter])

@@ -231,18 +231,27 @@ def _checks_specs(e: PlanEntry) -> bool:
     return not e.is_defect and e.statistic in ("site_value", "wafer_mean", "lot_mean") and e.spec_check
 
 
+SPEC_RANK_COLUMNS = ("_generic", "_spec_from")
+"""Columns the spec join adds to rank the spec rows matching a point (dropped by :func:`read_points`)."""
+
+
 def _spec_join(e: PlanEntry) -> dict[str, str]:
     base = "SELECT {cols}, p.lot_id, p.wafer_id, p.point_key, p.point_at, p.value, p.n, p.vmin, p.vmax, p.area_cm2, p.product_any"
     if not _checks_specs(e):
         return {"select": base + ", NULL::DOUBLE AS lsl, NULL::DOUBLE AS usl", "join": "", "qualify": ""}
+    # a product's own row wins over a '*' row, then the newest version in force (a version stays in force
+    # until its effective_to or the next version of the same product, layer and parameter begins)
     return {
-        "select": base + ", s.lsl, s.usl, (s.product = '*') AS _generic",
+        "select": base + ", s.lsl, s.usl, (s.product = '*') AS _generic, s.effective_from AS _spec_from",
         "join": (
             "LEFT JOIN spec_limits s ON s._superseded_by IS NULL AND s.layer = p.layer AND s.parameter = p.parameter "
             "AND (s.product = p.product_any OR s.product = '*') AND p.point_at >= s.effective_from "
             "AND (s.effective_to IS NULL OR p.point_at < s.effective_to)"
         ),
-        "qualify": "QUALIFY row_number() OVER (PARTITION BY layer, parameter, point_key ORDER BY _generic NULLS LAST) = 1",
+        "qualify": (
+            "QUALIFY row_number() OVER (PARTITION BY layer, parameter, point_key "
+            "ORDER BY _generic NULLS LAST, _spec_from DESC NULLS LAST) = 1"
+        ),
     }
 
 
@@ -290,9 +299,7 @@ def read_points(
         out = fetch_frame(cur.sql(sql, params=params))
     finally:
         cur.close()
-    if "_generic" in out.columns:
-        out = out.drop("_generic")
-    return out
+    return out.drop(SPEC_RANK_COLUMNS, strict=False)
 
 
 def read_series_points(con, *, series_id: int) -> pl.DataFrame:

@@ -236,8 +236,8 @@ FROM ({joined}) j GROUP BY {keys}, lot_id"""
     else:
         body = f"""SELECT * FROM (
     SELECT q.*, row_number() OVER (PARTITION BY q.layer, q.parameter, q.point_key
-                                   ORDER BY q._generic ASC NULLS LAST) AS _rn FROM (
-        {base}, s.lsl, s.usl, (s.product = '*') AS _generic FROM p
+                                   ORDER BY q._generic ASC NULLS LAST, q._spec_from DESC NULLS LAST) AS _rn FROM (
+        {base}, s.lsl, s.usl, (s.product = '*') AS _generic, s.effective_from AS _spec_from FROM p
         LEFT JOIN spec_limits s ON s.layer = p.layer AND s.parameter = p.parameter
              AND (s.product = p.product_any OR s.product = '*') AND p.point_at >= s.effective_from
              AND (s.effective_to IS NULL OR p.point_at < s.effective_to)) q) WHERE _rn = 1"""

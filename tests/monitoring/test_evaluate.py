@@ -5,11 +5,12 @@ from __future__ import annotations
 from datetime import datetime, timedelta
 
 import numpy as np
+import polars as pl
 import pytest
 
 from tests.monitoring.conftest import PLAN, load, make_lots, site_rows
 from tests.monitoring.facts import insert_facts
-from warehouse import evaluate, queries, schema, store
+from warehouse import evaluate, health, queries, schema, store
 from warehouse.plan import parse_plan, store_plan
 
 
@@ -235,6 +236,27 @@ def test_evaluate_out_of_spec_is_its_own_signal_without_limit_version(wh):
     assert raw.filter(raw["rule"] == "oos")["limit_version"].null_count() == 1
 
 
+def test_out_of_spec_uses_the_newest_spec_version_in_force(wh):
+    """Two open-ended versions of the same spec: from its effective_from on, the newer one applies (as the
+    dashboard's series_spec and the health report read it), whichever order the rows were stored in."""
+    lots = make_lots(30)  # 2026-09-01 .. 09-08, all near 45 nm
+    lots.append(site_rows("L9001", "L9001-01", [45.0, 45.0, 45.0, 45.0, 47.0], datetime(2026, 9, 20)))
+    lots.append(site_rows("L9002", "L9002-01", [45.0, 45.0, 45.0, 45.0, 40.0], datetime(2026, 9, 21)))
+    load(wh, lots)
+    newer = {**_generic_spec("M1_DEV"), "lsl": 39.5, "usl": 46.5, "effective_from": datetime(2026, 9, 15)}
+    with store.open_warehouse(wh) as con:
+        insert_facts(con, schema.SPEC_LIMITS, [newer, _generic_spec("M1_DEV")])
+    evaluate.evaluate_warehouse(wh, user="t")
+    oos = _signals(wh).filter(pl.col("rule") == "oos")
+    # L9001 (47.0 nm) is above the newer USL 46.5 only; L9002 (40.0 nm) is below the older LSL 40.5 only
+    assert oos["lot_id"].to_list() == ["L9001"]
+    with store.open_warehouse(wh, read_only=True) as con:
+        in_force = health.spec_limits_at(con, at=datetime(2026, 9, 20))
+        before = health.spec_limits_at(con, at=datetime(2026, 9, 10))
+    assert in_force.select("lsl", "usl").rows() == [(39.5, 46.5)]
+    assert before.select("lsl", "usl").rows() == [(40.5, 49.5)]
+
+
 DEFECT_PLAN = """
 [[chart]]
 name = "m1-d0"
@@ -357,8 +379,7 @@ def test_points_query_without_a_matching_spec_row_leaves_out_the_spec_join_and_r
             joined_sql, params = points.points_sql(e, specs=True)
             assert "spec_limits" in joined_sql and "spec_limits" not in points.points_sql(e, specs=False)[0]
             joined = points.fetch_frame(con.sql(joined_sql, params=params))
-            if "_generic" in joined.columns:
-                joined = joined.drop("_generic")
+            joined = joined.drop(points.SPEC_RANK_COLUMNS, strict=False)
             assert joined.height > 0
             assert not points.has_spec_rows(con, e)
             assert points.read_points(con, e).equals(joined)

@@ -6,8 +6,9 @@ from datetime import datetime
 
 import pytest
 
-from tests.monitoring.conftest import load, make_lots, site_rows
+from tests.monitoring.conftest import PLAN, load, make_lots, site_rows
 from warehouse import evaluate, excursions, queries, store
+from warehouse.plan import parse_plan, store_plan
 
 
 def _with_two_bursts(wh):
@@ -94,3 +95,40 @@ def test_excursion_whose_signals_are_withdrawn_closes_with_an_audit_row(wh):
     assert exc["state"].to_list() == ["closed"]
     assert hist["to_state"].to_list() == ["open", "closed"]
     assert hist["comment"][1] == "all signals withdrawn (superseded data or re-evaluation)"
+
+
+def _excursion_rows(wh) -> list[tuple]:
+    with store.open_warehouse(wh, read_only=True) as con:
+        return con.execute(
+            """SELECT e.chart, e.state, e.severity, e.first_at, e.last_at, e.rules_json, e.lots_json, e.n_signals,
+                      (SELECT count(*) FROM excursion_audit a WHERE a.excursion_id = e.excursion_id),
+                      (SELECT list(s.point_key || '/' || s.rule ORDER BY s.point_key, s.rule) FROM signals s
+                       WHERE s.excursion_id = e.excursion_id AND s.withdrawn_at IS NULL)
+               FROM excursions e ORDER BY e.first_at"""
+        ).fetchall()
+
+
+def test_signals_of_appended_points_group_as_in_one_run(tmp_path):
+    """An excursion that goes on across runs (the second run appends points to the series) ends with the
+    same signals, lots, rules, times and audit rows as when the same data is evaluated in one run."""
+    lots = make_lots(60)
+    # a burst at lots 30-31, one at lot 33 (one unsignalled point later: the same excursion) and one at 50
+    for i in (30, 31, 33, 50):
+        lots[i] = site_rows(f"L{i:04d}", f"L{i:04d}-01", [49.0] * 5, lots[i][0]["measured_at"])
+    one, two = tmp_path / "one.duckdb", tmp_path / "two.duckdb"
+    for p in (one, two):
+        with store.open_warehouse(p, create=True) as con:
+            store_plan(con, parse_plan(PLAN, path="p.toml"), user="t")
+    load(one, lots)
+    evaluate.evaluate_warehouse(one, user="t")
+    load(two, lots[:32])
+    evaluate.evaluate_warehouse(two, user="t")
+    load(two, lots[32:])
+    run = evaluate.evaluate_warehouse(two, user="t")
+    assert run.mode == "incremental" and run.series_appended == 1 and run.series_recomputed == 0
+    assert run.signals_new > 0
+    got, want = _excursion_rows(two), _excursion_rows(one)
+    assert got == want
+    # the first burst's excursion went on in the second run: its lots span both loads
+    assert any('"L0031"' in r[6] and '"L0033"' in r[6] for r in got)
+    assert any(r[6].startswith('["L0050"') for r in got)

@@ -82,3 +82,33 @@ def test_spark_engine_writes_a_new_snapshot_and_export_rerun_writes_no_files(dem
 
     assert all(v["files"] == 0 for v in again.values())
     assert sorted(p for p in demo_lake.lake.rglob("*.parquet")) == before
+
+
+def test_spark_engine_uses_the_newest_spec_version_in_force(spark, tmp_path):
+    """Two open-ended versions of one spec: points after the newer one's effective_from are checked
+    against it, on Spark as in the local engine (tests/monitoring/test_evaluate.py has the same case)."""
+    from datetime import datetime
+
+    from tests.monitoring.conftest import PLAN, load, make_lots, site_rows
+    from tests.monitoring.facts import insert_facts
+    from warehouse import evaluate, schema
+    from warehouse.plan import parse_plan, store_plan
+
+    db, lake = tmp_path / "wh.duckdb", tmp_path / "lake"
+    with store.open_warehouse(db, create=True) as con:
+        store_plan(con, parse_plan(PLAN, path="plan.toml"), user="t")
+    lots = make_lots(30)
+    lots.append(site_rows("L9001", "L9001-01", [45.0, 45.0, 45.0, 45.0, 47.0], datetime(2026, 9, 20)))
+    lots.append(site_rows("L9002", "L9002-01", [45.0, 45.0, 45.0, 45.0, 40.0], datetime(2026, 9, 21)))
+    load(db, lots)
+    spec = dict(product="*", layer="M1_DEV", parameter="cd_mid", target=45.0, unit="nm")
+    older = {**spec, "lsl": 40.5, "usl": 49.5, "effective_from": datetime(2026, 1, 1)}
+    newer = {**spec, "lsl": 39.5, "usl": 46.5, "effective_from": datetime(2026, 9, 15)}
+    with store.open_warehouse(db) as con:
+        insert_facts(con, schema.SPEC_LIMITS, [newer, older])
+    evaluate.evaluate_warehouse(db, user="t")
+    export_lake(db, lake)
+    evaluate_lake(lake, spark=spark)
+    oos = read_spark_signals(lake).filter(pl.col("rule") == "oos")
+    # L9001 (47.0 nm) is above the newer USL 46.5 only; L9002 (40.0 nm) below the older LSL 40.5 only
+    assert oos["lot_id"].to_list() == ["L9001"]
