@@ -4,8 +4,9 @@
 
 Builds a warehouse under ``bench/out/`` (anew on every run): N invented site measurements
 in time order (lots of 3 wafers x 9 sites x 2 parameters x 4 layers, spread over ``--days`` days, one
-source file of measurements and one of process history per day), and a monitoring plan of EWMA, CUSUM and
-individuals charts split by metrology tool, process tool/chamber and product.
+source file of measurements and one of process history per day), spec limits per product, layer and
+parameter, and a monitoring plan of EWMA, CUSUM and individuals charts split by metrology tool, process
+tool/chamber and product.
 
 Steps, each evaluation in its own process so that its peak RSS is its own:
 1. days 1..D-1 loaded, first evaluation (auto-freezes every series' limits);
@@ -98,6 +99,7 @@ def build(path: Path, rows: int, days: int) -> dict:
         con.execute("SET preserve_insertion_order = true")
         with store.transaction(con):
             store_plan(con, parse_plan(PLAN, path="bench_plan.toml"), user="bench")
+            _insert_specs(con)
             _insert_days(con, n_lots, days, range(days - 1))
             store.bump_data_version(con)
         con.execute("CHECKPOINT")
@@ -117,6 +119,24 @@ def load_last_day(path: Path, rows: int, days: int) -> int:
             store.bump_data_version(con)
         after = con.execute("SELECT count(*) FROM measurements").fetchall()[0][0]
     return int(after - before)
+
+
+def _insert_specs(con) -> None:
+    """Spec limits per product, layer and parameter, as a fab keeps them (file 1): CD target +- 10 %, LWR an
+    upper limit only. Every point's spec check then runs the spec join, as in production."""
+    con.execute(
+        "INSERT INTO source_files VALUES (1, 'specs.csv', 'bench-1', 0, 'spec_limits', 'bench', 'loaded', "
+        "16, 0, 0, 0, TIMESTAMP '2026-01-01', 'bench', NULL)"
+    )
+    con.execute(
+        """
+INSERT INTO spec_limits
+SELECT p.product, 'L' || li::VARCHAR, prm,
+       CASE WHEN prm = 'cd_mid' THEN (45 + 5 * li) * 0.9 END, CASE WHEN prm = 'cd_mid' THEN 45 + 5 * li END,
+       CASE WHEN prm = 'cd_mid' THEN (45 + 5 * li) * 1.1 ELSE 4.2 END, 'nm', TIMESTAMP '2025-06-01', NULL, 1,
+       row_number() OVER (ORDER BY li, p.product, prm) + 1, NULL
+FROM range(4) r(li), (VALUES ('AX14'), ('BX22')) p(product), (VALUES ('cd_mid'), ('lwr')) q(prm)"""
+    )
 
 
 LOT_SPAN_S = 360
@@ -144,7 +164,7 @@ def _insert_days(con, n_lots: int, days: int, day_list) -> None:
     n_sem, n_proc = tool_counts(n_lots, days)
     for d in day_list:
         lo, hi = int(round(d * per_day)), int(round((d + 1) * per_day))
-        fid_m, fid_h = 2 * d + 1, 2 * d + 2
+        fid_m, fid_h = 2 * d + 2, 2 * d + 3  # file 1 holds the spec limits
         for fid, kind in ((fid_h, "process_history"), (fid_m, "measurements")):
             con.execute(
                 "INSERT INTO source_files VALUES (?, ?, ?, 0, ?, 'bench', 'loaded', 0, 0, 0, 0, "

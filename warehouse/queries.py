@@ -529,8 +529,10 @@ WHERE s.series_id = ?
 def series_spec(con: Con, *, series_id: int, at: date | datetime | None = None) -> pl.DataFrame:
     """Spec limits in force at ``at`` (default: now) for a series' layer, parameter and product.
 
-    A row for the series' own product wins over a '*' row. Columns: lsl, target, usl, unit, product,
-    effective_from, effective_to (zero rows when no spec is stored).
+    A row for the series' own product wins over a '*' row; a series that mixes products (not split by
+    product) shows the '*' row when there is one, else one product's row (named in ``product``; each point
+    is checked against its own product's spec). Then the newest version wins. Columns: lsl, target, usl,
+    unit, product, effective_from, effective_to (zero rows when no spec is stored).
     """
     t = _ts(at) or datetime.now(UTC).replace(tzinfo=None)
     sql = """
@@ -539,7 +541,8 @@ FROM spec_limits l JOIN chart_series s ON l.layer = s.layer AND l.parameter = s.
 WHERE s.series_id = ? AND l._superseded_by IS NULL
   AND (l.product = '*' OR l.product = s.product OR s.product IS NULL)
   AND l.effective_from <= ? AND (l.effective_to IS NULL OR l.effective_to > ?)
-ORDER BY (l.product = '*'), l.effective_from DESC
+ORDER BY CASE WHEN s.product IS NULL THEN l.product <> '*' ELSE l.product = '*' END, l.effective_from DESC,
+         l.product
 LIMIT 1
 """
     return _frame(con, sql, [series_id, t, t])

@@ -257,6 +257,19 @@ def test_out_of_spec_uses_the_newest_spec_version_in_force(wh):
     assert before.select("lsl", "usl").rows() == [(40.5, 49.5)]
 
 
+def test_chart_spec_of_a_series_mixing_products_is_the_generic_row(wh):
+    """The plan's series split by metrology tool only, so they mix products: the chart shows the '*' spec,
+    not one product's (which applies to that product's points only)."""
+    load(wh, make_lots(25))
+    own = {**_generic_spec("M1_DEV"), "product": "AX14", "lsl": 42.0, "usl": 48.0}
+    with store.open_warehouse(wh) as con:
+        insert_facts(con, schema.SPEC_LIMITS, [own, _generic_spec("M1_DEV")])
+    evaluate.evaluate_warehouse(wh, user="t")
+    with store.open_warehouse(wh, read_only=True) as con:
+        spec = queries.series_spec(con, series_id=1, at=datetime(2026, 9, 5))
+    assert spec.select("product", "lsl", "usl").rows() == [("*", 40.5, 49.5)]
+
+
 DEFECT_PLAN = """
 [[chart]]
 name = "m1-d0"
