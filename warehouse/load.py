@@ -59,8 +59,12 @@ def whole_row_groups(rows: int) -> int:
     return rows - rows % ROW_GROUP_ROWS
 
 
-INGEST_MEMORY_LIMIT = "512MB"
-"""DuckDB's share of an ingest's memory (issue 2: peak RSS <= 2 GB for a 10M-row file); it spills beyond."""
+INGEST_MEMORY_LIMIT = "1200MB"
+"""DuckDB's share of an ingest's memory (issue 2: peak RSS <= 2 GB for a 10M-row file); it spills beyond.
+
+Peak RSS of a whole ingest measured with it (DuckDB 2.0.1, 2 cores): 0.78 GB for a 10M-row CSV on the
+DuckDB reader, 1.38 GB at 30M rows, 1.38 GB for the same 10M rows on the Polars reader. At 512 MB
+DuckDB evicted buffers during the direct load: 10M rows 12.5 s against 11.7 s, 30M rows 40 s against 36.6 s."""
 
 
 @dataclass
