@@ -169,6 +169,23 @@ def test_duplicate_key_in_a_duckdb_read_file_is_rejected_like_polars_does(tmp_pa
     assert (f.rows_loaded, f.rows_rejected) == (g.rows_loaded, g.rows_rejected) == (299, 1)
 
 
+def test_rows_sharing_the_duplicate_probe_but_not_the_key_are_both_kept(tmp_path):
+    """The DuckDB reader hashes only the measurements' duplicate probe (wafer, site, parameter, feature,
+    repeat, time); a row equal to another in those but of another lot, layer and tool is no duplicate."""
+    lines = [LONG_HEADER, *_rows(300, seed=9)]
+    f = lines[40].split(",")
+    f[0], f[7], f[13] = "HC7777", "V1", "SEM-Z9"  # lot, layer, tool; the wafer id stays
+    lines[250] = ",".join(f)
+    lines[260] = lines[41]  # and one true duplicate: line 261 repeats line 42
+    text = "\n".join(lines) + "\n"
+    (f, rows, rejects), (g, rows2, rejects2) = _both(tmp_path, text)
+    assert f.reader == "duckdb"
+    assert rows == rows2 and rejects == rejects2
+    assert [r[0] for r in rejects] == [261] and "line 42" in rejects[0][3]
+    assert (f.rows_loaded, f.rows_rejected) == (g.rows_loaded, g.rows_rejected) == (299, 1)
+    assert [r[0] for r in rows if r[-2] == 251] == ["HC7777"]
+
+
 def test_quoted_file_is_read_by_polars(tmp_path):
     lines = [LONG_HEADER, *_rows(200, seed=2)]
     lines[7] = lines[7].replace("SEM-", '"SEM-', 1).replace(",", '",', 14)  # one quoted field
