@@ -148,8 +148,8 @@ def insert_sql(prog: DirectProgram, *, path: str, file_id: int, max_line_bytes: 
     """The ``INSERT`` of the rows of the file at ``path``.
 
     Until :func:`number_lines`, ``_source_line`` holds -1 for a row that is not clean and, for a clean row, a
-    non-negative hash of its natural key (of the table's ``duplicate_probe`` part of it, when it has one),
-    and ``_superseded_by`` holds ``file_id`` (hidden from every query of current rows).
+    non-negative hash of its natural key, and ``_superseded_by`` holds ``file_id`` (hidden from every query
+    of current rows).
 
     The SELECT has three levels so that every value is computed once: ``parsed`` reads the raw text
     (``v<i>`` parsed value, ``n<i>`` raw text missing, ``s<i>`` raw text of the accepted shape), ``final``
@@ -220,7 +220,7 @@ def insert_sql(prog: DirectProgram, *, path: str, file_id: int, max_line_bytes: 
     # the clean flag rides in _source_line (-1: not clean) until number_lines: the checks in the projection
     # cost ~20 % CPU over the same parse unchecked, the same checks as a WHERE filter ~50 % (DuckDB 2.0.1)
     # a clean row's natural-key hash rides there too, so the in-file duplicate check needs no second hashing
-    key = [ref[k] if k in ref else "NULL" for k in (t.duplicate_probe or t.natural_key)]
+    key = [ref[k] if k in ref else "NULL" for k in t.natural_key]
     mark = f"(hash({', '.join(key)}) >> 1)::BIGINT" if key else "0"
     extra = "".join(f", {e} AS g{i}" for i, e in top_final.items())
     out = ", ".join(f"{ref[c.name]} AS {_q(c.name)}" for c in prog.columns)

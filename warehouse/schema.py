@@ -78,10 +78,7 @@ class Table:
 
     ``natural_key`` identifies a row: two rows of one file with the same key are duplicates (rejected), and
     a row whose key is already stored is skipped. ``supersede_key`` groups the rows that a corrected
-    re-export replaces as a whole (empty: the table is never superseded). ``duplicate_probe`` (part of the
-    natural key; empty: all of it) is what the DuckDB reader hashes to find in-file duplicate candidates,
-    which are then compared on the whole natural key: columns left out of it must rarely be the only
-    difference between two rows, and each one left out saves hashing work on every row.
+    re-export replaces as a whole (empty: the table is never superseded).
     """
 
     name: str
@@ -89,7 +86,6 @@ class Table:
     columns: tuple[Column, ...]
     natural_key: tuple[str, ...] = ()
     supersede_key: tuple[str, ...] = ()
-    duplicate_probe: tuple[str, ...] = ()
     is_fact: bool = False
     names: tuple[str, ...] = field(init=False)
 
@@ -101,11 +97,6 @@ class Table:
         for key in (*self.natural_key, *self.supersede_key):
             if key not in names:
                 raise ValueError(f"table {self.name!r}: key column {key!r} is not declared")
-        for key in self.duplicate_probe:
-            if key not in self.natural_key:
-                raise ValueError(
-                    f"table {self.name!r}: duplicate probe column {key!r} is not in the natural key"
-                )
 
     def column(self, name: str) -> Column:
         """Return the declared column ``name``; the error lists the columns that exist."""
@@ -200,9 +191,6 @@ MEASUREMENTS = Table(
         "measured_at",
     ),
     supersede_key=("lot_id", "wafer_id", "layer", "parameter", "metrology_tool"),
-    # one site measurement's time tells the lot, layer and tool apart in practice (a tool measures one
-    # wafer at a time); hashing those three strings cost 0.7 of 20 CPU seconds of a 10M-row load
-    duplicate_probe=("wafer_id", "site_id", "parameter", "feature", "repeat", "measured_at"),
     is_fact=True,
 )
 

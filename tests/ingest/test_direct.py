@@ -169,9 +169,9 @@ def test_duplicate_key_in_a_duckdb_read_file_is_rejected_like_polars_does(tmp_pa
     assert (f.rows_loaded, f.rows_rejected) == (g.rows_loaded, g.rows_rejected) == (299, 1)
 
 
-def test_rows_sharing_the_duplicate_probe_but_not_the_key_are_both_kept(tmp_path):
-    """The DuckDB reader hashes only the measurements' duplicate probe (wafer, site, parameter, feature,
-    repeat, time); a row equal to another in those but of another lot, layer and tool is no duplicate."""
+def test_a_row_differing_from_another_only_in_lot_layer_and_tool_is_kept(tmp_path):
+    """Same wafer id, site, parameter, feature, repeat and time as an earlier row, but another lot, layer
+    and tool: not a duplicate of it (natural key), on either reader; a true duplicate beside it is."""
     lines = [LONG_HEADER, *_rows(300, seed=9)]
     f = lines[40].split(",")
     f[0], f[7], f[13] = "HC7777", "V1", "SEM-Z9"  # lot, layer, tool; the wafer id stays
