@@ -15,6 +15,7 @@ import pytest
 from ingest_cases import LONG_HEADER, long_row
 
 from ingest.jobs import ingest_paths
+from tests.raw_db import raw_rows
 
 SMALL = 2048  # chunk_bytes below the test files' size: the DuckDB reader is tried
 HUGE = 1 << 30  # chunk_bytes above it: the Polars reader only
@@ -346,14 +347,6 @@ HIDDEN = "SELECT count(*) FROM measurements WHERE _superseded_by = _source_file_
 MARKER = "SELECT count(*) FROM meta WHERE key = 'interrupted_direct_load'"
 
 
-def _query(db, sql):
-    con = duckdb.connect(str(db), read_only=True)
-    try:
-        return con.execute(sql).fetchall()
-    finally:
-        con.close()
-
-
 def test_a_failure_in_the_second_transaction_deletes_the_hidden_rows_and_keeps_the_earlier_file(
     tmp_path, monkeypatch
 ):
@@ -367,7 +360,7 @@ def test_a_failure_in_the_second_transaction_deletes_the_hidden_rows_and_keeps_t
     db = d / "wh.duckdb"
     a = ingest_paths([d / "a.csv"], db=db, chunk_bytes=SMALL).files[0]
     assert (a.reader, a.rows_loaded) == ("duckdb", 200)
-    before = _query(db, f"SELECT {COLUMNS} FROM measurements ORDER BY ALL")
+    before = raw_rows(db, f"SELECT {COLUMNS} FROM measurements ORDER BY ALL")
 
     def fail(*args, **kwargs):
         raise IngestError("supersession failed for the test")
@@ -375,8 +368,8 @@ def test_a_failure_in_the_second_transaction_deletes_the_hidden_rows_and_keeps_t
     monkeypatch.setattr(load, "supersede_file", fail)  # runs after the first commit
     b = ingest_paths([d / "b.csv"], db=db, chunk_bytes=SMALL).files[0]
     assert b.status == "failed" and "supersession failed for the test" in b.message
-    assert _query(db, f"SELECT {COLUMNS} FROM measurements ORDER BY ALL") == before
-    assert _query(db, HIDDEN) == [(0,)] and _query(db, MARKER) == [(0,)]
+    assert raw_rows(db, f"SELECT {COLUMNS} FROM measurements ORDER BY ALL") == before
+    assert raw_rows(db, HIDDEN) == [(0,)] and raw_rows(db, MARKER) == [(0,)]
 
 
 def test_rows_whose_row_ids_are_not_consecutive_after_the_first_commit_are_read_again_by_polars(
@@ -394,5 +387,5 @@ def test_rows_whose_row_ids_are_not_consecutive_after_the_first_commit_are_read_
     assert (f.reader, f.status, f.rows_loaded) == ("polars", "loaded", 300)
     assert rows == rows2 and rejects == rejects2
     db = tmp_path / "duckdb" / "wh.duckdb"
-    assert _query(db, HIDDEN) == [(0,)] and _query(db, MARKER) == [(0,)]
-    assert _query(db, "SELECT count(*) FROM measurements") == [(300,)]
+    assert raw_rows(db, HIDDEN) == [(0,)] and raw_rows(db, MARKER) == [(0,)]
+    assert raw_rows(db, "SELECT count(*) FROM measurements") == [(300,)]

@@ -13,6 +13,7 @@ import duckdb
 import pytest
 
 from ingest.jobs import ingest_paths
+from tests.raw_db import raw_rows
 from warehouse.store import open_warehouse, read_data_version
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -193,12 +194,9 @@ def test_load_sigkill_mid_ingest_leaves_warehouse_as_before_and_rerun_loads_all(
         proc.wait(timeout=30)
     assert proc.returncode == -signal.SIGKILL
     hidden = "SELECT count(*) FROM measurements WHERE _superseded_by = _source_file_id"
-    raw = duckdb.connect(str(db_path), read_only=True)  # the file as the crash left it, before any repair
-    try:
-        committed = point in ("duckdb-between-commits", "duckdb-in-second-transaction")
-        assert raw.execute(hidden).fetchall() == [(120_000 if committed else 0,)]
-    finally:
-        raw.close()
+    committed = point in ("duckdb-between-commits", "duckdb-in-second-transaction")
+    # the file as the crash left it, before any repair
+    assert raw_rows(db_path, hidden) == [(120_000 if committed else 0,)]
     assert _q(db_path, "SELECT * FROM measurements") == before
     assert _q(db_path, hidden) == [(0,)]
     assert _q(db_path, "SELECT count(*) FROM meta WHERE key = 'interrupted_direct_load'") == [(0,)]
@@ -282,12 +280,4 @@ def test_an_unreadable_interrupted_load_record_is_a_clear_error_on_open(db_path,
             pass
     text = str(err.value)
     assert "record of an interrupted load is unreadable" in text and "DELETE FROM meta" in text
-    assert _q_raw(db_path, "SELECT count(*) FROM measurements") == [(1,)]  # nothing was deleted
-
-
-def _q_raw(db, sql):
-    con = duckdb.connect(str(db), read_only=True)
-    try:
-        return con.execute(sql).fetchall()
-    finally:
-        con.close()
+    assert raw_rows(db_path, "SELECT count(*) FROM measurements") == [(1,)]  # nothing was deleted
