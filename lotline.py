@@ -192,7 +192,7 @@ def ingest_cmd(paths, db, profile_dirs, profile, as_json: bool, wait_s: float, r
     "--evaluate",
     "run_evaluate",
     is_flag=True,
-    help="Evaluate the monitoring plan after each loaded file (incremental).",
+    help="Evaluate the monitoring plan (incremental) once after each poll that loaded files.",
 )
 def watch_cmd(
     folder, db, profile_dirs, interval: float, once: bool, as_json: bool, run_evaluate: bool = False
@@ -213,12 +213,21 @@ def watch_cmd(
             click.echo(_ingest_table([result])[1])
             if result.status == "failed":
                 click.echo(f"Error: {result.message}", err=True)
-        if run_evaluate and result.status == "loaded":
+
+    def after_poll(results) -> None:
+        # one evaluation per batch of files: a drop of many files at once is evaluated once, not per file
+        if run_evaluate and any(r.status == "loaded" for r in results):
             _evaluate_after_ingest(db, to_stderr=as_json)
 
     try:
         results = watch_folder(
-            folder, db=db, profile_dirs=profile_dirs, interval_s=interval, once=once, on_file=show
+            folder,
+            db=db,
+            profile_dirs=profile_dirs,
+            interval_s=interval,
+            once=once,
+            on_file=show,
+            on_poll=after_poll,
         )
     except KeyboardInterrupt:
         sys.exit(0)

@@ -29,13 +29,16 @@ def watch_folder(
     interval_s: float = 5.0,
     once: bool = False,
     on_file: Callable[[jobs.FileResult], None] | None = None,
+    on_poll: Callable[[list[jobs.FileResult]], None] | None = None,
     max_polls: int | None = None,
     wait_s: float = store.DEFAULT_WAIT_S,
 ) -> list[jobs.FileResult]:
     """Poll ``folder`` every ``interval_s`` and ingest files that are new or changed and stable.
 
-    ``once`` ingests what is ready now (two size checks ``SETTLE_S`` apart) and returns. Returns the
-    results of the files ingested (all of them when it stops).
+    ``once`` ingests what is ready now (two size checks ``SETTLE_S`` apart) and returns. ``on_file`` is
+    called after each ingested file, ``on_poll`` once after each poll that ingested any (with that poll's
+    results: the place for work that should run once per batch of files, such as an evaluation). Returns
+    the results of the files ingested (all of them when it stops).
     """
     root = Path(folder)
     profiles = load_profiles([Path(d) for d in profile_dirs])
@@ -52,6 +55,7 @@ def watch_folder(
             time.sleep(SETTLE_S)
             seen = current
             current = _stat_all(root)
+        this_poll: list[jobs.FileResult] = []
         for path, stamp in sorted(current.items()):
             if seen.get(path) != stamp or done.get(path) == stamp:
                 continue  # still changing, or already handled in this run
@@ -63,8 +67,11 @@ def watch_folder(
             handled[str(path)] = sha
             done[path] = stamp
             results.append(res)
+            this_poll.append(res)
             if on_file:
                 on_file(res)
+        if on_poll and this_poll:
+            on_poll(this_poll)
         seen = current
         if once or (max_polls is not None and polls >= max_polls):
             return results

@@ -116,9 +116,14 @@ def evaluate_warehouse(
         3
     """
     with store.open_warehouse(path, wait_s=wait_s) as con:
-        with store.transaction(con):
-            summary = evaluate_connection(con, full=full, user=user or _user())
-            store.bump_data_version(con)
+        return _evaluate_unit(con, full=full, user=user or _user())
+
+
+def _evaluate_unit(con, *, full: bool, user: str) -> RunSummary:
+    """One evaluation in its own transaction on an open read-write connection (bumps the data version)."""
+    with store.transaction(con):
+        summary = evaluate_connection(con, full=full, user=user)
+        store.bump_data_version(con)
     return summary
 
 
@@ -1046,9 +1051,15 @@ def freeze_limits(
     return out
 
 
-def evaluate_after_ingest(path=None, *, user: str | None = None) -> RunSummary | None:
-    """Incremental evaluation for the ingest commands; None (nothing done) when no plan is loaded."""
-    with store.open_warehouse(path) as con:
+def evaluate_after_ingest(
+    path=None, *, user: str | None = None, wait_s: float = store.DEFAULT_WAIT_S
+) -> RunSummary | None:
+    """Incremental evaluation for the ingest commands; None (nothing done) when no plan is loaded.
+
+    The plan check and the evaluation share one open of the file (an open and a close cost tens of ms on
+    a warehouse of millions of rows).
+    """
+    with store.open_warehouse(path, wait_s=wait_s) as con:
         if current_plan_version(con) == 0:
             return None
-    return evaluate_warehouse(path, user=user)
+        return _evaluate_unit(con, full=False, user=user or _user())

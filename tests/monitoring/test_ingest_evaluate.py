@@ -47,3 +47,25 @@ def test_ingest_evaluate_without_plan_prints_a_notice(tmp_path):
     r = CliRunner().invoke(cli, ["ingest", str(tmp_path / "a.csv"), "--db", str(db), "--evaluate"])
     assert r.exit_code == 0, r.output
     assert "notice: no monitoring plan loaded; nothing evaluated" in r.output
+
+
+def test_watch_evaluate_runs_one_evaluation_per_poll_not_per_file(tmp_path):
+    import duckdb
+
+    db = tmp_path / "w.duckdb"
+    plan = tmp_path / "plan.toml"
+    plan.write_text(PLAN, encoding="utf-8")
+    assert CliRunner().invoke(cli, ["plan", "load", str(plan), "--db", str(db)]).exit_code == 0
+    drop = tmp_path / "drop"
+    drop.mkdir()
+    for name, lots in (("a.csv", range(0, 12)), ("b.csv", range(12, 24)), ("c.csv", range(24, 30))):
+        _export(drop / name, lots)
+    r = CliRunner().invoke(cli, ["watch", str(drop), "--db", str(db), "--once", "--evaluate"])
+    assert r.exit_code == 0, r.output
+    assert r.output.count("loaded") >= 3, r.output
+    # three files in one poll: one evaluation after the batch, covering all three
+    assert r.output.count("evaluated: ") == 1, r.output
+    with duckdb.connect(str(db), read_only=True) as con:
+        runs = con.execute("SELECT count(*), max(watermark_file_id) FROM evaluation_runs").fetchall()[0]
+        files = con.execute("SELECT max(file_id) FROM source_files").fetchall()[0][0]
+    assert runs == (1, files)
