@@ -51,6 +51,11 @@ _SEVERITY_RANK = (
 )
 
 
+NOT_SPLIT = "(not split)"
+"""Tool of the overview grid's row for series not split by the chosen tool column (charts split only by
+product, say): a row of its own, not a total of the tool rows."""
+
+
 def _frame(con: Con, sql: str, params: list | None = None) -> pl.DataFrame:
     cur = con.cursor()  # one cursor per call: safe when the caller shares a connection across threads
     try:
@@ -119,7 +124,8 @@ def excursions_by_tool_layer_day(
     """Excursion counts on the overview grid: one row per tool, layer and day of the excursion's first point.
 
     ``tool_key`` picks the series' split column used as "tool": process_tool (default), chamber or
-    metrology_tool; series not split by it count under tool '(all)'. ``end`` is exclusive.
+    metrology_tool; series not split by it count under tool :data:`NOT_SPLIT` (a row of its own, not a
+    total of the tools). ``end`` is exclusive.
 
     Columns: day (date), tool, layer, excursions, open (not closed), signals, max_severity.
     """
@@ -130,7 +136,7 @@ def excursions_by_tool_layer_day(
     rank = _SEVERITY_RANK.format(c="e.severity")
     sql = f"""
 SELECT CAST(date_trunc('day', e.first_at) AS DATE) AS day,
-       coalesce(s.{tool_key}, '(all)') AS tool, s.layer,
+       coalesce(s.{tool_key}, ?) AS tool, s.layer,
        count(*) AS excursions,
        count(*) FILTER (WHERE e.state <> 'closed') AS open,
        sum(e.n_signals) AS signals,
@@ -143,7 +149,7 @@ GROUP BY ALL
 ORDER BY day, tool, s.layer
 """
     a, b = _ts(start), _ts(end)
-    return _frame(con, sql, [a, a, b, b])
+    return _frame(con, sql, [NOT_SPLIT, a, a, b, b])
 
 
 def open_excursions_by_severity(con: Con) -> pl.DataFrame:
@@ -487,7 +493,7 @@ def ooc_by_tool_layer(
     """Out-of-control counts on the overview grid: standing signals per tool and layer in a window.
 
     Counts signals whose point time is in [start, end); ``tool_key`` as in
-    :func:`excursions_by_tool_layer_day` (series not split by it count under '(all)').
+    :func:`excursions_by_tool_layer_day` (series not split by it count under :data:`NOT_SPLIT`).
 
     Columns: tool, layer, signals, points (distinct signalled points), lots, excursions.
     """
@@ -496,7 +502,7 @@ def ooc_by_tool_layer(
             f"tool_key {tool_key!r} is not a split column; use process_tool, chamber or metrology_tool"
         )
     sql = f"""
-SELECT coalesce(s.{tool_key}, '(all)') AS tool, s.layer,
+SELECT coalesce(s.{tool_key}, ?) AS tool, s.layer,
        count(*) AS signals, count(DISTINCT g.series_id || '|' || g.point_key) AS points,
        count(DISTINCT g.lot_id) AS lots, count(DISTINCT g.excursion_id) AS excursions
 FROM signals g JOIN chart_series s USING (series_id)
@@ -507,7 +513,7 @@ GROUP BY ALL
 ORDER BY tool, s.layer
 """
     a, b = _ts(start), _ts(end)
-    return _frame(con, sql, [a, a, b, b])
+    return _frame(con, sql, [NOT_SPLIT, a, a, b, b])
 
 
 def series_plan(con: Con, *, series_id: int) -> pl.DataFrame:

@@ -9,6 +9,7 @@ import polars as pl
 import streamlit as st
 
 from dashboard import charts, data, widgets
+from warehouse import queries
 
 WINDOWS = (1, 3, 7, 14, 30, 90)
 TOOL_KEYS = {"process_tool": "process tool", "chamber": "chamber", "metrology_tool": "metrology tool"}
@@ -56,6 +57,9 @@ def main() -> None:
 
     st.subheader(f"Out-of-control points by {TOOL_KEYS[tool_key]} and layer")
     st.plotly_chart(charts.ooc_grid(frames["grid"], value="signals"), key="ooc_grid", width="stretch")
+    if frames["grid"].filter(pl.col("tool") == queries.NOT_SPLIT).height:
+        st.caption(f"Row {queries.NOT_SPLIT}: signals of charts whose series are not split by "
+                   f"{TOOL_KEYS[tool_key]}; they are not counted in the rows above it.")  # fmt: skip
 
     st.subheader("Newest signals")
     newest = frames["newest"]

@@ -50,6 +50,18 @@ def test_overview_page_grid_and_newest_signals_equal_queries(fixture_db):
     assert set(fx.SHIFTED_LOTS) <= set(newest["lot_id"].to_list())
 
 
+def test_overview_grid_by_metrology_tool_shows_series_not_split_by_it_in_a_labelled_row(fixture_db):
+    # the fixture's chart is split by process tool only: by metrology tool, all its signals are one row,
+    # labelled as not split (not "all", which read as a total of the tool rows), with a caption saying so
+    at = run_page(days="7", by="metrology_tool")
+    assert not at.exception
+    heat = plotly_specs(at)[0]["data"][0]
+    assert list(heat["y"]) == ["(not split)"]
+    assert any("Row (not split)" in c.value and "metrology tool" in c.value for c in at.caption)
+    by_tool = run_page(days="7")
+    assert not any("Row (not split)" in c.value for c in by_tool.caption)
+
+
 def test_overview_page_freshness_flags_the_tool_that_stopped(fixture_db):
     at = run_page(stale="24")
     assert not at.exception
