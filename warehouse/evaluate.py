@@ -784,10 +784,7 @@ def _chart_point_rows(ctx: _Context, e: PlanEntry, pts: pl.DataFrame) -> pl.Data
             .then((pl.col("center") / area).sqrt() * sz)
             .otherwise(sigma)
         )
-    out = out.with_columns(sigma.alias("sigma")).with_columns(
-        (pl.col("center") - pl.col("_k") * pl.col("sigma")).alias("lcl"),
-        (pl.col("center") + pl.col("_k") * pl.col("sigma")).alias("ucl"),
-    )
+    out = out.with_columns(sigma.alias("sigma")).with_columns(*lim_mod.point_limits(e, pl.col("_k")))
     types = schema.polars_schema(schema.CHART_POINTS)
     return out.select(pl.col(c).cast(t) for c, t in types.items())
 
@@ -947,6 +944,8 @@ FROM evaluation_runs r ORDER BY r.run_id DESC LIMIT 1""",
         return None  # limits frozen again since the last evaluation
     if e.statistic == "lot_mean" or (e.statistic == "defect_density" and e.parameter != "total"):
         pts = pts.with_columns(pl.col("n").cast(pl.Int128))  # the facts query sums counts (HUGEINT)
+    if e.is_defect:  # rows written before 2026-12-02 hold a negative lcl: read it as written now
+        pts = pts.with_columns(pl.when(pl.col("lcl") < 0).then(0.0).otherwise(pl.col("lcl")).alias("lcl"))
     return pts
 
 
@@ -979,10 +978,7 @@ def series_points_from_facts(con, *, series_id: int) -> pl.DataFrame:
             pl.lit(lim["center"]).alias("center"),
             pl.Series("sigma", sigma),
             pl.lit(lim["version"], pl.Int64).alias("limit_version"),
-        ).with_columns(
-            (pl.col("center") - k * pl.col("sigma")).alias("lcl"),
-            (pl.col("center") + k * pl.col("sigma")).alias("ucl"),
-        )
+        ).with_columns(*lim_mod.point_limits(e, k))
     return pts.select(cols)
 
 

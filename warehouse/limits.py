@@ -150,6 +150,20 @@ def point_sigma(e: PlanEntry, lim: dict, pts: pl.DataFrame) -> np.ndarray:
     return np.full(pts.height, lim["sigma"])
 
 
+def point_limits(e: PlanEntry, k: float | pl.Expr) -> tuple[pl.Expr, pl.Expr]:
+    """(lcl, ucl) of each point of a frame with ``center`` and ``sigma``: center -/+ k * sigma.
+
+    On a defect-density chart a negative lower limit is drawn at 0, as the frozen version's own ``lcl``
+    is: a density cannot fall below it (common practice for c and u charts; Montgomery, Introduction to
+    Statistical Quality Control, ch. 7, from memory). The rules test z-scores, so no signal changes.
+    """
+    k = k if isinstance(k, pl.Expr) else pl.lit(float(k))
+    lcl = pl.col("center") - k * pl.col("sigma")
+    if e.statistic in DEFECT_STATISTICS:
+        lcl = pl.when(lcl < 0).then(0.0).otherwise(lcl)
+    return lcl.alias("lcl"), (pl.col("center") + k * pl.col("sigma")).alias("ucl")
+
+
 def insert_version(con, series_id: int, lim: dict, *, user: str, reason: str) -> int:
     """Append the next limit version of a series; return its number."""
     version = int(

@@ -318,6 +318,46 @@ def test_evaluate_laney_u_centre_is_total_defects_over_total_area(tmp_path):
     assert "D025" in sig["lot_id"].to_list()
 
 
+def test_defect_density_chart_points_draw_a_negative_lower_limit_at_zero(tmp_path):
+    # common practice for c and u charts: a lower limit below 0 is drawn at 0 (Montgomery, Introduction
+    # to Statistical Quality Control, ch. 7, from memory); the frozen version's lcl already was
+    path = tmp_path / "wh.duckdb"
+    rng = np.random.default_rng(5)
+    rows = [
+        dict(
+            lot_id=f"D{i:03d}",
+            wafer_id=f"D{i:03d}-01",
+            product="AX14",
+            layer="M1_ETCH_INSP",
+            inspection_tool="INS-1",
+            inspected_at=datetime(2026, 9, 1) + timedelta(hours=i),
+            inspected_area_cm2=area,
+            defect_count=int(rng.poisson(0.1 * area)),  # 5 to 30 expected defects: limits straddle 0
+            sample_kind="production",
+        )
+        for i, area in enumerate(np.linspace(50.0, 300.0, 30)[rng.permutation(30)].tolist())
+    ]
+    with store.open_warehouse(path, create=True) as con:
+        store_plan(con, parse_plan(DEFECT_PLAN, path="p.toml"), user="t")
+        insert_facts(con, schema.INSPECTIONS, rows)
+    evaluate.evaluate_warehouse(path, user="t")
+    with store.open_warehouse(path, read_only=True) as con:
+        shown = queries.series_points(con, series_id=1)
+        facts = evaluate.series_points_from_facts(con, series_id=1)
+        frozen_lcl = con.execute("SELECT lcl FROM control_limits WHERE series_id = 1").fetchall()[0][0]
+    raw = (shown["center"] - 3.0 * shown["sigma"]).to_list()
+    assert min(raw) < 0 < max(raw)  # small areas: center - 3 sigma below 0; large ones: above
+    assert shown["lcl"].to_list() == pytest.approx([max(r, 0.0) for r in raw])
+    assert facts["lcl"].to_list() == shown["lcl"].to_list()
+    assert frozen_lcl >= 0.0
+    assert shown["ucl"].to_list() == pytest.approx((shown["center"] + 3.0 * shown["sigma"]).to_list())
+    # chart points written before the change hold center - 3 sigma: they are read as written now
+    with store.open_warehouse(path) as con:
+        con.execute("UPDATE chart_points SET lcl = center - 3.0 * sigma")
+    with store.open_warehouse(path, read_only=True) as con:
+        assert queries.series_points(con, series_id=1)["lcl"].to_list() == shown["lcl"].to_list()
+
+
 def test_evaluate_wafer_mean_limits_use_variance_components_of_the_charted_level(wh):
     rng = np.random.default_rng(21)
     a, b, n = 25, 3, 5
