@@ -36,8 +36,10 @@ def compare_step_and_ramp(
     Input columns: ``by`` keys, ``order`` (numeric position or days, increasing within a series) and
     ``value``. Output, one row per series: ``n``, ``slope`` (per unit of ``order``), ``rss_ramp``,
     ``step_before`` (last ``order`` before the step), ``step_after`` (first ``order`` after it),
-    ``step_size`` (mean after - mean before), ``rss_step``, ``bic_ramp``, ``bic_step`` and ``shape`` ("step"
-    or "ramp"; null when the series is shorter than ``2 * min_segment``).
+    ``step_size`` (mean after - mean before), ``rss_step``, ``bic_ramp``, ``bic_step``, ``shape`` ("step"
+    or "ramp"; null when the series is shorter than ``2 * min_segment``), and ``rss_flat`` / ``bic_flat`` of
+    the constant model (the mean alone): ``changed`` is True when the chosen shape's BIC is below it, i.e.
+    the data show a step or ramp at all rather than noise about a constant level.
 
     Example:
         >>> f = pl.DataFrame({"tool": "A", "seq": list(range(8)), "value": [0.0] * 4 + [1.0] * 4})
@@ -78,7 +80,10 @@ def compare_step_and_ramp(
             pl.col("_dy").pow(2).sum().alias("_syy"),
         )
         .with_columns(pl.when(pl.col("_sxx") > 0).then(pl.col("_sxy") / pl.col("_sxx")).alias("slope"))
-        .with_columns((pl.col("_syy") - pl.col("slope") * pl.col("_sxy")).alias("rss_ramp"))
+        .with_columns(
+            (pl.col("_syy") - pl.col("slope") * pl.col("_sxy")).alias("rss_ramp"),
+            pl.col("_syy").alias("rss_flat"),
+        )
         .drop("_sxy", "_sxx", "_syy")
     )
     # step: split after position k, k in [min_segment, n - min_segment]
@@ -108,7 +113,11 @@ def compare_step_and_ramp(
     def bic(rss: str, p: int) -> pl.Expr:
         return n * (pl.max_horizontal(pl.col(rss), pl.lit(tiny)) / n).log() + p * n.log()
 
-    out = out.with_columns(bic("rss_ramp", 2).alias("bic_ramp"), bic("rss_step", 3).alias("bic_step"))
+    out = out.with_columns(
+        bic("rss_ramp", 2).alias("bic_ramp"),
+        bic("rss_step", 3).alias("bic_step"),
+        bic("rss_flat", 1).alias("bic_flat"),
+    )
     shape = (
         pl.when(pl.col("rss_step").is_null())
         .then(pl.lit(None, pl.String))
@@ -116,16 +125,28 @@ def compare_step_and_ramp(
         .then(pl.lit("step"))
         .otherwise(pl.lit("ramp"))
     )
-    return out.with_columns(shape.alias("shape")).select(
-        *keys,
-        "n",
-        "slope",
-        "rss_ramp",
-        "step_before",
-        "step_after",
-        "step_size",
-        "rss_step",
-        "bic_ramp",
-        "bic_step",
-        "shape",
+    changed = (
+        pl.when(pl.col("shape").is_null())
+        .then(pl.lit(None, pl.Boolean))
+        .otherwise(pl.min_horizontal("bic_step", "bic_ramp") < pl.col("bic_flat"))
+    )
+    return (
+        out.with_columns(shape.alias("shape"))
+        .with_columns(changed.alias("changed"))
+        .select(
+            *keys,
+            "n",
+            "slope",
+            "rss_ramp",
+            "step_before",
+            "step_after",
+            "step_size",
+            "rss_step",
+            "bic_ramp",
+            "bic_step",
+            "shape",
+            "rss_flat",
+            "bic_flat",
+            "changed",
+        )
     )

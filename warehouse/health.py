@@ -105,6 +105,11 @@ class Week:
         return week_of(self.start - timedelta(days=1))
 
 
+WHOLE_TOOL = "(all)"
+"""Chamber column of the process scorecard for series split by process tool but not by chamber (the
+tool's charts over all its chambers)."""
+
+
 def week_of(at: date | datetime) -> Week:
     """The ISO week holding ``at`` (naive datetimes are UTC).
 
@@ -696,6 +701,7 @@ def _cdsem_scorecard(con: Con, wk: Week, s: HealthSettings, notes: list[str]) ->
             shapes.select(
                 "tool",
                 pl.col("shape").alias("change_shape"),
+                pl.col("changed").alias("change_clear"),
                 pl.col("slope").alias("drift_rate_nm_per_day"),
                 "step_day",
                 pl.col("step_size").alias("step_nm"),
@@ -858,6 +864,7 @@ def _flag_cdsems(card: pl.DataFrame, s: HealthSettings) -> pl.DataFrame:
     for c, dt in (
         ("ewma_signal_days", pl.Int64),
         ("change_shape", pl.String),
+        ("change_clear", pl.Boolean),
         ("fleet_offset_nm", pl.Float64),
         ("fleet_offset_lo", pl.Float64),
         ("fleet_offset_hi", pl.Float64),
@@ -866,10 +873,13 @@ def _flag_cdsems(card: pl.DataFrame, s: HealthSettings) -> pl.DataFrame:
         if c not in card.columns:
             card = card.with_columns(pl.lit(None, dt).alias(c))
     signalled = pl.col("ewma_signal_days").fill_null(0) > 0
+    # a drift or a step only where that shape fits the recent days better than a constant level (BIC);
+    # an EWMA signal over noise about a level is reported as a signal of no clear shape
+    clear = pl.col("change_clear").fill_null(False)
     drift = (
-        pl.when(signalled & (pl.col("change_shape") == "ramp"))
+        pl.when(signalled & clear & (pl.col("change_shape") == "ramp"))
         .then(pl.lit("drift"))
-        .when(signalled & (pl.col("change_shape") == "step"))
+        .when(signalled & clear & (pl.col("change_shape") == "step"))
         .then(pl.lit("step"))
         .when(signalled)
         .then(pl.lit("signal"))
@@ -1032,7 +1042,7 @@ def _process_scorecard(con: Con, wk: Week, s: HealthSettings, notes: list[str]) 
     per = (
         pts.join(sig, on="series_id", how="left")
         .with_columns(pl.col("signalled_points").fill_null(0), pl.col("signals").fill_null(0))
-        .with_columns(pl.col("chamber").fill_null("(all)"))
+        .with_columns(pl.col("chamber").fill_null(WHOLE_TOOL))
     )
     layers = (
         per.group_by([*keys, "layer", "parameter"])
@@ -1050,7 +1060,7 @@ def _process_scorecard(con: Con, wk: Week, s: HealthSettings, notes: list[str]) 
     )
     # Cpk per layer run (layer, parameter, product, tool, chamber) from the week's site values
     sites = chamber_site_values(con, start=wk.start, end=wk.end).with_columns(
-        pl.col("chamber").fill_null("(all)")
+        pl.col("chamber").fill_null(WHOLE_TOOL)
     )
     cpk = _capability(sites, [*keys, "layer", "parameter", "product"], s, notes)
     if cpk.height:
@@ -1072,7 +1082,7 @@ def _process_scorecard(con: Con, wk: Week, s: HealthSettings, notes: list[str]) 
             )
         )
         card = card.join(worst, on=keys, how="left")
-    exc = excursions_by_chamber(con, end=wk.end).with_columns(pl.col("chamber").fill_null("(all)"))
+    exc = excursions_by_chamber(con, end=wk.end).with_columns(pl.col("chamber").fill_null(WHOLE_TOOL))
     exc = exc.filter(pl.col("process_tool").is_not_null())
     since = wk.end - timedelta(days=s.repeat_offender_days)
     ex_card = (
@@ -1150,6 +1160,12 @@ def _fmt(v, nd: int = 2, signed: bool = True) -> str:
     return f"{v:+.{nd}f}" if signed else f"{v:.{nd}f}"
 
 
+def _chamber_name(tool: str, chamber: str) -> str:
+    if chamber == WHOLE_TOOL:
+        return f"Process tool {tool} (charts not split by chamber)"
+    return f"Process chamber {tool}/{chamber}"
+
+
 def _attention(h: WeeklyHealth, s: HealthSettings) -> list[str]:
     """Short sentences naming the tools that need a look, most important first (advice, not decisions)."""
     out: list[str] = []
@@ -1164,6 +1180,11 @@ def _attention(h: WeeklyHealth, s: HealthSettings) -> list[str]:
             out.append(
                 f"CD-SEM {r['tool']}: monitor stepped {_fmt(r.get('step_nm'))} nm on {r.get('step_day')} "
                 f"(EWMA signal on {r['ewma_signal_days']} day(s))."
+            )
+        for r in c.filter(pl.col("monitor_status") == "signal").iter_rows(named=True):
+            out.append(
+                f"CD-SEM {r['tool']}: monitor EWMA signal on {r['ewma_signal_days']} day(s), no clear step "
+                f"or drift in the last {s.shape_days} days (EWMA {_fmt(r.get('drift_nm'))} nm from baseline)."
             )
         for r in c.filter(pl.col("offset_flag")).iter_rows(named=True):
             out.append(
@@ -1187,14 +1208,14 @@ def _attention(h: WeeklyHealth, s: HealthSettings) -> list[str]:
         top = p.filter(pl.col("ooc_rate").is_not_null() & (pl.col("signalled_points") > 0)).head(1)
         for r in top.iter_rows(named=True):
             out.append(
-                f"Process chamber {r['process_tool']}/{r['chamber']}: highest OOC rate {r['ooc_rate']:.1%} "
+                f"{_chamber_name(r['process_tool'], r['chamber'])}: highest OOC rate {r['ooc_rate']:.1%} "
                 f"({r['signalled_points']} of {r['chart_points']} points)."
             )
         if "repeat_offender" in p.columns:
             offenders = p.filter(pl.col("repeat_offender")).sort("recent_excursions", descending=True)
             for r in offenders.head(3).iter_rows(named=True):
                 out.append(
-                    f"Process chamber {r['process_tool']}/{r['chamber']}: repeat offender "
+                    f"{_chamber_name(r['process_tool'], r['chamber'])}: repeat offender "
                     f"({r['recent_excursions']} excursions in {s.repeat_offender_days} days)."
                 )
             if offenders.height > 3:

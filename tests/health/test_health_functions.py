@@ -196,3 +196,28 @@ def test_reference_pairs_average_repeats_per_feature(small_db):
     assert pairs["reference"].to_list() == [30.0, 45.0, 60.0, 75.0]
     assert pairs["measured"].to_list() == pytest.approx([30.65, 45.65, 60.65, 75.65])
     assert set(pairs["n_repeats"]) == {2}
+
+
+def test_monitor_call_names_a_drift_or_step_only_where_that_shape_beats_a_constant_level():
+    # EWMA signal days with the shape fit of the recent days (spc.shape: BIC of step, ramp and constant);
+    # an EWMA signal over noise about a level is a "signal" of no clear shape, not a drift
+    card = pl.DataFrame(
+        {
+            "tool": ["A", "B", "C", "D", "E"],
+            "ewma_signal_days": [3, 3, 3, 3, 0],
+            "change_shape": ["ramp", "ramp", "step", "step", "ramp"],
+            "change_clear": [True, False, True, False, True],
+            "drift_nm": [-0.6, 0.04, 1.2, 0.05, -0.6],
+        }
+    )
+    flagged = health._flag_cdsems(card, health.HealthSettings())
+    assert flagged["monitor_status"].to_list() == ["drift", "signal", "step", "signal", "ok"]
+
+
+def test_attention_names_tool_level_charts_by_the_tool_not_as_a_chamber_called_all():
+    # series split by process tool only fill the scorecard's chamber column with WHOLE_TOOL
+    assert (
+        health._chamber_name("ETCH-D", health.WHOLE_TOOL)
+        == "Process tool ETCH-D (charts not split by chamber)"
+    )
+    assert health._chamber_name("ETCH-D", "CH1") == "Process chamber ETCH-D/CH1"

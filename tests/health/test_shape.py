@@ -39,7 +39,13 @@ def test_compare_step_and_ramp_matches_numpy_line_and_loop_change_point():
         assert r["step_size"] == pytest.approx(size, rel=1e-9)
         bic = lambda rss, p: 30 * np.log(rss / 30) + p * np.log(30)  # noqa: E731 (Schwarz 1978)
         assert r["shape"] == ("step" if bic(r["rss_step"], 3) < bic(r["rss_ramp"], 2) else "ramp")
+        flat = ((y - y.mean()) ** 2).sum()  # the constant model: deviations from numpy's mean
+        assert r["rss_flat"] == pytest.approx(flat, rel=1e-9)
+        assert r["bic_flat"] == pytest.approx(bic(flat, 1), rel=1e-9)
+        assert r["changed"] == (min(bic(r["rss_step"], 3), bic(r["rss_ramp"], 2)) < bic(flat, 1))
     assert out.filter(pl.col("tool") == "A")["shape"].item() == "ramp"
+    # noise about a constant level is no change, whichever of step and ramp fits it a little better
+    assert out["changed"].to_list() == [True, True, False]
     assert out.filter(pl.col("tool") == "B")["shape"].item() == "step"
     assert out.filter(pl.col("tool") == "B")["step_after"].item() == 12
 
