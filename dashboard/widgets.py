@@ -8,6 +8,7 @@ falls back to the default (choices) or shows "not found" (free-text keys such as
 
 from __future__ import annotations
 
+import json
 from collections.abc import Callable, Sequence
 from typing import Any
 from urllib.parse import urlencode
@@ -119,6 +120,25 @@ def text_param(label: str, *, key: str, placeholder: str = "", container: Any = 
     value = (value or "").strip()
     set_param(key, value or None)
     return value or None
+
+
+def series_label(row: dict) -> str:
+    """A series as engineers read it: layer · parameter · split keys (``key=value``, sorted)."""
+    try:
+        split = json.loads(row["split_json"] or "{}")
+    except ValueError:
+        split = {}
+    parts = [f"{k}={v}" for k, v in sorted(split.items())]
+    return f"{row['layer']} · {row['parameter']}" + (f" · {', '.join(parts)}" if parts else "")
+
+
+def json_list_text(text: str | None) -> str:
+    """A stored JSON list (rules, lots) as comma-separated text; the raw text if it is not a list."""
+    try:
+        items = json.loads(text) if text else []
+    except ValueError:
+        return text or ""
+    return ", ".join(str(i) for i in items) if isinstance(items, list) else str(text)
 
 
 def page_url(page: str, **query: Any) -> str:

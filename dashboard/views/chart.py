@@ -16,15 +16,6 @@ from warehouse.plan import CHART_PARAMS
 WINDOWS = (0, 7, 30, 90, 180, 365)
 
 
-def _series_label(row: dict) -> str:
-    try:
-        split = json.loads(row["split_json"] or "{}")
-    except ValueError:
-        split = {}
-    parts = [f"{k}={v}" for k, v in sorted(split.items())]
-    return f"{row['layer']} · {row['parameter']}" + (f" · {', '.join(parts)}" if parts else "")
-
-
 def _json(text: str | None, default):
     try:
         value = json.loads(text) if text else default
@@ -50,7 +41,7 @@ def main() -> None:
     chart = widgets.choice("Plan entry", chart_names, key="chart", default=default_chart, container=c1)
     rows = {r["series_id"]: r for r in series.filter(pl.col("chart") == chart).iter_rows(named=True)}
     series_id = widgets.choice("Series", list(rows), key="series", default=wanted,
-                               format_func=lambda sid: _series_label(rows[sid]), container=c2)  # fmt: skip
+                               format_func=lambda sid: widgets.series_label(rows[sid]), container=c2)  # fmt: skip
     days = widgets.choice("Days (0 = all)", WINDOWS, key="days", default=0, container=c3)
     info = rows[series_id]
 
@@ -88,7 +79,7 @@ def main() -> None:
     )
     split = None if split in (None, "(none)") else split
 
-    title = f"{info['chart']}: {_series_label(info)} ({plan_row.get('statistic', '')}, {plan_row.get('chart_type', '')})"
+    title = f"{info['chart']}: {widgets.series_label(info)} ({plan_row.get('statistic', '')}, {plan_row.get('chart_type', '')})"
     fig = charts.control_chart(points, signals, spec=spec, rules=rules, split=split, title=title, unit=unit)
     event = st.plotly_chart(fig, key="control_chart", on_select="rerun", selection_mode=("points", "box"),
                             width="stretch")  # fmt: skip

@@ -148,7 +148,7 @@ def main() -> None:
         f"Excursion {detail['excursion_id']}: {detail['chart']} ({detail['severity']}, {detail['state']})"
     )
     st.caption(
-        f"{detail['layer']} · {detail['parameter']} · split {detail['split_json']} · rules {detail['rules_json']} · "
+        f"{widgets.series_label(detail)} · rules {widgets.json_list_text(detail['rules_json'])} · "
         f"first {detail['first_at']} · last {detail['last_at']} · {detail['n_signals']} standing signals"
     )
     st.page_link(widgets.PAGES["chart"], label="Open its chart", icon=":material/show_chart:",

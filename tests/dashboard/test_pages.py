@@ -222,6 +222,13 @@ def test_excursions_page_list_detail_and_history_equal_queries(fixture_db):
     signals = table_with(at, "rule", "lot_id", "withdrawn_at")
     assert set(fx.SHIFTED_LOTS) <= set(signals["lot_id"].to_list())
     assert any(t.value.startswith("Author: ") for t in at.text)
+    # the header names the series and its rules as text, not as stored JSON
+    detail = query(fixture_db, "excursion_detail", excursion_id=xid).row(0, named=True)
+    split = ", ".join(f"{k}={v}" for k, v in sorted(json.loads(detail["split_json"]).items()))
+    rules = ", ".join(json.loads(detail["rules_json"]))
+    header = next(c.value for c in at.caption if " standing signals" in c.value)
+    assert header.startswith(f"{detail['layer']} · {detail['parameter']} · {split} · rules {rules} · ")
+    assert "{" not in header and "[" not in header
 
 
 def test_excursions_page_disposition_is_stored_and_shown_in_history(fixture_db):
