@@ -39,7 +39,12 @@ CAUTIONS = {
         "A tool that ran most lots shows up whether or not it is the cause."
     ),
     "rework_before_etch": (
-        "Develop-stage (resist) data: rework is still possible for these lots, if the OCAP calls for it."
+        "Develop-stage (resist) data: rework is possible only until this layer is etched (check the lot's "
+        "route above), and only if the OCAP calls for it."
+    ),
+    "rework_etched_since": (
+        "Develop-stage (resist) data, but this lot has after-etch measurements since ({layer} at {at}): its "
+        "pattern has most likely been transferred, so rework is likely no longer possible. The OCAP decides."
     ),
     "rework_after_etch": "After-etch data: the pattern is transferred, rework is no longer possible.",
     "disposition": (
@@ -172,9 +177,9 @@ def static_table(frame: pl.DataFrame, *, columns: Sequence[str] | None = None) -
     st.table(frame.with_columns(pl.col(pl.Datetime).dt.strftime("%Y-%m-%d %H:%M:%S")), hide_index=True)
 
 
-def caution(kind: str) -> None:
-    """Show one of the standard caution texts."""
-    st.caption(":warning: " + CAUTIONS[kind])
+def caution(kind: str, **values: Any) -> None:
+    """Show one of the standard caution texts (``values`` fill its ``{placeholders}``)."""
+    st.caption(":warning: " + CAUTIONS[kind].format(**values))
 
 
 def not_found(what: str, value: str | None) -> None:

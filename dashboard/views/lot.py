@@ -10,11 +10,20 @@ import streamlit as st
 from dashboard import charts, data, widgets
 
 
-def _stage_caution(stage: str | None) -> None:
-    if stage == "develop":
-        widgets.caution("rework_before_etch")
-    elif stage == "etch":
+def _stage_caution(stage: str | None, meas: pl.DataFrame, at_layer: pl.DataFrame) -> None:
+    """Rework caution for the layer shown: after-etch data, or develop data of a lot since measured after etch."""
+    if stage == "etch":
         widgets.caution("rework_after_etch")
+    elif stage == "develop":
+        since = at_layer["first_measured_at"].min()
+        etched = meas.filter((pl.col("stage") == "etch") & (pl.col("first_measured_at") > since))
+        if etched.height:
+            first = etched.sort("first_measured_at").row(0, named=True)
+            widgets.caution(
+                "rework_etched_since", layer=first["layer"], at=f"{first['first_measured_at']:%Y-%m-%d %H:%M}"
+            )
+        else:
+            widgets.caution("rework_before_etch")
 
 
 def main() -> None:
@@ -68,7 +77,7 @@ def main() -> None:
                 if sig["radial"] is not None:
                     widgets.table(sig["radial"], key="radial_fit")
                 widgets.table(sig["families"], key="zernike_families")
-        _stage_caution(stage)
+        _stage_caution(stage, meas, at_layer)
 
         defects = data.load_one("wafer_defects", lot_id=lot, wafer_id=wafer)
         st.subheader("Defect map")

@@ -13,6 +13,7 @@ from streamlit.testing.v1 import AppTest
 from tests.dashboard import fixture_warehouse as fx
 from tests.dashboard.conftest import APP
 from tests.dashboard.helpers import array, plotly_specs, query, run_page, shifted_excursion, table_with
+from warehouse import store
 
 # ------------------------------------------------------------------------------------------ overview
 
@@ -160,7 +161,21 @@ def test_lot_page_shows_measurements_history_maps_and_excursions(fixture_db):
     assert shifted_excursion(fixture_db) in exc["excursion_id"].to_list()
     captions = " ".join(c.value for c in at.caption)
     assert "Commonality is association" in captions
-    assert "rework is still possible" in captions  # develop-stage layer
+    # develop-stage layer, but the lot was measured after etch 3 h later (M1_ETCH): rework is likely gone
+    etch_at = meas.filter(pl.col("layer") == "M1_ETCH")["first_measured_at"].min()
+    assert f"after-etch measurements since (M1_ETCH at {etch_at:%Y-%m-%d %H:%M})" in captions
+    assert "rework is likely no longer possible" in captions
+
+
+def test_lot_page_develop_layer_without_later_etch_data_says_rework_only_until_etched(fixture_db):
+    lot = fx.DEFECT_LOT
+    with store.open_warehouse(fixture_db) as con:
+        con.execute("DELETE FROM measurements WHERE lot_id = ? AND stage = 'etch'", [lot])
+    at = run_page("lot", lot=lot, layer="M1_LITHO")
+    assert not at.exception
+    captions = " ".join(c.value for c in at.caption)
+    assert "rework is possible only until this layer is etched" in captions
+    assert "after-etch measurements since" not in captions
 
 
 def test_lot_page_zone_means_and_commonality_equal_engine(fixture_db):
