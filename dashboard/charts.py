@@ -187,6 +187,13 @@ def control_chart(
     if signals is not None and signals.height:
         for rule in sorted(set(signals["rule"].to_list())):
             s = signals.filter(pl.col("rule") == rule)
+            # an out-of-spec mark sits at the charted value, but what left the spec is its worst site value
+            # (the signal's statistic); say so, or a wafer mean inside the spec lines looks wrongly flagged
+            worst = (
+                [None if v is None else f"{v:.4g}" for v in s["statistic"].to_list()]
+                if rule == "oos" and "statistic" in s.columns
+                else None
+            )
             fig.add_trace(
                 go.Scatter(
                     x=s["point_at"].to_list(), y=s["value"].to_list(), mode="markers", name=f"signal {rule}",
@@ -194,7 +201,12 @@ def control_chart(
                             "line": {"width": 1.5, "color": _SIGNAL_COLOR}},
                     customdata=[[a, b, c] for a, b, c in zip(s["lot_id"].to_list(), s["wafer_id"].to_list(),
                                                               s["point_key"].to_list(), strict=True)],
-                    hovertemplate=f"rule {rule}<br>lot %{{customdata[0]}}<br>%{{x}}<br>%{{y:.4g}}<extra></extra>",
+                    text=worst,
+                    hovertemplate=(
+                        f"rule {rule}<br>lot %{{customdata[0]}}<br>%{{x}}<br>%{{y:.4g}}"
+                        + ("<br>value beyond spec: %{text}" if worst is not None else "")
+                        + "<extra></extra>"
+                    ),
                 )
             )  # fmt: skip
     fig.update_yaxes(title_text=unit or "value")

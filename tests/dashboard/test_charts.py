@@ -68,6 +68,18 @@ def test_control_chart_spec_limits_and_signals_by_rule():
     assert tuple(we1.customdata[0]) == ("L5", "W5", "L5|W5")
 
 
+def test_control_chart_out_of_spec_mark_names_the_value_beyond_the_spec():
+    # a wafer mean inside the spec lines is flagged when one of its sites is outside: the hover says which
+    sig = pl.DataFrame({"point_key": ["L5|W5", "L4|W4"], "lot_id": ["L5", "L4"], "wafer_id": ["W5", "W4"],
+                        "point_at": [T + timedelta(hours=5), T + timedelta(hours=4)], "rule": ["oos", "we1"],
+                        "value": [45.5, 45.4], "statistic": [40.21, None]})  # fmt: skip
+    fig = charts.control_chart(_points(), sig, spec={"lsl": 40.5, "usl": 49.5})
+    oos, we1 = _trace(fig, "signal oos")[0], _trace(fig, "signal we1")[0]
+    assert list(oos.text) == ["40.21"] and "value beyond spec: %{text}" in oos.hovertemplate
+    assert we1.text is None and "beyond spec" not in we1.hovertemplate
+    assert tuple(oos.customdata[0]) == ("L5", "W5", "L5|W5")  # the drill-down keys are unchanged
+
+
 def test_control_chart_split_gives_one_point_trace_per_value():
     fig = charts.control_chart(_points(), split="metrology_tool")
     assert [t.name for t in fig.data[:2]] == ["CD1", "CD2"]
