@@ -863,6 +863,7 @@ def _accuracy_scorecard(con: Con, wk: Week, s: HealthSettings) -> tuple[pl.DataF
 def _flag_cdsems(card: pl.DataFrame, s: HealthSettings) -> pl.DataFrame:
     for c, dt in (
         ("ewma_signal_days", pl.Int64),
+        ("monitor_days", pl.Int64),
         ("change_shape", pl.String),
         ("change_clear", pl.Boolean),
         ("fleet_offset_nm", pl.Float64),
@@ -877,7 +878,9 @@ def _flag_cdsems(card: pl.DataFrame, s: HealthSettings) -> pl.DataFrame:
     # an EWMA signal over noise about a level is reported as a signal of no clear shape
     clear = pl.col("change_clear").fill_null(False)
     drift = (
-        pl.when(signalled & clear & (pl.col("change_shape") == "ramp"))
+        pl.when(pl.col("monitor_days").fill_null(0) == 0)
+        .then(pl.lit("no data"))  # no monitor run in the week: nothing to call ok
+        .when(signalled & clear & (pl.col("change_shape") == "ramp"))
         .then(pl.lit("drift"))
         .when(signalled & clear & (pl.col("change_shape") == "step"))
         .then(pl.lit("step"))
@@ -1181,6 +1184,8 @@ def _attention(h: WeeklyHealth, s: HealthSettings) -> list[str]:
                 f"CD-SEM {r['tool']}: monitor stepped {_fmt(r.get('step_nm'))} nm on {r.get('step_day')} "
                 f"(EWMA signal on {r['ewma_signal_days']} day(s))."
             )
+        for r in c.filter(pl.col("monitor_status") == "no data").iter_rows(named=True):
+            out.append(f"CD-SEM {r['tool']}: no monitor-wafer run in the week.")
         for r in c.filter(pl.col("monitor_status") == "signal").iter_rows(named=True):
             out.append(
                 f"CD-SEM {r['tool']}: monitor EWMA signal on {r['ewma_signal_days']} day(s), no clear step "

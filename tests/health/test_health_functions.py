@@ -203,15 +203,17 @@ def test_monitor_call_names_a_drift_or_step_only_where_that_shape_beats_a_consta
     # an EWMA signal over noise about a level is a "signal" of no clear shape, not a drift
     card = pl.DataFrame(
         {
-            "tool": ["A", "B", "C", "D", "E"],
-            "ewma_signal_days": [3, 3, 3, 3, 0],
-            "change_shape": ["ramp", "ramp", "step", "step", "ramp"],
-            "change_clear": [True, False, True, False, True],
-            "drift_nm": [-0.6, 0.04, 1.2, 0.05, -0.6],
+            "tool": ["A", "B", "C", "D", "E", "F"],
+            "monitor_days": [7, 7, 7, 7, 7, None],
+            "ewma_signal_days": [3, 3, 3, 3, 0, None],
+            "change_shape": ["ramp", "ramp", "step", "step", "ramp", None],
+            "change_clear": [True, False, True, False, True, None],
+            "drift_nm": [-0.6, 0.04, 1.2, 0.05, -0.6, None],
         }
     )
     flagged = health._flag_cdsems(card, health.HealthSettings())
-    assert flagged["monitor_status"].to_list() == ["drift", "signal", "step", "signal", "ok"]
+    # F ran no monitor in the week (a tool that stopped reporting): not "ok"
+    assert flagged["monitor_status"].to_list() == ["drift", "signal", "step", "signal", "ok", "no data"]
 
 
 def test_attention_names_tool_level_charts_by_the_tool_not_as_a_chamber_called_all():

@@ -32,7 +32,16 @@ def test_weekly_report_charts_render_offline_in_chromium(demo_report):
             page.wait_for_selector(".js-plotly-plot .main-svg", timeout=30000)
             n = page.locator(".js-plotly-plot").count()
             svgs = page.locator(".js-plotly-plot .main-svg").count()
+            page.wait_for_timeout(500)  # after the load event
+            # each chart fits its grid cell: a chart drawn wider than its cell is cut off at the right
+            # (the first chart of a grid was drawn before the second cell existed, over the full width)
+            widths = page.evaluate(
+                """() => [...document.querySelectorAll('.js-plotly-plot')].map(el => [
+                    el.querySelector('.main-svg').getBoundingClientRect().width,
+                    el.parentElement.getBoundingClientRect().width])"""
+            )
         finally:
             browser.close()
     assert n == 7 and svgs >= 7
+    assert all(svg <= cell + 1 for svg, cell in widths), widths
     assert all(u.startswith(("file:", "data:", "blob:", "about:")) for u in requests)
