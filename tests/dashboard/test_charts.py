@@ -165,3 +165,19 @@ def test_selected_points_box_selection_keeps_order_and_drops_duplicates():
 )  # fmt: skip
 def test_selected_points_without_keys_selects_nothing(event):
     assert selected_points(event) == []
+
+
+def test_accuracy_figure_draws_each_reading_and_the_fit_as_the_difference_to_the_reference():
+    from dashboard import health_charts
+
+    # SEM-A reads 1 nm high with slope 1; SEM-B reads 2 % low (slope 0.98, no offset)
+    pairs = pl.DataFrame({
+        "tool": ["SEM-A", "SEM-A", "SEM-B", "SEM-B"], "reference_method": ["afm"] * 4,
+        "reference": [30.0, 90.0, 30.0, 90.0], "measured": [31.0, 91.0, 29.4, 88.2],
+        "fit_slope": [1.0, 1.0, 0.98, 0.98], "fit_offset_nm": [1.0, 1.0, 0.0, 0.0],
+    })  # fmt: skip
+    fig = health_charts.accuracy_figure(pairs)
+    a_pts, a_fit, b_pts, b_fit = fig.data
+    assert list(a_pts.y) == pytest.approx([1.0, 1.0]) and list(b_pts.y) == pytest.approx([-0.6, -1.8])
+    assert list(a_fit.y) == pytest.approx([1.0, 1.0]) and list(b_fit.y) == pytest.approx([-0.6, -1.8])
+    assert fig.layout.shapes[0].y0 == 0.0  # the zero line: no bias
