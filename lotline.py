@@ -31,6 +31,36 @@ def echo_json(obj) -> None:
     click.echo(json.dumps(obj, indent=2, default=str))
 
 
+def _check_chart_name(con, chart: str | None) -> None:
+    """A ``--chart`` filter must name a chart of the plan or of a stored series (a mistyped name would
+    otherwise print nothing, which reads as "no limits")."""
+    if not chart:
+        return
+    from warehouse.errors import ConfigError
+    from warehouse.plan import current_plan
+
+    stored = {r[0] for r in con.execute("SELECT DISTINCT chart FROM chart_series").fetchall()}
+    if chart in stored:  # also a chart since removed from the plan: its limit history stays
+        return
+    plan = current_plan(con)
+    if plan is None:
+        raise ConfigError("no monitoring plan is loaded", fix="run `lotline plan load PLAN.toml` first")
+    plan.entry(chart)  # the plan's own error: did you mean, and the charts it has
+
+
+def _split_text(split: dict | str | None) -> str:
+    """A series' split keys as ``key=value,...`` ("(pooled)" for a series not split)."""
+    if isinstance(split, str):
+        split = json.loads(split or "{}")
+    return ",".join(f"{k}={v}" for k, v in (split or {}).items()) or "(pooled)"
+
+
+def _lots_text(lots: list[str], limit: int = 10) -> str:
+    """Lots of an excursion for a one-line listing: the first ``limit``, then how many more."""
+    head = ",".join(lots[:limit])
+    return head + (f" (+{len(lots) - limit} more)" if len(lots) > limit else "")
+
+
 @click.group(context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(package_name="lotline")
 def cli():
@@ -711,6 +741,7 @@ def limits_show_cmd(db, chart, as_json: bool):
 
     try:
         with store.open_warehouse(store.resolve_db_path(db), read_only=True) as con:
+            _check_chart_name(con, chart)
             df = queries.series_info(con, chart=chart)
     except LotlineError as exc:
         fail(exc)
@@ -724,7 +755,9 @@ def limits_show_cmd(db, chart, as_json: bool):
             if r["limit_version"] is None
             else f"v{r['limit_version']} center {r['center']:.4g} sigma {r['sigma']:.4g} LCL {r['lcl']:.4g} UCL {r['ucl']:.4g}"
         )
-        click.echo(f"{r['series_id']:>6} {r['chart']} {r['layer']}/{r['parameter']} {r['split_json']}: {lim}")
+        click.echo(
+            f"{r['series_id']:>6} {r['chart']} {r['layer']}/{r['parameter']} {_split_text(r['split_json'])}: {lim}"
+        )
 
 
 @limits_group.command("history")
@@ -741,6 +774,7 @@ def limits_history_cmd(db, chart, as_json: bool):
 
     try:
         with store.open_warehouse(store.resolve_db_path(db), read_only=True) as con:
+            _check_chart_name(con, chart)
             df = queries.series_limits(con, chart=chart)
     except LotlineError as exc:
         fail(exc)
@@ -750,7 +784,7 @@ def limits_history_cmd(db, chart, as_json: bool):
         return
     for r in rows:
         click.echo(
-            f"{r['series_id']:>6} v{r['version']} {r['chart']} {r['split_json']}: center {r['center']:.4g} "
+            f"{r['series_id']:>6} v{r['version']} {r['chart']} {_split_text(r['split_json'])}: center {r['center']:.4g} "
             f"sigma {r['sigma']:.4g} ({r['sigma_source']}, n={r['baseline_n']}) frozen {r['frozen_at']:%Y-%m-%d %H:%M} "
             f"by {r['frozen_by']}: {r['reason']}"
         )
@@ -910,11 +944,11 @@ def excursions_list_cmd(db, open_only: bool, since, as_json: bool):
         echo_json(rows)
         return
     for r in rows:
-        split = ",".join(f"{k}={v}" for k, v in r["split"].items()) or "(pooled)"
+        split = _split_text(r["split"])
         click.echo(
             f"#{r['id']} {r['state']} {r['severity']} {r['chart']} {r['layer']}/{r['parameter']} {split} "
             f"rules {','.join(r['rules'])} {r['first_at']:%Y-%m-%d %H:%M}..{r['last_at']:%Y-%m-%d %H:%M} "
-            f"lots {','.join(r['lots'])}"
+            f"lots {_lots_text(r['lots'])}"
         )
     click.echo(MONITORING_CAUTION)
 

@@ -134,6 +134,26 @@ def test_limits_freeze_unknown_chart_suggests_the_name(db):
     assert 'the monitoring plan has no chart "m1-cdd"' in r.output and 'did you mean "m1-cd"?' in r.output
 
 
+def test_limits_show_and_history_of_an_unknown_chart_say_so_instead_of_printing_nothing(db):
+    CliRunner().invoke(cli, ["evaluate", "--db", str(db)])
+    for cmd in ("show", "history"):
+        r = CliRunner().invoke(cli, ["limits", cmd, "--chart", "m1-cdd", "--db", str(db)])
+        assert r.exit_code == 1, cmd
+        assert 'the monitoring plan has no chart "m1-cdd"' in r.output and 'did you mean "m1-cd"?' in r.output
+        ok = CliRunner().invoke(cli, ["limits", cmd, "--chart", "m1-cd", "--db", str(db)])
+        assert ok.exit_code == 0 and " m1-cd " in ok.output, ok.output
+        assert " metrology_tool=CDS-1: " in ok.output  # the split as text
+        assert '{"metrology_tool"' not in ok.output  # not as stored JSON
+
+
+def test_excursions_list_text_shows_ten_lots_and_how_many_more():
+    from lotline import _lots_text
+
+    lots = [f"L{i:02d}" for i in range(14)]
+    assert _lots_text(lots) == ",".join(lots[:10]) + " (+4 more)"
+    assert _lots_text(lots[:3]) == "L00,L01,L02"
+
+
 def test_every_monitoring_command_help_ends_with_an_example():
     for args in (
         ["plan", "load"],
