@@ -291,7 +291,8 @@ def rejects_cmd(db, path, limit: int, as_json: bool):
     for r in rows:
         where = f" {r['column']}" if r["column"] else ""
         val = f' "{r["value"]}"' if r["value"] is not None else ""
-        click.echo(f"{r['path']}:{r['line']}:{where}{val}: {r['reason']}")
+        detail = f":{where}{val}" if where or val else ""  # a whole-row reject names no column
+        click.echo(f"{r['path']}:{r['line']}{detail}: {r['reason']}")
 
 
 # --- spc commands ---

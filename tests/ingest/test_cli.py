@@ -47,6 +47,14 @@ def test_cli_ingest_rejected_rows_exit_1_and_rejects_lists_them(db, write):
     assert out.stdout.splitlines() == [f'{p}:2: Value_nm "-3": a length must be > 0']
 
 
+def test_cli_rejects_of_a_whole_row_name_file_and_line_without_an_empty_column(db, write):
+    row = long_row("S01")
+    p = write("d.csv", "\n".join([LONG_HEADER, row, row]) + "\n")
+    assert _run("ingest", p, "--db", db).exit_code == 1
+    (line,) = _run("rejects", "--db", db).stdout.splitlines()
+    assert line.startswith(f"{p}:3: duplicate natural key "), line  # not "...:3:: duplicate"
+
+
 def test_cli_ingest_failed_file_prints_error_on_stderr_and_exits_1(db, write):
     p = write("e.csv", b"")
     r = _run("ingest", p, "--db", db)
