@@ -163,9 +163,12 @@ def main() -> None:
                   key="excursion_signals")  # fmt: skip
     st.subheader("Audit history")
     # A static table: the trail is short, and every entry stays readable (and selectable) as text.
-    widgets.static_table(frames["history"], columns=["audit_id", "changed_at", "changed_by", "from_state", "to_state",
-                                                     "classification", "cause_category", "action", "comment",
-                                                     "lots_affected_json"])  # fmt: skip
+    history = frames["history"].with_columns(
+        pl.col("lots_affected_json").map_elements(widgets.json_list_text, return_dtype=pl.String).alias("lots affected")
+    )  # fmt: skip
+    widgets.static_table(history, columns=["audit_id", "changed_at", "changed_by", "from_state", "to_state",
+                                           "classification", "cause_category", "action", "comment",
+                                           "lots affected"])  # fmt: skip
     _form(detail, data.current_author(), frames["history"].height)
     widgets.caution("signals")
 

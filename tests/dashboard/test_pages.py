@@ -269,6 +269,9 @@ def test_excursions_page_disposition_is_stored_and_shown_in_history(fixture_db):
     shown = table_with(at, "audit_id", "to_state")
     assert shown["audit_id"].to_list() == hist["audit_id"].to_list()
     assert shown["comment"].to_list()[-1] == "SCAN02 dose check"
+    # the lots the disposition covers read as a list of lots, not as the stored JSON
+    assert shown["lots affected"].to_list()[-1] == ", ".join(json.loads(last["lots_affected_json"]))
+    assert "lots_affected_json" not in shown.columns
 
 
 def test_excursions_page_logged_in_user_is_the_author(fixture_db):
