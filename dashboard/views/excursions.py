@@ -113,8 +113,10 @@ def main() -> None:
         pl.col("excursion_id").map_elements(lambda v: widgets.page_url("excursions", excursion=v), return_dtype=pl.String)
         .alias("open")
     )  # fmt: skip
-    widgets.table(shown, columns=["excursion_id", "state", "severity", "chart", "layer", "parameter", "process_tool",
-                                  "chamber", "metrology_tool", "first_at", "last_at", "n_signals", "updated_at", "open"],
+    # the link first: the table is wider than the page, and a link in the last column was off screen
+    widgets.table(shown, columns=["open", "excursion_id", "state", "severity", "chart", "layer", "parameter",
+                                  "process_tool", "chamber", "metrology_tool", "first_at", "last_at", "n_signals",
+                                  "updated_at"],
                   key="excursion_list", open=st.column_config.LinkColumn("open", display_text="open"))  # fmt: skip
 
     raw = widgets.param("excursion")

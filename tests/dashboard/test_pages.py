@@ -226,6 +226,7 @@ def test_excursions_page_list_detail_and_history_equal_queries(fixture_db):
     at = run_page("excursions", state="all", excursion=str(xid))
     assert not at.exception
     listing = table_with(at, "excursion_id", "state", "n_signals")
+    assert listing.columns[:2] == ["open", "excursion_id"]  # the link is in view, not past the last column
     expected = query(fixture_db, "list_excursions")
     assert listing["excursion_id"].to_list() == expected["excursion_id"].to_list()
     assert listing["n_signals"].to_list() == expected["n_signals"].to_list()
