@@ -71,8 +71,9 @@ def main() -> None:
             pl.col("series_id").map_elements(lambda v: widgets.page_url("chart", series=v), return_dtype=pl.String)
             .alias("open chart"),
         )  # fmt: skip
-        cols = ["point_at", "lot_id", "wafer_id", "layer", "parameter", "process_tool", "chamber", "metrology_tool",
-                "rule", "value", "severity", "excursion_id", "first_detected_at", "open lot", "open chart"]  # fmt: skip
+        # the links first: the table is wider than the page
+        cols = ["open lot", "open chart", "point_at", "lot_id", "wafer_id", "layer", "parameter", "process_tool",
+                "chamber", "metrology_tool", "rule", "value", "severity", "excursion_id", "first_detected_at"]  # fmt: skip
         widgets.table(
             newest,
             columns=widgets.non_empty(newest, cols),

@@ -45,6 +45,7 @@ def test_overview_page_grid_and_newest_signals_equal_queries(fixture_db):
     for r in grid.iter_rows(named=True):
         assert cells[(r["tool"], r["layer"])] == str(r["signals"])
     newest = table_with(at, "rule", "lot_id", "severity")
+    assert newest.columns[:2] == ["open lot", "open chart"]  # the links in view
     expected = query(fixture_db, "newest_signals", limit=50, since=start)
     assert newest["lot_id"].to_list() == expected["lot_id"].to_list()
     assert newest["rule"].to_list() == expected["rule"].to_list()
