@@ -118,34 +118,41 @@ def run_demo(
 _SEVERITY_ORDER = {"critical": 0, "high": 1, "medium": 2, "low": 3}
 
 
+def _tool_of(r: dict) -> str:
+    return (
+        r.get("chamber")
+        and f"{r.get('process_tool')}/{r.get('chamber')}"
+        or r.get("process_tool")
+        or r.get("metrology_tool")
+        or "(all tools)"
+    )
+
+
 def _top_excursions(frame, n: int) -> list[dict]:
-    """The n open excursions an engineer should look at first: by severity, then by signal count."""
+    """The n open excursions an engineer should look at first: by severity, then by signal count, one per
+    chart and tool (the same series' other open excursions are counted on its line, not listed again)."""
     rows = list(frame.iter_rows(named=True))
     rows.sort(
         key=lambda r: (_SEVERITY_ORDER.get(r["severity"], 9), -(r["n_signals"] or 0), str(r["first_at"]))
     )
-    out = []
-    for r in rows[:n]:
-        tool = (
-            r.get("chamber")
-            and f"{r.get('process_tool')}/{r.get('chamber')}"
-            or r.get("process_tool")
-            or r.get("metrology_tool")
-            or "(all tools)"
-        )
-        out.append(
-            {
+    firsts: dict[tuple, dict] = {}
+    for r in rows:
+        key = (r["chart"], r["layer"], r["parameter"], _tool_of(r))
+        if key in firsts:
+            firsts[key]["more"] += 1
+        elif len(firsts) < n:
+            firsts[key] = {
                 "excursion_id": r["excursion_id"],
                 "severity": r["severity"],
                 "chart": r["chart"],
                 "layer": r["layer"],
                 "parameter": r["parameter"],
-                "tool": tool,
+                "tool": key[3],
                 "signals": r["n_signals"],
                 "first_at": str(r["first_at"]),
+                "more": 0,
             }
-        )
-    return out
+    return list(firsts.values())
 
 
 def render_summary(run: DemoRun) -> str:
@@ -174,7 +181,9 @@ def render_summary(run: DemoRun) -> str:
         for t in run.top:
             lines.append(
                 f"    #{t['excursion_id']:<5} {t['severity']:<8} {t['layer']} {t['parameter']} on {t['tool']}"
-                f" ({t['signals']} signals from {t['first_at'][:16]}; chart {t['chart']})"
+                f" ({t['signals']} signals from {t['first_at'][:16]}; chart {t['chart']}"
+                + (f"; {t['more']} more open on the same chart and tool" if t.get("more") else "")
+                + ")"
             )
     lines.append("  timings      " + ", ".join(f"{k} {v:.1f} s" for k, v in run.seconds.items()))
     lines.append("Signals advise; the fab's out-of-control action plan and a qualified engineer decide.")

@@ -50,6 +50,9 @@ def test_demo_summary_names_top_excursions_with_tool_and_layer(demo):
     first = lines.index("  look first at:")
     top = lines[first + 1 : first + 4]
     assert len(top) == 3 and all(" on " in t and "chart " in t for t in top)
+    # three different problems: one line per chart and tool, the rest of the same series counted on it
+    keys = [(t.split(" on ")[1].split(" (")[0], t.split("chart ")[1].split(";")[0].rstrip(")")) for t in top]
+    assert len(set(keys)) == 3, top
 
 
 @pytest.fixture(scope="module")
