@@ -281,6 +281,21 @@ baseline = { first = 20 }
 """
 
 
+def _inspection(i: int, area: float, count: int) -> dict:
+    """One wafer inspection of lot D<i> on INS-1, hourly from 2026-09-01."""
+    return dict(
+        lot_id=f"D{i:03d}",
+        wafer_id=f"D{i:03d}-01",
+        product="AX14",
+        layer="M1_ETCH_INSP",
+        inspection_tool="INS-1",
+        inspected_at=datetime(2026, 9, 1) + timedelta(hours=i),
+        inspected_area_cm2=area,
+        defect_count=count,
+        sample_kind="production",
+    )
+
+
 def test_evaluate_laney_u_centre_is_total_defects_over_total_area(tmp_path):
     path = tmp_path / "wh.duckdb"
     rng = np.random.default_rng(3)
@@ -290,19 +305,7 @@ def test_evaluate_laney_u_centre_is_total_defects_over_total_area(tmp_path):
         count = int(rng.negative_binomial(1.0, 1.0 / (1.0 + 0.1 * area)))
         if i == 25:
             count = 900
-        rows.append(
-            dict(
-                lot_id=f"D{i:03d}",
-                wafer_id=f"D{i:03d}-01",
-                product="AX14",
-                layer="M1_ETCH_INSP",
-                inspection_tool="INS-1",
-                inspected_at=datetime(2026, 9, 1) + timedelta(hours=i),
-                inspected_area_cm2=area,
-                defect_count=count,
-                sample_kind="production",
-            )
-        )
+        rows.append(_inspection(i, area, count))
     with store.open_warehouse(path, create=True) as con:
         store_plan(con, parse_plan(DEFECT_PLAN, path="p.toml"), user="t")
         insert_facts(con, schema.INSPECTIONS, rows)
@@ -324,17 +327,7 @@ def test_defect_density_chart_points_draw_a_negative_lower_limit_at_zero(tmp_pat
     path = tmp_path / "wh.duckdb"
     rng = np.random.default_rng(5)
     rows = [
-        dict(
-            lot_id=f"D{i:03d}",
-            wafer_id=f"D{i:03d}-01",
-            product="AX14",
-            layer="M1_ETCH_INSP",
-            inspection_tool="INS-1",
-            inspected_at=datetime(2026, 9, 1) + timedelta(hours=i),
-            inspected_area_cm2=area,
-            defect_count=int(rng.poisson(0.1 * area)),  # 5 to 30 expected defects: limits straddle 0
-            sample_kind="production",
-        )
+        _inspection(i, area, int(rng.poisson(0.1 * area)))  # 5 to 30 expected defects: limits straddle 0
         for i, area in enumerate(np.linspace(50.0, 300.0, 30)[rng.permutation(30)].tolist())
     ]
     with store.open_warehouse(path, create=True) as con:
