@@ -38,9 +38,9 @@ def _check_chart_name(con, chart: str | None) -> None:
         return
     from warehouse.errors import ConfigError
     from warehouse.plan import current_plan
+    from warehouse.queries import stored_chart_names
 
-    stored = {r[0] for r in con.execute("SELECT DISTINCT chart FROM chart_series").fetchall()}
-    if chart in stored:  # also a chart since removed from the plan: its limit history stays
+    if chart in stored_chart_names(con):  # also a chart since removed from the plan: its limit history stays
         return
     plan = current_plan(con)
     if plan is None:

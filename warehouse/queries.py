@@ -516,6 +516,12 @@ ORDER BY tool, s.layer
     return _frame(con, sql, [NOT_SPLIT, a, a, b, b])
 
 
+def stored_chart_names(con: Con) -> list[str]:
+    """Names of the charts (plan entries) that have stored series, charts since removed from the plan
+    included (their limit history stays), sorted."""
+    return [r[0] for r in con.execute("SELECT DISTINCT chart FROM chart_series ORDER BY chart").fetchall()]
+
+
 def series_plan(con: Con, *, series_id: int) -> pl.DataFrame:
     """The plan entry (in the plan in force) a series belongs to: what is charted and which rules apply.
 
