@@ -695,7 +695,7 @@ def plan_show_cmd(db, as_json: bool):
     """
     from warehouse import store
     from warehouse.errors import LotlineError
-    from warehouse.plan import current_plan, describe_plan
+    from warehouse.plan import DEFAULT_EXCURSION_GAP, current_plan, describe_plan
 
     try:
         with store.open_warehouse(store.resolve_db_path(db), read_only=True) as con:
@@ -717,6 +717,7 @@ def plan_show_cmd(db, as_json: bool):
             f"  {r['chart']}: {r['statistic']} of {sel['layer']}/{sel['parameter']} by "
             f"{','.join(r['split']) or '(pooled)'}; {r['chart_type']}; rules {','.join(r['rules'])} "
             f"(in-control ARL {arl['rules']}{extra}; combined ~{arl['combined']}); severity {r['severity']}"
+            + (f"; excursion gap {r['excursion_gap']}" if r["excursion_gap"] != DEFAULT_EXCURSION_GAP else "")
         )
 
 

@@ -18,7 +18,8 @@ One run is one unit of work (one transaction). Per plan entry:
    statistic and limit version; one no longer found is *withdrawn* (with the reason), never deleted, and
    its successor (e.g. the same point with an EWMA value changed by a late earlier point) is a new row.
 5. **Excursions**: new signals join the newest unclosed excursion of their series when at most
-   ``EXCURSION_GAP`` unsignalled points lie between them, else open a new one (see warehouse.excursions).
+   the plan entry's ``excursion_gap`` (default ``EXCURSION_GAP``) unsignalled points lie between them, else
+   open a new one (see warehouse.excursions).
 
 Signals advise; the fab's out-of-control action plan (OCAP) and qualified engineers decide.
 """
@@ -41,10 +42,11 @@ from warehouse import limits as lim_mod
 from warehouse import points as pts_mod
 from warehouse import schema, store
 from warehouse.errors import ConfigError
-from warehouse.plan import PlanEntry, current_plan, current_plan_version
+from warehouse.plan import DEFAULT_EXCURSION_GAP, PlanEntry, current_plan, current_plan_version
 
-EXCURSION_GAP = 2
-"""Unsignalled points allowed between two signals of one excursion."""
+EXCURSION_GAP = DEFAULT_EXCURSION_GAP
+"""Unsignalled points allowed between two signals of one excursion, where the plan entry sets no
+``excursion_gap``."""
 WITHDRAWN_SUPERSEDED = "point's data superseded or moved (corrected re-export or new process history)"
 WITHDRAWN_CHANGED = "point's value changed (corrected re-export)"
 WITHDRAWN_CHART_REMOVED = "chart removed from the monitoring plan"
@@ -162,8 +164,14 @@ def evaluate_connection(con, *, full: bool = False, user: str = "unknown") -> Ru
     _flush(ctx)
     from warehouse import excursions
 
+    gaps = {e.name: e.excursion_gap for e in plan.entries}
     s.excursions_opened = excursions.group_signals(
-        con, series_ids=sorted(ctx.touched), now=started, any_withdrawn=s.signals_withdrawn > 0
+        con,
+        series_ids=sorted(ctx.touched),
+        now=started,
+        gap=EXCURSION_GAP,
+        gaps={sid: gaps[chart] for (chart, *_), sid in ctx.series.items() if chart in gaps},
+        any_withdrawn=s.signals_withdrawn > 0,
     )
     s.series = len(ctx.touched)
     run_id = con.execute("SELECT nextval('run_id_seq')").fetchall()[0][0]

@@ -62,9 +62,19 @@ def _audit(
 
 
 def group_signals(
-    con, *, series_ids: list[int], now: datetime, gap: int = 2, any_withdrawn: bool = True
+    con,
+    *,
+    series_ids: list[int],
+    now: datetime,
+    gap: int = 2,
+    gaps: dict[int, int] | None = None,
+    any_withdrawn: bool = True,
 ) -> int:
-    """Assign unassigned standing signals of the series to excursions; refresh aggregates; return opened."""
+    """Assign unassigned standing signals of the series to excursions; refresh aggregates; return opened.
+
+    A signal joins its series' newest unclosed excursion when at most ``gaps[series]`` (else ``gap``)
+    unsignalled points lie between them (the plan entry's ``excursion_gap``), else opens a new one.
+    """
     if not series_ids:
         return 0
     import polars as pl
@@ -95,7 +105,7 @@ def group_signals(
         new_rows: list[tuple[int, int]] = []  # (placeholder id, series) of excursions to open
         for signal_id, sid, seq in todo:
             cur = latest.get(sid)
-            if cur is None or seq - cur[1] > gap + 1:
+            if cur is None or seq - cur[1] > (gaps or {}).get(sid, gap) + 1:
                 new_rows.append((-(len(new_rows) + 1), sid))
                 cur = (new_rows[-1][0], seq)
             latest[sid] = (cur[0], max(cur[1], seq))

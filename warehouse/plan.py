@@ -21,6 +21,7 @@ Format (our own; every key is documented in ``ENTRY_KEYS`` and ``CHART_PARAMS``)
     rules = ["we1", "we2"]                   # run rules on the points (rule 1 only unless opted in)
     baseline = { first = 25 }                # or { from = 2026-09-01, to = 2026-09-15 }
     severity = "high"                        # low, medium, high, critical
+    excursion_gap = 2                        # unsignalled points allowed inside one excursion
 
 Wildcards in selectors: ``*`` (any run of characters) and ``?`` (one character). One entry expands to one
 series per concrete layer, parameter and combination of split values found in the data, so new tools and
@@ -89,11 +90,15 @@ ENTRY_KEYS = (
     "baseline",
     "severity",
     "spec_check",
+    "excursion_gap",
 )
 SELECT_KEYS = ("layer", "parameter", "product", "stage", "sample_kind")
 TOP_KEYS = ("plan", "defaults", "chart")
 PLAN_KEYS = ("name", "description")
-DEFAULT_KEYS = ("severity", "rules", "baseline", "sample_kind", "spec_check")
+DEFAULT_KEYS = ("severity", "rules", "baseline", "sample_kind", "spec_check", "excursion_gap")
+DEFAULT_EXCURSION_GAP = 2
+"""Unsignalled points allowed between two signals of one excursion, unless the plan says otherwise."""
+MAX_EXCURSION_GAP = 1000
 BASELINE_KEYS = ("first", "from", "to")
 STAGES = ("develop", "etch", "*")
 
@@ -119,6 +124,8 @@ class PlanEntry:
     spec_check: bool
     line: int
     description: str = ""
+    excursion_gap: int = DEFAULT_EXCURSION_GAP
+    """Unsignalled points allowed between two signals of one excursion (warehouse.excursions)."""
 
     @property
     def is_defect(self) -> bool:
@@ -313,6 +320,16 @@ def _check_common(c: _Checker, table: dict, where: tuple) -> None:
         )
     if "sample_kind" in table:
         c.string(table["sample_kind"], (*where, "sample_kind"), "sample_kind")
+    if "excursion_gap" in table:
+        gap = table["excursion_gap"]
+        if isinstance(gap, bool) or not isinstance(gap, int) or not 0 <= gap <= MAX_EXCURSION_GAP:
+            c.err(
+                (*where, "excursion_gap"),
+                "excursion_gap must be a whole number of points",
+                found=gap,
+                expected=f"an integer from 0 to {MAX_EXCURSION_GAP}",
+                fix="give the unsignalled points allowed inside one excursion, e.g. excursion_gap = 10",
+            )
 
 
 def _known_rules() -> tuple[str, ...]:
@@ -553,6 +570,9 @@ def _build(text: str, path: str) -> Plan:
                 ),
                 line=loc.key(("chart", i))[0],
                 description=e.get("description", ""),
+                excursion_gap=int(
+                    e.get("excursion_gap", defaults.get("excursion_gap", DEFAULT_EXCURSION_GAP))
+                ),
             )
         )
     name = doc.get("plan", {}).get("name", Path(path).stem)
@@ -681,6 +701,7 @@ def describe_plan(plan: Plan) -> list[dict[str, Any]]:
                 "baseline": e.baseline,
                 "severity": e.severity,
                 "spec_check": e.spec_check,
+                "excursion_gap": e.excursion_gap,
                 "in_control_arl": in_control_arl(e),
             }
         )

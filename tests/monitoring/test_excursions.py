@@ -132,3 +132,22 @@ def test_signals_of_appended_points_group_as_in_one_run(tmp_path):
     # the first burst's excursion went on in the second run: its lots span both loads
     assert any('"L0031"' in r[6] and '"L0033"' in r[6] for r in got)
     assert any(r[6].startswith('["L0050"') for r in got)
+
+
+@pytest.mark.parametrize("gap", [0, 2, 20])
+def test_excursion_gap_of_the_plan_entry_sets_how_far_apart_signals_still_share_an_excursion(tmp_path, gap):
+    # the grouping rule (issue 4): a signal joins its series' open excursion when at most `gap` unsignalled
+    # points lie between them; counted here from the stored signals' point numbers
+    path = tmp_path / "wh.duckdb"
+    with store.open_warehouse(path, create=True) as con:
+        store_plan(con, parse_plan(PLAN + f"excursion_gap = {gap}\n", path="plan.toml"), user="t")
+    _with_two_bursts(path)
+    with store.open_warehouse(path, read_only=True) as con:
+        seqs = sorted(
+            {r[0] for r in con.execute("SELECT point_seq FROM signals WHERE withdrawn_at IS NULL").fetchall()}
+        )
+        n_exc = queries.list_excursions(con).height
+    expected = 1 + sum(1 for a, b in zip(seqs, seqs[1:], strict=False) if b - a > gap + 1)
+    assert n_exc == expected
+    if gap == 20:  # the two bursts (lots 30-31 and lot 50) are 18 unsignalled points apart: one excursion
+        assert n_exc == 1

@@ -30,7 +30,7 @@ CASES = [
         "unknown_entry_key",
         H + 'statistic = "wafer_mean"\nchart = "ewma"\nsplt = ["chamber"]\n',
         'plan.toml:6:1: chart "m1" has no key "splt".\n  Fix: did you mean "split"? Known keys: name, description, '
-        "select, statistic, split, step, chart, params, rules, baseline, severity, spec_check.",
+        "select, statistic, split, step, chart, params, rules, baseline, severity, spec_check, excursion_gap.",
     ),
     (
         "missing_chart_type",
@@ -116,6 +116,12 @@ CASES = [
         '  Fix: did you mean "develop"? Use one of the listed values.',
     ),
     (
+        "excursion_gap_not_a_count",
+        H + 'statistic = "wafer_mean"\nchart = "ewma"\nexcursion_gap = 2.5\n',
+        "plan.toml:6:17: excursion_gap must be a whole number of points (found 2.5, expected an integer from 0 "
+        "to 1000).\n  Fix: give the unsignalled points allowed inside one excursion, e.g. excursion_gap = 10.",
+    ),
+    (
         "name_not_a_string",
         '[[chart]]\nname = 7\nselect = { layer = "M1_DEV", parameter = "cd_mid" }\nstatistic = "wafer_mean"\nchart = "ewma"\n',
         "plan.toml:2:8: chart name must be a string (found 7, expected a quoted string).",
@@ -158,6 +164,15 @@ def test_parse_plan_defaults_table_applies_to_entries_that_omit_the_key():
     )
     e = parse_plan(text, path="p.toml").entries[0]
     assert e.severity == "high" and e.rules == ("we1", "we4")
+
+
+def test_parse_plan_excursion_gap_defaults_to_two_points_and_is_set_per_entry_or_in_defaults():
+    plain = parse_plan(H + 'statistic = "wafer_mean"\nchart = "ewma"\n', path="p.toml").entries[0]
+    assert plain.excursion_gap == 2  # the grouping of earlier versions
+    own = H + 'statistic = "wafer_mean"\nchart = "ewma"\nexcursion_gap = 12\n'
+    assert parse_plan(own, path="p.toml").entries[0].excursion_gap == 12
+    text = "[defaults]\nexcursion_gap = 0\n\n" + H + 'statistic = "wafer_mean"\nchart = "ewma"\n'
+    assert parse_plan(text, path="p.toml").entries[0].excursion_gap == 0
 
 
 def test_describe_plan_shows_published_in_control_arl():
