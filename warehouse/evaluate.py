@@ -953,7 +953,7 @@ FROM evaluation_runs r ORDER BY r.run_id DESC LIMIT 1""",
     if e.statistic == "lot_mean" or (e.statistic == "defect_density" and e.parameter != "total"):
         pts = pts.with_columns(pl.col("n").cast(pl.Int128))  # the facts query sums counts (HUGEINT)
     if e.is_defect:  # rows written before 2026-12-02 hold a negative lcl: read it as written now
-        pts = pts.with_columns(pl.when(pl.col("lcl") < 0).then(0.0).otherwise(pl.col("lcl")).alias("lcl"))
+        pts = pts.with_columns(lim_mod.defect_floor(e, pl.col("lcl")).alias("lcl"))
     return pts
 
 

@@ -103,9 +103,10 @@ def group_signals(
         )
         assign: list[tuple[int, int]] = []
         new_rows: list[tuple[int, int]] = []  # (placeholder id, series) of excursions to open
+        gaps = gaps or {}
         for signal_id, sid, seq in todo:
             cur = latest.get(sid)
-            if cur is None or seq - cur[1] > (gaps or {}).get(sid, gap) + 1:
+            if cur is None or seq - cur[1] > gaps.get(sid, gap) + 1:
                 new_rows.append((-(len(new_rows) + 1), sid))
                 cur = (new_rows[-1][0], seq)
             latest[sid] = (cur[0], max(cur[1], seq))

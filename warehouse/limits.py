@@ -158,10 +158,15 @@ def point_limits(e: PlanEntry, k: float | pl.Expr) -> tuple[pl.Expr, pl.Expr]:
     Statistical Quality Control, ch. 7, from memory). The rules test z-scores, so no signal changes.
     """
     k = k if isinstance(k, pl.Expr) else pl.lit(float(k))
-    lcl = pl.col("center") - k * pl.col("sigma")
-    if e.statistic in DEFECT_STATISTICS:
-        lcl = pl.when(lcl < 0).then(0.0).otherwise(lcl)
+    lcl = defect_floor(e, pl.col("center") - k * pl.col("sigma"))
     return lcl.alias("lcl"), (pl.col("center") + k * pl.col("sigma")).alias("ucl")
+
+
+def defect_floor(e: PlanEntry, lcl: pl.Expr) -> pl.Expr:
+    """``lcl``, raised to 0 where it is negative on a defect-density chart (see :func:`point_limits`)."""
+    if e.statistic not in DEFECT_STATISTICS:
+        return lcl
+    return pl.when(lcl < 0).then(0.0).otherwise(lcl)
 
 
 def insert_version(con, series_id: int, lim: dict, *, user: str, reason: str) -> int:
