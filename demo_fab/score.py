@@ -7,9 +7,10 @@ points. A fault that is missed stays in the table as missed.
 How a fault is matched, by kind (the kinds of ``demo_fab.faults``):
 
 - excursion faults (chamber shift, slow drift, bake-plate edge, metrology offset, defect burst): an
-  excursion matches when its lots overlap the fault's affected lots, its parameter is the fault's (for
-  defect faults: its layer is), and its first point is inside the fault window. Detection time is the
-  earliest matching excursion's first point. Attributed: a matching excursion's series is split by the
+  excursion matches when one of its standing signals is on an affected lot with its point inside the fault
+  window (from an hour before the start to a day after the end), and its parameter is the fault's (for
+  defect faults: its layer is). Detection time is the earliest such signal of any matching excursion (an
+  excursion already open on the series when the fault began counts from that signal, not from its start). Attributed: a matching excursion's series is split by the
   responsible tool/chamber, or else the drill-down's commonality (``warehouse.drilldown``) ranks it first; for a
   metrology fault, only excursions whose signalled points that tool measured match,
   and attribution means the series' metrology tool is the responsible one or the process-or-metrology check
@@ -152,9 +153,12 @@ def _score_excursion_fault(con, f, row, exc, start, stop, resp) -> tuple[dict, s
         row["how"] = "no excursions in the warehouse"
         return row, set()
     fault_lots = set(f.get("lots") or [])
-    cand = _lots(exc).filter(
-        (pl.col("first_at") >= start - timedelta(hours=1)) & (pl.col("first_at") <= stop + timedelta(days=1))
+    # an excursion matches from its first signal on an affected lot inside the window: one that was already
+    # open on the series when the fault began (a wide excursion_gap) counts from that signal, not its start
+    hits = queries.first_signal_on_lots(
+        con, lot_ids=sorted(fault_lots), start=start - timedelta(hours=1), end=stop + timedelta(days=1)
     )
+    cand = _lots(exc).join(hits, on="excursion_id", how="inner")
     param = f.get("parameter")
     if param in DEFECT_PARAMETERS:
         cand = cand.filter(pl.col("layer") == f["layer"])
@@ -168,15 +172,14 @@ def _score_excursion_fault(con, f, row, exc, start, stop, resp) -> tuple[dict, s
         # that tool measured (on any chart: an offset also trips the process charts it feeds).
         tools = queries.excursion_point_tools(con).filter(pl.col("metrology_tool") == mtool)
         cand = cand.filter(pl.col("excursion_id").is_in(tools["excursion_id"].to_list()))
-    cand = cand.filter(pl.col("lots").list.eval(pl.element().is_in(sorted(fault_lots))).list.any())
     if not cand.height:
         row["how"] = "no excursion on the fault's lots in its window"
         return row, set()
     ids = set(cand["excursion_id"].to_list())
-    first = cand.sort("first_at").row(0, named=True)
+    first = cand.sort("first_hit_at", "excursion_id").row(0, named=True)
     row["detected"] = True
-    row["delay_hours"] = round((first["first_at"] - start).total_seconds() / 3600.0, 1)
-    row["delay_lots"] = _lots_before(con, f, first["first_at"], start)
+    row["delay_hours"] = round((first["first_hit_at"] - start).total_seconds() / 3600.0, 1)
+    row["delay_lots"] = _lots_before(con, f, first["first_hit_at"], start)
     attributed, how = _attribution(con, cand, resp)
     row["attributed"] = attributed
     row["how"] = f"excursion #{first['excursion_id']} on {first['chart']}; {how}"
@@ -193,7 +196,7 @@ def _lots_before(con, f: dict, detected_at: datetime, start: datetime) -> int:
 
 def _attribution(con, cand: pl.DataFrame, resp: dict) -> tuple[bool, str]:
     tool, chamber, mtool = resp.get("process_tool"), resp.get("chamber"), resp.get("metrology_tool")
-    for r in cand.sort("first_at").iter_rows(named=True):
+    for r in cand.sort("first_hit_at", "excursion_id").iter_rows(named=True):
         if mtool and r.get("metrology_tool") == mtool:
             return True, f"series split by metrology tool {mtool}"
         if (
@@ -203,7 +206,7 @@ def _attribution(con, cand: pl.DataFrame, resp: dict) -> tuple[bool, str]:
         ):
             if chamber is None or r.get("chamber") == chamber:
                 return True, f"series split by {tool}/{chamber}" if chamber else f"series split by {tool}"
-    first = cand.sort("first_at").row(0, named=True)
+    first = cand.sort("first_hit_at", "excursion_id").row(0, named=True)
     try:
         ex = explain_excursion(con, int(first["excursion_id"]))
     except LotlineError as exc:

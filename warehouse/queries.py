@@ -654,6 +654,24 @@ ORDER BY inspection_tool, inspected_at
     return _frame(con, sql, [inspection_tool, inspection_tool])
 
 
+def first_signal_on_lots(con: Con, *, lot_ids: list[str], start: datetime, end: datetime) -> pl.DataFrame:
+    """Per excursion, its first standing signal on one of ``lot_ids`` with a point time in [start, end).
+
+    An excursion that began before ``start`` counts from its first signal inside the window (a later
+    shift can join an excursion already open on its series).
+
+    Columns: excursion_id, first_hit_at.
+    """
+    sql = """
+SELECT g.excursion_id, min(g.point_at) AS first_hit_at
+FROM signals g
+WHERE g.excursion_id IS NOT NULL AND g.withdrawn_at IS NULL AND g.point_at >= ? AND g.point_at < ?
+  AND g.lot_id IN (SELECT unnest(?::VARCHAR[]))
+GROUP BY g.excursion_id ORDER BY g.excursion_id
+"""
+    return _frame(con, sql, [start, end, list(lot_ids)])
+
+
 def excursion_point_tools(con: Con) -> pl.DataFrame:
     """The metrology tools that measured the signalled points of every excursion on a measurement chart.
 

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from datetime import datetime
+from datetime import datetime, timedelta
 
 import pytest
 
@@ -151,3 +151,26 @@ def test_excursion_gap_of_the_plan_entry_sets_how_far_apart_signals_still_share_
     assert n_exc == expected
     if gap == 20:  # the two bursts (lots 30-31 and lot 50) are 18 unsignalled points apart: one excursion
         assert n_exc == 1
+
+
+def test_first_signal_on_lots_counts_an_excursion_from_its_first_signal_on_those_lots(tmp_path):
+    # with a wide gap the burst at lot 50 joins the excursion opened at lot 30; asked about lot 50, the
+    # excursion counts from lot 50's point, not from its own first point
+    path = tmp_path / "wh.duckdb"
+    with store.open_warehouse(path, create=True) as con:
+        store_plan(con, parse_plan(PLAN + "excursion_gap = 20\n", path="plan.toml"), user="t")
+    _with_two_bursts(path)
+    with store.open_warehouse(path, read_only=True) as con:
+        (exc,) = queries.list_excursions(con).iter_rows(named=True)
+        lot50 = con.execute("SELECT min(measured_at) FROM measurements WHERE lot_id = 'L0050'").fetchall()[0][
+            0
+        ]
+        hits = queries.first_signal_on_lots(
+            con, lot_ids=["L0050"], start=datetime(2026, 9, 1), end=datetime(2026, 10, 1)
+        )
+        none = queries.first_signal_on_lots(
+            con, lot_ids=["L0050"], start=lot50 + timedelta(hours=1), end=datetime(2026, 10, 1)
+        )
+    assert exc["first_at"] < lot50
+    assert hits.rows() == [(exc["excursion_id"], lot50)]  # a wafer mean's time is its first site's
+    assert none.height == 0
