@@ -31,9 +31,10 @@ def main() -> None:
     )
 
     st.subheader("Ingest log")
+    # the message beside the status: a failed file's reason was past the right edge of the table
     widgets.table(frames["log"], key="ingest_log",
-                  columns=["file_id", "loaded_at", "status", "path", "kind", "profile", "rows_loaded", "rows_rejected",
-                           "rows_skipped", "rows_superseded", "loaded_by", "message", "size_bytes", "sha256"])  # fmt: skip
+                  columns=["file_id", "loaded_at", "status", "message", "path", "kind", "profile", "rows_loaded",
+                           "rows_rejected", "rows_skipped", "rows_superseded", "loaded_by", "size_bytes", "sha256"])  # fmt: skip
 
     st.subheader("Rejected rows" + (f" of file {file_id}" if file_id is not None else ""))
     st.caption("Each row says where it was (file, line, column), what was found and how to fix it.")

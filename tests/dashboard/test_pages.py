@@ -309,6 +309,7 @@ def test_health_page_rejects_log_and_superseded_equal_queries(fixture_db):
     assert not at.exception
     log = table_with(at, "file_id", "status", "rows_loaded")
     assert log["file_id"].to_list() == query(fixture_db, "ingest_log")["file_id"].to_list() == [3, 2, 1]
+    assert log.columns[2:4] == ["status", "message"]  # a failed file's reason in view, beside its status
     rej = table_with(at, "line", "reason")
     assert rej.height == fx.N_REJECTS
     assert rej["reason"].to_list() == query(fixture_db, "rejects")["reason"].to_list()
