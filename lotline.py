@@ -50,9 +50,9 @@ def _check_chart_name(con, chart: str | None) -> None:
 
 def _split_text(split: dict | str | None) -> str:
     """A series' split keys as ``key=value,...`` ("(pooled)" for a series not split)."""
-    if isinstance(split, str):
-        split = json.loads(split or "{}")
-    return ",".join(f"{k}={v}" for k, v in (split or {}).items()) or "(pooled)"
+    from warehouse.points import split_text
+
+    return split_text(split) or "(pooled)"
 
 
 def _lots_text(lots: list[str], limit: int = 10) -> str:

@@ -90,7 +90,7 @@ def _normal(a: str, b: str) -> str:
 
 
 def build(path: Path, rows: int, days: int) -> dict:
-    """Create the warehouse with days 1..D-1 loaded; return sizes (day D is loaded by ``load_last_day``)."""
+    """Create the warehouse with days 1..D-1 loaded; return sizes (day D is loaded by ``load_day``)."""
     from warehouse import store
     from warehouse.plan import parse_plan, store_plan
 
@@ -109,15 +109,16 @@ def build(path: Path, rows: int, days: int) -> dict:
     return {"lots": n_lots, "rows_before_last_day": int(n)}
 
 
-def load_last_day(path: Path, rows: int, days: int) -> int:
-    """Append day D (its measurement and history files); return the rows added."""
+def load_day(path: Path, rows: int, days: int, day: int, *, max_lots: int | None = None) -> int:
+    """Append day ``day`` (0-based; its measurement and history files), at most ``max_lots`` of its lots;
+    return the rows added."""
     from warehouse import store
 
     n_lots = max(rows // ROWS_PER_LOT, days * 4)
     with store.open_warehouse(path) as con:
         before = con.execute("SELECT count(*) FROM measurements").fetchall()[0][0]
         with store.transaction(con):
-            _insert_days(con, n_lots, days, [days - 1])
+            _insert_days(con, n_lots, days, [day], max_lots=max_lots)
             store.bump_data_version(con)
         after = con.execute("SELECT count(*) FROM measurements").fetchall()[0][0]
     return int(after - before)
@@ -164,20 +165,6 @@ def tool_counts(n_lots: int, days: int) -> tuple[int, int]:
 SMALL_ARRIVAL_LOTS = 40
 """Lots of the small arrival measured after the full run: a typical day of one layer (25-55 lots, the
 domain notes), far less than the bench's day. Its time is the per-run floor of an incremental evaluation."""
-
-
-def load_small_arrival(path: Path, rows: int, days: int, lots: int = SMALL_ARRIVAL_LOTS) -> int:
-    """Append the first ``lots`` lots of day D+1 (their measurement and history files); return the rows added."""
-    from warehouse import store
-
-    n_lots = max(rows // ROWS_PER_LOT, days * 4)
-    with store.open_warehouse(path) as con:
-        before = con.execute("SELECT count(*) FROM measurements").fetchall()[0][0]
-        with store.transaction(con):
-            _insert_days(con, n_lots, days, [days], max_lots=lots)
-            store.bump_data_version(con)
-        after = con.execute("SELECT count(*) FROM measurements").fetchall()[0][0]
-    return int(after - before)
 
 
 def _insert_days(con, n_lots: int, days: int, day_list, *, max_lots: int | None = None) -> None:
@@ -261,10 +248,10 @@ def run(size: int, *, days: int = 60) -> list[dict]:
     info = build(path, size, days)
     build_s = time.perf_counter() - t0
     first = _evaluate_child(path, "incremental")
-    added = load_last_day(path, size, days)
+    added = load_day(path, size, days, days - 1)
     inc = _evaluate_child(path, "incremental")
     full = _evaluate_child(path, "full")
-    small_rows = load_small_arrival(path, size, days)
+    small_rows = load_day(path, size, days, days, max_lots=SMALL_ARRIVAL_LOTS)  # the first lots of day D+1
     small = _evaluate_child(path, "incremental")
     ratio = inc["seconds"] / full["seconds"] if full["seconds"] else None
     common = {

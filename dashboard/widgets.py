@@ -16,6 +16,8 @@ from urllib.parse import urlencode
 import polars as pl
 import streamlit as st
 
+from warehouse.points import split_text
+
 PAGES = {
     "overview": "views/overview.py",
     "chart": "views/chart.py",
@@ -129,12 +131,8 @@ def text_param(label: str, *, key: str, placeholder: str = "", container: Any = 
 
 def series_label(row: dict) -> str:
     """A series as engineers read it: layer · parameter · split keys (``key=value``, sorted)."""
-    try:
-        split = json.loads(row["split_json"] or "{}")
-    except ValueError:
-        split = {}
-    parts = [f"{k}={v}" for k, v in sorted(split.items())]
-    return f"{row['layer']} · {row['parameter']}" + (f" · {', '.join(parts)}" if parts else "")
+    split = split_text(row["split_json"], sep=", ")
+    return f"{row['layer']} · {row['parameter']}" + (f" · {split}" if split else "")
 
 
 def json_list_text(text: str | None) -> str:

@@ -10,10 +10,10 @@ How a fault is matched, by kind (the kinds of ``demo_fab.faults``):
   excursion matches when one of its standing signals is on an affected lot with its point inside the fault
   window (from an hour before the start to a day after the end), and its parameter is the fault's (for
   defect faults: its layer is). Detection time is the earliest such signal of any matching excursion (an
-  excursion already open on the series when the fault began counts from that signal, not from its start). Attributed: a matching excursion's series is split by the
-  responsible tool/chamber, or else the drill-down's commonality (``warehouse.drilldown``) ranks it first; for a
-  metrology fault, only excursions whose signalled points that tool measured match,
-  and attribution means the series' metrology tool is the responsible one or the process-or-metrology check
+  excursion already open on the series when the fault began counts from that signal, not from its
+  start). Attributed: a matching excursion's series is split by the responsible tool/chamber, or else the
+  drill-down's commonality (``warehouse.drilldown``) ranks it first; for a metrology fault, only
+  excursions whose signalled points that tool measured match, and attribution means the series' metrology tool is the responsible one or the process-or-metrology check
   says "likely metrology".
 - scratch: the defect-cluster finder (``spc.spatial``) finds a scratch on the affected wafer.
 - tool stops reporting: the data-freshness query flags the tool as stale at the end of the data.

@@ -74,6 +74,17 @@ def split_json(e: PlanEntry, row: dict) -> str:
     return json.dumps({k: row[k] for k in sorted(e.split)}, sort_keys=True)
 
 
+def split_text(split: dict | str | None, sep: str = ",") -> str:
+    """A series' split values as people read them: ``key=value`` joined by ``sep``, keys sorted; "" when
+    the series is not split. ``split`` is the dict or its stored JSON (:func:`split_json`)."""
+    if isinstance(split, str):
+        try:
+            split = json.loads(split or "{}")
+        except ValueError:
+            split = {}
+    return sep.join(f"{k}={v}" for k, v in sorted((split or {}).items()))
+
+
 def _rows_pred(alias: str, scope: str) -> str:
     if scope == "current":
         return f"{alias}._superseded_by IS NULL"
