@@ -13,7 +13,12 @@ Steps, each evaluation in its own process so that its peak RSS is its own:
 2. day D loaded, **incremental** evaluation (timed);
 3. ``--full`` evaluation of the same warehouse, every series from its first point (timed, the baseline);
 4. informative: the first 40 lots of day D+1 loaded (a typical fab day of one layer), incremental
-   evaluation (timed): the per-run floor, what any incremental run costs however little arrived.
+   evaluation (timed): the per-run floor, what any incremental run costs however little arrived;
+5. informative: the **I/O floor** of step 2, on a copy of the warehouse as step 2 found it: only what any
+   evaluation of that day must do besides the SPC work (open the file, read what changed, read each plan
+   entry's points of the changed lots on two threads as the evaluation does, write them, commit, close).
+   No chart, rule, state, signal or excursion is computed; the time is a lower bound for step 2 under
+   the design's rule that no connection outlives a unit of work.
 
 Each time is the whole unit of work a user waits for: opening the file, the evaluation, its commit and the
 checkpoint on close (``evaluate.evaluate_warehouse``). The time inside the transaction alone (the run
@@ -27,6 +32,7 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import os
 import shutil
 import subprocess
 import sys
@@ -230,10 +236,84 @@ print(json.dumps({**d, "seconds": sec, "peak_rss_mb": rss}))
 """
 
 
+_FLOOR_CHILD = """
+import json, sys, time
+from bench.bench_evaluate import io_floor
+from warehouse import evaluate  # imports what io_floor uses, as the evaluation child does before its clock
+t = time.perf_counter()
+steps = io_floor(sys.argv[1])
+print(json.dumps({"seconds": time.perf_counter() - t, "steps": steps}))
+"""
+
+
+def io_floor(path) -> dict:
+    """Do what an incremental run of the warehouse at ``path`` must do besides the SPC work; return the
+    milliseconds of each step (see the module docstring, step 5). Writes a table ``bench_floor_points``."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    import polars as pl
+
+    from warehouse import points as pts_mod
+    from warehouse import store
+    from warehouse.plan import current_plan
+
+    ms: dict[str, float] = {}
+    t = time.perf_counter()
+
+    def lap(name: str) -> None:
+        nonlocal t
+        now = time.perf_counter()
+        ms[name] = round(1e3 * (now - t), 1)
+        t = now
+
+    with store.open_warehouse(path) as con:
+        lap("open")
+        with store.transaction(con):
+            plan = current_plan(con)
+            wm = con.execute("SELECT max(watermark_file_id) FROM evaluation_runs").fetchall()[0][0]
+            changes = pts_mod.read_changes(con, watermark=wm)
+            pts_mod.update_lot_index(con)
+            lap("changes")
+
+            def read(e):
+                lots, _ = pts_mod.changed_lots(e, changes)
+                first = lots["first_file_id"].drop_nulls()
+                cur = con.cursor()
+                try:
+                    kw = {"dirty_lots": lots.select("lot_id"), "min_file_id": int(first.min() or wm + 1)}
+                    pts = pts_mod.read_points(cur, e, **kw)
+                finally:
+                    cur.close()
+                return pts.select(
+                    "point_key", "lot_id", "wafer_id", "point_at", "value", pl.col("n").cast(pl.Int64)
+                )
+
+            with ThreadPoolExecutor(max_workers=2) as pool:
+                frames = list(pool.map(read, plan.entries))
+            lap("points reads")
+            con.register("floor_points", pts_mod.ArrowSource(pl.concat(frames)))
+            con.execute("CREATE TABLE bench_floor_points AS SELECT * FROM floor_points")
+            con.unregister("floor_points")
+            lap("points write")
+        lap("commit")
+    lap("close")
+    return ms
+
+
 def _evaluate_child(path: Path, mode: str) -> dict:
     root = Path(__file__).resolve().parents[1]
     out = subprocess.run(
         [sys.executable, "-c", _CHILD, str(path), mode], cwd=root, capture_output=True, text=True
+    )
+    if out.returncode:
+        raise RuntimeError(out.stderr)
+    return json.loads(out.stdout.strip().splitlines()[-1])
+
+
+def _floor_child(path: Path) -> dict:
+    root = Path(__file__).resolve().parents[1]
+    out = subprocess.run(
+        [sys.executable, "-c", _FLOOR_CHILD, str(path)], cwd=root, capture_output=True, text=True
     )
     if out.returncode:
         raise RuntimeError(out.stderr)
@@ -249,7 +329,14 @@ def run(size: int, *, days: int = 60) -> list[dict]:
     build_s = time.perf_counter() - t0
     first = _evaluate_child(path, "incremental")
     added = load_day(path, size, days, days - 1)
+    floor_path = OUT / f"evaluate_{size}_floor.duckdb"
+    shutil.copy(path, floor_path)  # the warehouse as the incremental run finds it (closed: no WAL)
+    # on disk now, or the floor's closing checkpoint would wait for the copy's pages to be written
+    with open(floor_path, "rb+") as f:
+        os.fsync(f.fileno())
     inc = _evaluate_child(path, "incremental")
+    floor = _floor_child(floor_path)
+    floor_path.unlink()
     full = _evaluate_child(path, "full")
     small_rows = load_day(path, size, days, days, max_lots=SMALL_ARRIVAL_LOTS)  # the first lots of day D+1
     small = _evaluate_child(path, "incremental")
@@ -291,6 +378,18 @@ def run(size: int, *, days: int = 60) -> list[dict]:
             "in_transaction_seconds": round(small["in_transaction_seconds"], 3),
             "incremental_points": small["points"],
             "arrival_rows": small_rows,
+        },
+        {
+            # informative: the part of the one-day run that no SPC change can remove (step 5)
+            **common,
+            "name": "evaluate: I/O floor of the one-day run (no SPC) vs full",
+            "seconds": round(floor["seconds"], 3),
+            "baseline_seconds": round(full["seconds"], 3),
+            "ratio": round(floor["seconds"] / full["seconds"], 4),
+            "target": "informative (open, changes, points reads and write, commit, close)",
+            "ok": True,
+            "steps_ms": floor["steps"],
+            "share_of_incremental": round(floor["seconds"] / inc["seconds"], 3),
         },
         {
             "name": "evaluate: first evaluation (auto-freeze, all signals)",

@@ -66,3 +66,30 @@ def test_drill_down_target_is_checked_at_its_window_and_the_cap_is_informative()
     assert fast_window["ok"] is True
     cap = _row("commonality: association", 1_000_000, 1.2, 10.0, of_lots=20_000)
     assert cap["ok"] is True and cap["target"].startswith("informative (20,000 lots")
+
+
+def test_io_floor_reads_and_writes_exactly_the_points_the_incremental_run_evaluates(tmp_path):
+    # the floor row is a lower bound only if it does the run's reads: the same points, not fewer
+    import shutil
+
+    import duckdb
+
+    from bench.bench_evaluate import build, io_floor, load_day
+    from warehouse import evaluate
+
+    db, days, rows = tmp_path / "w.duckdb", 6, 200_000  # every series past its baseline by the last day
+    build(db, rows, days)
+    evaluate.evaluate_warehouse(db, user="bench")
+    load_day(db, rows, days, days - 1)
+    copy = tmp_path / "floor.duckdb"
+    shutil.copy(db, copy)
+    steps = io_floor(copy)
+    run = evaluate.evaluate_warehouse(db, user="bench")
+    assert run.mode == "incremental" and run.series_recomputed == 0 and run.points > 0
+    con = duckdb.connect(str(copy), read_only=True)
+    try:
+        written = con.execute("SELECT count(*) FROM bench_floor_points").fetchall()[0][0]
+    finally:
+        con.close()
+    assert written == run.points
+    assert set(steps) == {"open", "changes", "points reads", "points write", "commit", "close"}
