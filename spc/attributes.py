@@ -7,6 +7,12 @@ series, so `spc.rules.evaluate_rules` applies the limits. Phase I estimates are 
 * p: p_i = d_i / n_i, p-bar = sum d / sum n, sigma sqrt(p-bar (1-p-bar) / n_i); np: n p-bar, sqrt(n p-bar(1-p-bar)).
 * Laney u' (Laney 2002, Quality Engineering 14(4)): z_i = (u_i - u-bar)/sqrt(u-bar/a_i), sigma_z = MR-bar(z)/d2(2),
   sigma_i = sqrt(u-bar/a_i) * sigma_z.
+* Negative-binomial probability limits (clustered defects; Stapper's gamma-Poisson model of defect
+  clustering): counts c_i ~ NB with mean u-bar a_i and variance mu_i + mu_i^2 / alpha. Limits are the
+  NB quantiles at the tails of a k-sigma normal chart (Phi(-k) each side), so the false-alarm rate of
+  rule 1 stays near nominal however skewed the counts; Laney u' corrects the spread of the z-scores but
+  not their skew. 1/alpha by the moment estimator sum((c_i - mu_i)^2 - c_i) / sum(mu_i^2) (its
+  expectation is 1/alpha); 0 (Poisson) when the counts show no extra variation.
 * Overdispersion: Poisson dispersion statistic sum (c_i - a_i u-bar)^2 / (a_i u-bar) against chi-square with
   m-1 df; u' is recommended when its p-value is below alpha (clustered defects over-alarm a plain u chart).
 """
@@ -15,8 +21,9 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import numpy as np
 import polars as pl
-from scipy.stats import chi2
+from scipy.stats import chi2, nbinom, norm, poisson
 
 from spc.factors import d2
 from spc.frames import CENTER, SERIES, SIGMA, VALUE
@@ -65,6 +72,65 @@ def laney_u_points(frame: pl.DataFrame, count: str = "count", area: str = "area_
     z = (pl.col(VALUE) - pl.col(CENTER)) / pl.col(SIGMA)
     sz = ((z - z.shift(1)).abs().mean() / d2(2)).over(_over)
     return u.with_columns(sz.alias("sigma_z")).with_columns((pl.col(SIGMA) * pl.col("sigma_z")).alias(SIGMA))
+
+
+@dataclass(frozen=True)
+class NegBinFit:
+    """Phase I estimate of a negative-binomial defect-count model with exposure (inspected area)."""
+
+    ubar: float  # defects per unit area: sum c / sum a
+    inv_alpha: float  # clustering 1/alpha (0: Poisson, no extra variation)
+    n: int  # inspections in the baseline
+
+
+def negbin_fit(counts, areas) -> NegBinFit:
+    """u-bar and the moment estimate of 1/alpha (module doc) from baseline counts and inspected areas.
+
+    >>> negbin_fit([10, 10, 10], [1.0, 1.0, 1.0]).inv_alpha   # less spread than Poisson: no clustering
+    0.0
+    """
+    c = np.asarray(counts, dtype=float)
+    a = np.asarray(areas, dtype=float)
+    if c.size < 2 or c.size != a.size:
+        raise ValueError("the negative-binomial fit needs at least 2 inspections, each with its area.")
+    if np.any(a <= 0) or np.any(c < 0):
+        raise ValueError("inspected areas must be > 0 and counts >= 0.")
+    ubar = float(c.sum() / a.sum())
+    mu = ubar * a
+    denom = float(np.sum(mu**2))
+    inv_alpha = float(np.sum((c - mu) ** 2 - c) / denom) if denom > 0 else 0.0
+    return NegBinFit(ubar, max(inv_alpha, 0.0), int(c.size))
+
+
+def negbin_count_limits(ubar, inv_alpha, areas, *, k: float = 3.0) -> tuple[np.ndarray, np.ndarray]:
+    """(lower, upper) count limits per inspection: a count above ``upper`` or below ``lower`` signals.
+
+    ``upper`` is the smallest count U with P(C <= U) >= 1 - Phi(-k), so P(C > U) <= Phi(-k); ``lower`` is
+    the smallest count L with P(C <= L) >= Phi(-k), so P(C < L) < Phi(-k) (0 when no count is that rare).
+    ``ubar`` and ``inv_alpha`` (0: Poisson) are numbers or one per area.
+    """
+    a = np.asarray(areas, dtype=float)
+    mu = np.asarray(ubar, dtype=float) * a
+    ia = np.broadcast_to(np.asarray(inv_alpha, dtype=float), a.shape)
+    tail = float(norm.sf(k))
+    lo, hi = np.empty_like(mu), np.empty_like(mu)
+    pois = ia <= 0
+    if pois.any():
+        lo[pois] = poisson.ppf(tail, mu[pois])
+        hi[pois] = poisson.ppf(1.0 - tail, mu[pois])
+    nb = ~pois
+    if nb.any():
+        alpha = 1.0 / ia[nb]
+        p = alpha / (alpha + mu[nb])
+        lo[nb] = nbinom.ppf(tail, alpha, p)
+        hi[nb] = nbinom.ppf(1.0 - tail, alpha, p)
+    return lo, hi
+
+
+def negbin_sigma(ubar: float, inv_alpha, areas) -> np.ndarray:
+    """Standard deviation of the density c / a under the model: sqrt(u-bar / a + u-bar^2 / alpha)."""
+    a = np.asarray(areas, dtype=float)
+    return np.sqrt(ubar / a + ubar**2 * np.asarray(inv_alpha, dtype=float))
 
 
 @dataclass(frozen=True)

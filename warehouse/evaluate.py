@@ -33,6 +33,7 @@ from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime
 
+import numpy as np
 import polars as pl
 
 from spc.cusum import CusumParams, evaluate_cusum
@@ -435,7 +436,13 @@ def with_limits(limits: dict[int, dict], e: PlanEntry, pts: pl.DataFrame) -> pl.
         orient="row",
     )
     out = pts.join(lim, on="series_id", how="left", maintain_order="left")
-    if e.chart in ("u", "laney_u"):
+    if e.chart == "negbin_u":
+        # the model's SD of the density at the point's area, and its probability limits (chart_signals)
+        k = float(e.params.get("k", 3.0))
+        ucl, lcl, sd = _negbin_columns(out, center="center", inv_alpha="_sz", area="area_cm2", k=k)
+        out = out.with_columns(lcl, ucl)
+        sigma = pl.when(pl.col("_n_ref").is_not_null()).then(sd).otherwise(pl.col("_sigma"))
+    elif e.chart in ("u", "laney_u"):
         # sigma of one point varies with its inspected area (lim_mod.point_sigma, row-wise)
         sigma = (
             pl.when(pl.col("_n_ref").is_not_null())
@@ -445,6 +452,16 @@ def with_limits(limits: dict[int, dict], e: PlanEntry, pts: pl.DataFrame) -> pl.
     else:
         sigma = pl.col("_sigma")
     return out.with_columns(sigma.alias("sigma")).drop("_sigma", "_n_ref", "_sz")
+
+
+def _negbin_columns(frame: pl.DataFrame, *, center: str, inv_alpha: str, area: str, k):
+    """(ucl, lcl, sigma) of negbin_u points as Polars series (``limits.negbin_point_limits``)."""
+    c = frame[center].cast(pl.Float64).to_numpy()
+    ia = frame[inv_alpha].cast(pl.Float64).fill_null(0.0).to_numpy()
+    a = frame[area].cast(pl.Float64).to_numpy()
+    lcl, ucl = lim_mod.negbin_point_limits(c, ia, a, k)
+    sd = np.sqrt(c / a + c**2 * ia)
+    return pl.Series("ucl", ucl), pl.Series("lcl", lcl), pl.Series("sigma", sd)
 
 
 def _freeze_missing(ctx: _Context, e: PlanEntry, pts: pl.DataFrame, series: list[int]) -> None:
@@ -532,43 +549,12 @@ def chart_signals(
     ew = cu = None
     if limited.height:
         frame = limited.rename({"series_id": "series"})
-        rules = _rules(e)
-        rin = (
-            frame
-            if context is None or context.height == 0
-            else pl.concat([context, frame], how="diagonal_relaxed")
-        )
-        rs = evaluate_rules(
-            rin.select(["series", "seq", "value", "center", "sigma", *pass_cols]),
-            rules,
-            passthrough=pass_cols,
-        )
-        if context is not None and context.height:
-            rs = rs.join(frame.select("series", "seq"), on=["series", "seq"], how="semi")
-        out.append(rs.with_columns(pl.lit(None, pl.Float64).alias("statistic")))
-        base = frame.select(["series", "seq", "value", "center", "sigma", *pass_cols])
-        if e.chart == "ewma":
-            p = EwmaParams(
-                lam=float(e.params["lambda"]), L=float(e.params["L"]), limits=str(e.params["limits"])
-            )
-            r = evaluate_ewma(base, p, state=state, passthrough=pass_cols)
-            out.append(
-                r.signals.rename({"value": "statistic"})
-                .rename({"point_value": "value"})
-                .with_columns(pl.col("value").alias("point_value"))
-            )
-            ew = r.state
-        if e.chart == "cusum":
-            p = CusumParams(
-                k=float(e.params["cusum_k"]), h=float(e.params["h"]), headstart=float(e.params["headstart"])
-            )
-            r = evaluate_cusum(base, p, state=state, passthrough=pass_cols)
-            out.append(
-                r.signals.rename({"value": "statistic"})
-                .rename({"point_value": "value"})
-                .with_columns(pl.col("value").alias("point_value"))
-            )
-            cu = r.state
+        if e.chart == "negbin_u":  # rule 1 on probability limits (plan validation allows no other rule)
+            beyond = frame.filter((pl.col("value") > pl.col("ucl")) | (pl.col("value") < pl.col("lcl")))
+            rule1 = beyond.select("series", "seq", pl.lit("we1").alias("rule"), "value", *pass_cols)
+            out.append(rule1.with_columns(pl.lit(None, pl.Float64).alias("statistic")))
+        else:
+            ew, cu = _rules_and_charts(e, frame, out, pass_cols, state=state, context=context)
     oos = pts.filter(
         (pl.col("lsl").is_not_null() & (pl.col("vmin") < pl.col("lsl")))
         | (pl.col("usl").is_not_null() & (pl.col("vmax") > pl.col("usl")))
@@ -610,6 +596,48 @@ def chart_signals(
         else pl.DataFrame(schema={c: pl.Int64 for c in cols})
     )
     return sig, ew, cu
+
+
+def _rules_and_charts(e: PlanEntry, frame: pl.DataFrame, out: list, pass_cols: list[str], *, state, context):
+    """Run rules, EWMA and CUSUM of limited points (``frame``, column ``series``); append their signals to
+    ``out``; return the final (ewma_state, cusum_state)."""
+    ew = cu = None
+    rules = _rules(e)
+    rin = (
+        frame
+        if context is None or context.height == 0
+        else pl.concat([context, frame], how="diagonal_relaxed")
+    )
+    rs = evaluate_rules(
+        rin.select(["series", "seq", "value", "center", "sigma", *pass_cols]),
+        rules,
+        passthrough=pass_cols,
+    )
+    if context is not None and context.height:
+        rs = rs.join(frame.select("series", "seq"), on=["series", "seq"], how="semi")
+    out.append(rs.with_columns(pl.lit(None, pl.Float64).alias("statistic")))
+    base = frame.select(["series", "seq", "value", "center", "sigma", *pass_cols])
+    if e.chart == "ewma":
+        p = EwmaParams(lam=float(e.params["lambda"]), L=float(e.params["L"]), limits=str(e.params["limits"]))
+        r = evaluate_ewma(base, p, state=state, passthrough=pass_cols)
+        out.append(
+            r.signals.rename({"value": "statistic"})
+            .rename({"point_value": "value"})
+            .with_columns(pl.col("value").alias("point_value"))
+        )
+        ew = r.state
+    if e.chart == "cusum":
+        p = CusumParams(
+            k=float(e.params["cusum_k"]), h=float(e.params["h"]), headstart=float(e.params["headstart"])
+        )
+        r = evaluate_cusum(base, p, state=state, passthrough=pass_cols)
+        out.append(
+            r.signals.rename({"value": "statistic"})
+            .rename({"point_value": "value"})
+            .with_columns(pl.col("value").alias("point_value"))
+        )
+        cu = r.state
+    return ew, cu
 
 
 def _recompute(ctx: _Context, e: PlanEntry, pts: pl.DataFrame, series: list[int]) -> None:
@@ -792,7 +820,14 @@ def _chart_point_rows(ctx: _Context, e: PlanEntry, pts: pl.DataFrame) -> pl.Data
             .then((pl.col("center") / area).sqrt() * sz)
             .otherwise(sigma)
         )
-    out = out.with_columns(sigma.alias("sigma")).with_columns(*lim_mod.point_limits(e, pl.col("_k")))
+    if e.chart == "negbin_u":
+        ucl, lcl, sd = _negbin_columns(out, center="center", inv_alpha="_sz", area="area_cm2", k=out["_k"])
+        out = out.with_columns(
+            pl.when(pl.col("_n_ref").is_not_null()).then(sd).otherwise(sigma).alias("sigma")
+        )
+        out = out.with_columns(lcl, ucl)
+    else:
+        out = out.with_columns(sigma.alias("sigma")).with_columns(*lim_mod.point_limits(e, pl.col("_k")))
     types = schema.polars_schema(schema.CHART_POINTS)
     return out.select(pl.col(c).cast(t) for c, t in types.items())
 
@@ -986,7 +1021,14 @@ def series_points_from_facts(con, *, series_id: int) -> pl.DataFrame:
             pl.lit(lim["center"]).alias("center"),
             pl.Series("sigma", sigma),
             pl.lit(lim["version"], pl.Int64).alias("limit_version"),
-        ).with_columns(*lim_mod.point_limits(e, k))
+        )
+        if e.chart == "negbin_u" and lim["n_ref"] is not None:
+            lcl, ucl = lim_mod.negbin_point_limits(
+                lim["center"], lim["overdispersion"] or 0.0, pts["area_cm2"].cast(pl.Float64).to_numpy(), k
+            )
+            pts = pts.with_columns(pl.Series("lcl", lcl), pl.Series("ucl", ucl))
+        else:
+            pts = pts.with_columns(*lim_mod.point_limits(e, k))
     return pts.select(cols)
 
 

@@ -21,6 +21,9 @@ Sigma of the charted statistic (the level that is plotted), all computed by ``sp
       mean moving range / d2(2); NIST/SEMATECH e-Handbook §6.3.2.2).
     * u charts: ``spc.attributes.u_points`` (ū = Σ defects / Σ area, sigma sqrt(ū/a_i)); Laney u′:
       ``spc.attributes.laney_u_points`` (sigma times σ_z; Laney 2002, Quality Engineering 14(4)).
+    * negbin_u: ū and the clustering 1/α of a negative-binomial count model (``spc.attributes.negbin_fit``,
+      kept as the version's ``overdispersion``); each point's limits are the model's count quantiles at
+      its inspected area over that area (``negbin_point_limits``), its sigma the model's SD of the density.
 """
 
 from __future__ import annotations
@@ -30,12 +33,12 @@ from datetime import datetime
 import numpy as np
 import polars as pl
 
-from spc.attributes import laney_u_points, u_points
+from spc.attributes import laney_u_points, negbin_count_limits, negbin_fit, negbin_sigma, u_points
 from spc.shewhart import individuals_limits
 from spc.variance import nested_components
 from warehouse import schema
 from warehouse.errors import LotlineError
-from warehouse.plan import DEFECT_STATISTICS, MIN_BASELINE, PlanEntry
+from warehouse.plan import DEFECT_CHARTS, DEFECT_STATISTICS, MIN_BASELINE, PlanEntry
 
 AUTO_USER = "lotline-auto"
 
@@ -85,7 +88,20 @@ def estimate_limits(e: PlanEntry, base: pl.DataFrame, sites: pl.DataFrame | None
         "baseline_from": base["point_at"].min(),
         "baseline_to": base["point_at"].max(),
     }
-    if e.chart in ("u", "laney_u") and e.statistic in DEFECT_STATISTICS:
+    if e.chart == "negbin_u" and e.statistic in DEFECT_STATISTICS:
+        area = base["area_cm2"].cast(pl.Float64).to_numpy()
+        fit = negbin_fit(base["n"].cast(pl.Float64).to_numpy(), area)
+        n_ref = float(area.mean())
+        lo, hi = negbin_count_limits(fit.ubar, fit.inv_alpha, [n_ref], k=k)
+        out.update(
+            center=fit.ubar,
+            sigma=float(negbin_sigma(fit.ubar, fit.inv_alpha, [n_ref])[0]),
+            sigma_level="count",
+            n_ref=n_ref,
+            sigma_source="negative_binomial" if fit.inv_alpha > 0 else "poisson",
+            overdispersion=fit.inv_alpha,
+        )
+    elif e.chart in ("u", "laney_u") and e.statistic in DEFECT_STATISTICS:
         frame = base.select(pl.lit("s").alias("series"), pl.col("n").alias("count"), "area_cm2")
         pts = laney_u_points(frame) if e.chart == "laney_u" else u_points(frame)
         ubar = float(pts["center"][0])
@@ -118,6 +134,9 @@ def estimate_limits(e: PlanEntry, base: pl.DataFrame, sites: pl.DataFrame | None
             expected="> 0",
             fix="choose a baseline with real process variation",
         )
+    if e.chart == "negbin_u":  # the limits at the mean inspected area
+        out.update(lcl=float(lo[0]) / n_ref, ucl=float(hi[0]) / n_ref)
+        return out
     lcl = out["center"] - k * out["sigma"]
     if e.statistic in DEFECT_STATISTICS:
         lcl = max(lcl, 0.0)
@@ -143,7 +162,10 @@ def _nested_sigma(e: PlanEntry, v: np.ndarray, sites: pl.DataFrame | None) -> di
 
 def point_sigma(e: PlanEntry, lim: dict, pts: pl.DataFrame) -> np.ndarray:
     """Sigma of each point under a limit version (varies with inspected area on u charts)."""
-    if lim["n_ref"] is not None and e.chart in ("u", "laney_u"):
+    if lim["n_ref"] is not None and e.chart == "negbin_u":
+        area = pts["area_cm2"].cast(pl.Float64).to_numpy()
+        return negbin_sigma(lim["center"], lim["overdispersion"] or 0.0, area)
+    if lim["n_ref"] is not None and e.chart in DEFECT_CHARTS:
         sz = lim["overdispersion"] or 1.0
         area = pts["area_cm2"].cast(pl.Float64).to_numpy()
         return np.sqrt(lim["center"] / area) * sz
@@ -160,6 +182,25 @@ def point_limits(e: PlanEntry, k: float | pl.Expr) -> tuple[pl.Expr, pl.Expr]:
     k = k if isinstance(k, pl.Expr) else pl.lit(float(k))
     lcl = defect_floor(e, pl.col("center") - k * pl.col("sigma"))
     return lcl.alias("lcl"), (pl.col("center") + k * pl.col("sigma")).alias("ucl")
+
+
+def negbin_point_limits(center, inv_alpha, area, k) -> tuple[np.ndarray, np.ndarray]:
+    """(lcl, ucl) densities of negbin_u points: the count limits at each point's inspected area over that
+    area (``spc.attributes.negbin_count_limits``). A point signals when its density lies above ``ucl`` or
+    below ``lcl``: its count is then beyond the count limit, because both share the division by the area.
+    Arguments are one value per point (arrays) or one for all."""
+    area = np.asarray(area, dtype=float)
+    center = np.broadcast_to(np.asarray(center, dtype=float), area.shape)
+    inv_alpha = np.broadcast_to(np.nan_to_num(np.asarray(inv_alpha, dtype=float)), area.shape)
+    k = np.broadcast_to(np.asarray(k, dtype=float), area.shape)
+    lcl, ucl = np.full(area.shape, np.nan), np.full(area.shape, np.nan)
+    ok = np.isfinite(center) & np.isfinite(area) & (area > 0)
+    # one quantile call per distinct limit width (k is one value per limit version)
+    for kk in np.unique(k[ok]):
+        m = ok & (k == kk)
+        lo, hi = negbin_count_limits(center[m], inv_alpha[m], area[m], k=float(kk))
+        lcl[m], ucl[m] = lo / area[m], hi / area[m]
+    return lcl, ucl
 
 
 def defect_floor(e: PlanEntry, lcl: pl.Expr) -> pl.Expr:

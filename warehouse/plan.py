@@ -55,7 +55,10 @@ SPLIT_KEYS = ("process_tool", "chamber", "metrology_tool", "product")
 """process_tool/chamber come from the lot's process history at the entry's ``step``; metrology_tool is the
 measuring (or inspecting) tool."""
 
-CHART_TYPES = ("individuals", "xbar_s", "xbar_r", "ewma", "cusum", "u", "laney_u")
+CHART_TYPES = ("individuals", "xbar_s", "xbar_r", "ewma", "cusum", "u", "laney_u", "negbin_u")
+DEFECT_CHARTS = ("u", "laney_u", "negbin_u")
+"""Charts of defect densities (points sized by inspected area). ``negbin_u`` draws negative-binomial
+probability limits (``spc.attributes.negbin_count_limits``) and runs rule 1 alone."""
 
 CHART_PARAMS: dict[str, dict[str, Any]] = {
     "individuals": {"k": 3.0},
@@ -65,11 +68,13 @@ CHART_PARAMS: dict[str, dict[str, Any]] = {
     "cusum": {"k": 3.0, "cusum_k": 0.5, "h": 5.0, "headstart": 0.0},
     "u": {"k": 3.0},
     "laney_u": {"k": 3.0},
+    "negbin_u": {"k": 3.0},
 }
 """Parameters per chart type with their defaults. ``k``: Shewhart limit width in sigmas (rule we1 uses 3);
 ``lambda``/``L``: EWMA weight and limit width (NIST/SEMATECH e-Handbook §6.3.2.4); ``limits``: 'exact'
 (time-varying) or 'asymptotic'; ``cusum_k``/``h``/``headstart``: CUSUM reference value, decision interval and
-fast-initial-response start, in sigmas (e-Handbook §6.3.2.3)."""
+fast-initial-response start, in sigmas (e-Handbook §6.3.2.3). On ``negbin_u`` ``k`` sets the tail
+probability of each limit, that of a k-sigma normal limit (0.135 % at 3)."""
 
 SEVERITIES = ("low", "medium", "high", "critical")
 DEFAULT_RULES = ("we1",)
@@ -483,12 +488,22 @@ def _check_entry(c: _Checker, entry, i: int, defaults: dict, seen: dict[str, int
     if "chart" in entry:
         chart = c.string(entry["chart"], (*where, "chart"), "chart", choices=CHART_TYPES)
     if chart and stat:
-        if chart in ("u", "laney_u") and stat not in DEFECT_STATISTICS:
+        if chart in DEFECT_CHARTS and stat not in DEFECT_STATISTICS:
             c.err(
                 (*where, "chart"),
                 f'chart "{chart}" needs a defect statistic',
                 found=stat,
                 expected=" or ".join(DEFECT_STATISTICS),
+            )
+        rules = entry.get("rules", defaults.get("rules", list(DEFAULT_RULES)))
+        if chart == "negbin_u" and isinstance(rules, list) and any(r != "we1" for r in rules):
+            c.err(
+                (*where, "rules") if "rules" in entry else (*where, "chart"),
+                'chart "negbin_u" runs rule 1 alone (its probability limits are not symmetric, so run rules do '
+                "not apply)",
+                found=", ".join(map(str, rules)),
+                expected='rules = ["we1"]',
+                fix='set rules = ["we1"] on this chart, or chart it as "laney_u" to use run rules',
             )
         if chart in ("xbar_s", "xbar_r") and stat not in ("wafer_mean", "lot_mean"):
             c.err(
@@ -585,10 +600,12 @@ def _build(text: str, path: str) -> Plan:
 
 IDENTITY_FIELDS = ("layer", "parameter", "product", "stage", "sample_kind", "statistic", "step", "chart")
 """Fields that define what a chart's series and frozen limits mean; changing one needs a new chart name
-(the chart type only between families: variables charts and u / u' charts keep limits differently)."""
+(the chart type only between families: variables charts, u / u' charts and negbin_u charts keep limits differently)."""
 
 
 def _chart_family(chart: str) -> str:
+    if chart == "negbin_u":
+        return "negative-binomial"  # its limit versions keep 1/alpha where u' keeps sigma_z
     return "attribute" if chart in ("u", "laney_u") else "variables"
 
 

@@ -45,7 +45,7 @@ def test_plan_load_malformed_prints_location_and_exits_1(tmp_path):
     assert r.exit_code == 1
     assert r.output == (
         f'Error: {bad}:5:9: chart "ewmaa" is not known (expected one of individuals, xbar_s, xbar_r, ewma, cusum, u, '
-        'laney_u).\n  Fix: did you mean "ewma"? Use one of the listed values.\n'
+        'laney_u, negbin_u).\n  Fix: did you mean "ewma"? Use one of the listed values.\n'
     )
     assert not (tmp_path / "w.duckdb").exists()
 

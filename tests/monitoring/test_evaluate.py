@@ -7,6 +7,7 @@ from datetime import datetime, timedelta
 import numpy as np
 import polars as pl
 import pytest
+from scipy import stats
 
 from tests.monitoring.conftest import PLAN, load, make_lots, site_rows
 from tests.monitoring.facts import insert_facts
@@ -429,3 +430,47 @@ def test_points_query_without_a_matching_spec_row_leaves_out_the_spec_join_and_r
             assert joined.height > 0
             assert not points.has_spec_rows(con, e)
             assert points.read_points(con, e).equals(joined)
+
+
+def test_evaluate_negbin_u_freezes_the_count_model_and_signals_beyond_its_probability_limits(tmp_path):
+    path = tmp_path / "wh.duckdb"
+    rng = np.random.default_rng(8)
+    rows = []
+    for i in range(60):
+        area = float(rng.uniform(600, 679))
+        count = int(rng.negative_binomial(1.0, 1.0 / (1.0 + 0.1 * area)))  # clustered: alpha = 1
+        rows.append(_inspection(i, area, 2500 if i == 40 else count))
+    with store.open_warehouse(path, create=True) as con:
+        store_plan(con, parse_plan(DEFECT_PLAN.replace("laney_u", "negbin_u"), path="p.toml"), user="t")
+        insert_facts(con, schema.INSPECTIONS, rows[:50])
+    evaluate.evaluate_warehouse(path, user="t")
+    with store.open_warehouse(path) as con:
+        insert_facts(con, schema.INSPECTIONS, rows[50:])
+    evaluate.evaluate_warehouse(path, user="t")  # incremental: appends the last 10 points
+    lim = _limits(path)
+    c = np.array([r["defect_count"] for r in rows[:20]], dtype=float)
+    a = np.array([r["inspected_area_cm2"] for r in rows[:20]])
+    ubar = c.sum() / a.sum()  # NIST/SEMATECH e-Handbook §6.3.3.2 (u charts)
+    mu = ubar * a
+    inv_alpha = max(0.0, float(np.sum((c - mu) ** 2 - c) / np.sum(mu**2)))  # moment estimator of 1/alpha
+    assert lim["center"][0] == pytest.approx(ubar)
+    assert lim["overdispersion"][0] == pytest.approx(inv_alpha)
+    assert lim["sigma_source"][0] == "negative_binomial"
+    with store.open_warehouse(path, read_only=True) as con:
+        shown = queries.series_points(con, series_id=1)
+        facts = evaluate.series_points_from_facts(con, series_id=1)
+    areas = np.array([r["inspected_area_cm2"] for r in rows])
+    # each point's limits: negative-binomial quantiles at the 3-sigma normal tails (0.135 % each side, NIST/
+    # SEMATECH e-Handbook §1.3.6.7.1) of its own area, as densities (scipy.stats: n = alpha, p = alpha / (alpha + mu))
+    tail, alpha = stats.norm.sf(3.0), 1.0 / inv_alpha
+    p = alpha / (alpha + ubar * areas)
+    assert shown["ucl"].to_list() == pytest.approx((stats.nbinom.ppf(1 - tail, alpha, p) / areas).tolist())
+    assert shown["lcl"].to_list() == pytest.approx((stats.nbinom.ppf(tail, alpha, p) / areas).tolist())
+    assert facts.select("lcl", "ucl", "sigma").equals(shown.select("lcl", "ucl", "sigma"))
+    sig = _signals(path)
+    beyond = shown.filter((pl.col("value") > pl.col("ucl")) | (pl.col("value") < pl.col("lcl")))
+    assert sorted(sig["lot_id"].to_list()) == sorted(beyond["lot_id"].to_list())  # one wafer per lot
+    assert "D040" in sig["lot_id"].to_list() and set(sig["rule"].to_list()) == {"we1"}
+    before = sig.select("lot_id", "rule", "value").sort("lot_id")
+    evaluate.evaluate_warehouse(path, full=True, user="t")  # incremental == full
+    assert _signals(path).select("lot_id", "rule", "value").sort("lot_id").equals(before)

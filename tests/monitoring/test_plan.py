@@ -85,6 +85,14 @@ CASES = [
         "adder_density).",
     ),
     (
+        "run_rules_on_negbin_u",
+        '[[chart]]\nname = "d0"\nselect = { layer = "M1_INSP" }\nstatistic = "defect_density"\n'
+        'chart = "negbin_u"\nrules = ["we1", "we2"]\n',
+        'plan.toml:6:9: chart "negbin_u" runs rule 1 alone (its probability limits are not symmetric, so run '
+        'rules do not apply) (found "we1, we2", expected rules = ["we1"]).\n  Fix: set rules = ["we1"] on '
+        'this chart, or chart it as "laney_u" to use run rules.',
+    ),
+    (
         "baseline_too_small",
         H + 'statistic = "wafer_mean"\nchart = "ewma"\nbaseline = { first = 3 }\n',
         "plan.toml:6:22: baseline first must be a whole number of subgroups (found 3, expected an integer >= 5).",
@@ -226,7 +234,9 @@ def test_demo_fab_plan_is_valid_and_covers_every_measured_layer():
     assert {m.name for m in MEASURED_LAYERS} <= {c[0] for c in covered}
     insp = {s.name for s in INSPECTION_STEPS}
     assert all(any(e.is_defect and e.matches(layer=s, parameter="total") for e in plan.entries) for s in insp)
-    assert {e.chart for e in plan.entries} >= {"ewma", "cusum", "laney_u", "individuals"}
+    # defect charts use negative-binomial limits: the demo's counts are clustered (alpha 0.8-1.2), on
+    # which u' alarms far above its nominal rate (docs/monitoring.md)
+    assert {e.chart for e in plan.entries} >= {"ewma", "cusum", "negbin_u", "individuals"}
 
 
 def test_store_plan_refuses_an_entry_that_changes_its_statistic_under_the_same_name(tmp_path):

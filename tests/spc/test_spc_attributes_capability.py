@@ -89,3 +89,74 @@ def test_evaluate_capability_refuses_few_points_and_warns_non_normal():
     c = evaluate_capability(skewed, usl=10.0)
     assert c.cp is None and any("non-normal" in w for w in c.warnings)
     assert any("only 25 values" in w for w in c.warnings)
+
+
+# ------------------------------------------------------------------ negative-binomial probability limits
+
+
+def _nb_pmf(c: int, mu: float, inv_alpha: float) -> float:
+    """P(C = c) of the gamma-Poisson (negative binomial) count with mean mu and variance mu + inv_alpha mu^2,
+    written from its textbook form Gamma(c + a) / (Gamma(a) c!) p^a (1 - p)^c, a = 1/inv_alpha,
+    p = a / (a + mu) (Johnson, Kotz & Kemp, Univariate Discrete Distributions, ch. 5, from memory);
+    the Poisson pmf e^-mu mu^c / c! when inv_alpha is 0. Independent of scipy."""
+    if inv_alpha == 0:
+        return math.exp(-mu + c * math.log(mu) - math.lgamma(c + 1))
+    a = 1.0 / inv_alpha
+    p = a / (a + mu)
+    return math.exp(
+        math.lgamma(c + a) - math.lgamma(a) - math.lgamma(c + 1) + a * math.log(p) + c * math.log1p(-p)
+    )
+
+
+@pytest.mark.parametrize(
+    ("ubar", "inv_alpha", "area"),
+    [(0.1, 1.0, 679.0), (0.12, 1.25, 650.0), (0.05, 0.5, 300.0), (0.1, 0.0, 679.0), (0.02, 0.0, 150.0)],
+)
+def test_negbin_count_limits_are_the_smallest_counts_with_tails_at_most_the_3_sigma_normal_tail(
+    ubar, inv_alpha, area
+):
+    from spc.attributes import negbin_count_limits
+
+    tail = stats.norm.sf(3.0)  # one-sided normal tail beyond 3 sigma, 1 - 0.99865 (NIST/SEMATECH e-Handbook §1.3.6.7.1)
+    lo, hi = negbin_count_limits(ubar, inv_alpha, [area], k=3.0)
+    lo, hi = int(lo[0]), int(hi[0])
+    mu = ubar * area
+    cdf = np.cumsum([_nb_pmf(c, mu, inv_alpha) for c in range(hi + 1)])
+    assert 1.0 - cdf[hi] <= tail + 1e-12 < 1.0 - cdf[hi - 1]  # P(C > U) <= tail < P(C > U - 1)
+    assert lo == 0 or (cdf[lo - 1] < tail <= cdf[lo] + 1e-12)  # P(C < L) < tail <= P(C <= L)
+
+
+def test_negbin_fit_recovers_the_clustering_of_simulated_counts():
+    # simulation truth: counts drawn gamma-Poisson with alpha = 0.8 (1/alpha = 1.25) and u = 0.12 /cm2
+    # over areas of 600-680 cm2; the moment estimator's expectation is 1/alpha (module doc)
+    from spc.attributes import negbin_fit
+
+    rng = np.random.default_rng(11)
+    area = rng.uniform(600.0, 680.0, 40_000)
+    mu = 0.12 * area
+    counts = rng.negative_binomial(0.8, 0.8 / (0.8 + mu))
+    fit = negbin_fit(counts, area)
+    assert fit.ubar == pytest.approx(0.12, rel=0.02)
+    assert fit.inv_alpha == pytest.approx(1.25, rel=0.05)
+    pois = negbin_fit(rng.poisson(mu), area)  # no clustering: about 0
+    assert pois.inv_alpha < 0.01
+
+
+def test_on_clustered_counts_negbin_limits_keep_the_nominal_rate_where_laney_u_prime_over_alarms():
+    # the case the chart exists for (notes/domain.md: clustered counts over-alarm plain u charts); truth
+    # from simulation: in-control gamma-Poisson counts, alpha = 1, about 68 defects a wafer
+    from spc.attributes import laney_u_points, negbin_count_limits, negbin_fit
+
+    rng = np.random.default_rng(5)
+    area = rng.uniform(600.0, 680.0, 200_000)
+    counts = rng.negative_binomial(1.0, 1.0 / (1.0 + 0.1 * area))
+    base = slice(0, 2_000)
+    fit = negbin_fit(counts[base], area[base])
+    lo, hi = negbin_count_limits(fit.ubar, fit.inv_alpha, area)
+    nb_rate = float(np.mean((counts > hi) | (counts < lo)))
+    laney = laney_u_points(pl.DataFrame({"series": "s", "count": counts[base], "area_cm2": area[base]}))
+    ubar, sz = float(laney["center"][0]), float(laney["sigma_z"][0])
+    ucl = ubar + 3.0 * sz * np.sqrt(ubar / area)
+    laney_rate = float(np.mean(counts / area > ucl))
+    assert nb_rate < 0.005  # 2 x 0.135 % nominal, with the baseline's estimation error
+    assert laney_rate > 4 * nb_rate  # an exponential-like tail beyond mean + 3 SD: about e^-4 = 1.8 %
