@@ -674,6 +674,7 @@ def plan_load_cmd(file, db, check: bool):
         plan = read_plan(file)
         if check:
             click.echo(f"{file}: ok, {len(plan.entries)} chart(s)")
+            _echo_plan_advice(plan)
             return
         with store.open_warehouse(store.resolve_db_path(db), create=True) as con, store.transaction(con):
             version = store_plan(con, plan, user=_user_name())
@@ -683,6 +684,16 @@ def plan_load_cmd(file, db, check: bool):
     click.echo(
         f"loaded plan {plan.name!r} from {file} as plan version {version}: {len(plan.entries)} chart(s)"
     )
+    _echo_plan_advice(plan)
+
+
+def _echo_plan_advice(plan) -> None:
+    """One line per advisory note of the plan's entries (``warehouse.plan.plan_advice``)."""
+    from warehouse.plan import plan_advice
+
+    for e in plan.entries:
+        for note in plan_advice(e):
+            click.echo(f"  note: {e.name}: {note}")
 
 
 @plan_group.command("show")
@@ -719,6 +730,8 @@ def plan_show_cmd(db, as_json: bool):
             f"(in-control ARL {arl['rules']}{extra}; combined ~{arl['combined']}); severity {r['severity']}"
             + (f"; excursion gap {r['excursion_gap']}" if r["excursion_gap"] != DEFAULT_EXCURSION_GAP else "")
         )
+        for note in r["advice"]:
+            click.echo(f"    note: {note}")
 
 
 @cli.group("limits")

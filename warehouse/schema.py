@@ -493,7 +493,10 @@ CHART_PLAN = Table(
         ),
         Column("step", STRING, doc="Route step whose process tool/chamber made the layer (for tool splits)"),
         Column(
-            "chart_type", STRING, nullable=False, doc="individuals, xbar_s, xbar_r, ewma, cusum, u, laney_u, negbin_u"
+            "chart_type",
+            STRING,
+            nullable=False,
+            doc="individuals, xbar_s, xbar_r, ewma, cusum, u, laney_u, negbin_u",
         ),
         Column(
             "params_json",

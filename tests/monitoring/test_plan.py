@@ -6,6 +6,8 @@ or value), not taken from the parser's output.
 
 from __future__ import annotations
 
+import numpy as np
+import polars as pl
 import pytest
 
 from warehouse.errors import ConfigError
@@ -262,3 +264,42 @@ def test_store_plan_refuses_an_entry_that_changes_its_statistic_under_the_same_n
         'definition (found "wafer_sd", expected wafer_mean as in plan version 2).\n'
         "  Fix: give the changed chart a new name (the old one's history stays), or keep the old definition."
     )
+
+
+def test_plan_advice_notes_run_rules_ewma_and_cusum_on_wafer_level_points_only():
+    from warehouse.plan import plan_advice
+
+    def entry(statistic, chart, rules):
+        text = (
+            f'[[chart]]\nname = "m1"\nselect = {{ layer = "M1_DEV", parameter = "cd_mid" }}\n'
+            f'statistic = "{statistic}"\nchart = "{chart}"\nrules = {rules}\n'
+        )
+        return parse_plan(text, path="p.toml").entries[0]
+
+    assert "we2 on wafer_mean points" in plan_advice(entry("wafer_mean", "individuals", '["we1", "we2"]'))[0]
+    assert plan_advice(entry("wafer_mean", "ewma", '["we1"]'))[0].startswith("EWMA on wafer_mean points")
+    assert plan_advice(entry("lot_mean", "individuals", '["we1", "we2"]')) == []
+    assert plan_advice(entry("wafer_mean", "individuals", '["we1"]')) == []
+
+
+def test_wafer_means_of_nested_lots_make_rule_we2_alarm_far_above_its_in_control_rate():
+    # why the advice: simulated in-control nested data (lot effect sd 1, wafer effect sd 0.5, 3 wafers a
+    # lot), each point standardised by its true total sd; independent points alarm on we2 at 1/ARL with
+    # ARL = 511 (our spc.arl Markov chain agrees with a direct simulation of independent normals, 0.21 %)
+    from spc.rules import evaluate_rules, rule_params
+
+    rng = np.random.default_rng(4)
+    lots, wafers = 40_000, 3
+    lot_eff = np.repeat(rng.normal(0, 1.0, lots), wafers)
+    wafer_mean = lot_eff + rng.normal(0, 0.5, lots * wafers)
+    sd_w, sd_l = np.sqrt(1.0 + 0.25), np.sqrt(1.0 + 0.25 / wafers)
+    lot_mean = wafer_mean.reshape(lots, wafers).mean(axis=1)
+
+    def rate(values, sd):
+        frame = pl.DataFrame(
+            {"series": 1, "seq": np.arange(values.size), "value": values, "center": 0.0, "sigma": sd}
+        )
+        return evaluate_rules(frame, [rule_params("we2")]).height / values.size
+
+    assert rate(wafer_mean, sd_w) > 3 * rate(lot_mean, sd_l)
+    assert rate(lot_mean, sd_l) == pytest.approx(1 / 511, rel=0.25)
