@@ -117,7 +117,9 @@ def test_negbin_count_limits_are_the_smallest_counts_with_tails_at_most_the_3_si
 ):
     from spc.attributes import negbin_count_limits
 
-    tail = stats.norm.sf(3.0)  # one-sided normal tail beyond 3 sigma, 1 - 0.99865 (NIST/SEMATECH e-Handbook §1.3.6.7.1)
+    tail = stats.norm.sf(
+        3.0
+    )  # one-sided normal tail beyond 3 sigma, 1 - 0.99865 (NIST/SEMATECH e-Handbook §1.3.6.7.1)
     lo, hi = negbin_count_limits(ubar, inv_alpha, [area], k=3.0)
     lo, hi = int(lo[0]), int(hi[0])
     mu = ubar * area
