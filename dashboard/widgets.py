@@ -192,3 +192,17 @@ def nothing(message: str = "No data found.") -> None:
     """The normal empty path: say so and stop the page."""
     st.info(message)
     st.stop()
+
+
+def defect_limits_note(lim: dict) -> str:
+    """How a defect chart's limits are drawn: at the baseline's mean inspected area above, per point below."""
+    if lim["sigma_source"] == "negative_binomial":
+        model = f"negative-binomial count model, clustering 1/α = {lim['overdispersion']:.3g}"
+    elif lim["sigma_source"] == "laney_u_prime":
+        model = f"Laney u′, σ_z = {lim['overdispersion']:.3g}"
+    else:
+        model = "Poisson count model"
+    return (
+        f"Limits above are those of a wafer of the baseline's mean inspected area ({lim['n_ref']:.4g} cm²); "
+        f"each point's limits follow its own area ({model})."
+    )

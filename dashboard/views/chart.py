@@ -127,7 +127,7 @@ def main() -> None:
             f"frozen {lim['frozen_at']} by {lim['frozen_by']} ({lim['reason']})."
         )
         if lim["n_ref"] is not None:
-            st.caption(_defect_limits_note(lim))
+            st.caption(widgets.defect_limits_note(lim))
     else:
         st.info("No frozen limits for this series yet.")
     if spec:
@@ -144,15 +144,3 @@ def main() -> None:
 
 
 main()
-
-
-def _defect_limits_note(lim: dict) -> str:
-    """How a defect chart's limits are drawn: at the baseline's mean inspected area above, per point below."""
-    model = {
-        "negative_binomial": f"negative-binomial count model, clustering 1/α = {lim['overdispersion']:.3g}",
-        "laney_u_prime": f"Laney u′, σ_z = {lim['overdispersion']:.3g}",
-    }.get(lim["sigma_source"], "Poisson count model")
-    return (
-        f"Limits above are those of a wafer of the baseline's mean inspected area ({lim['n_ref']:.4g} cm²); "
-        f"each point's limits follow its own area ({model})."
-    )

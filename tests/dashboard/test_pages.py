@@ -333,3 +333,14 @@ def test_health_page_status_filter_shows_failed_files_only(fixture_db):
     assert not at.exception
     log = table_with(at, "file_id", "status")
     assert log["status"].to_list() == ["failed"]
+
+
+def test_defect_chart_limits_note_names_the_count_model_and_survives_a_poisson_version():
+    from dashboard.widgets import defect_limits_note
+
+    base = {"n_ref": 678.87, "overdispersion": 0.903, "sigma_source": "negative_binomial"}
+    assert "clustering 1/α = 0.903" in defect_limits_note(base)
+    assert "678.9 cm²" in defect_limits_note(base)
+    assert "σ_z = 5.76" in defect_limits_note({**base, "sigma_source": "laney_u_prime", "overdispersion": 5.76})
+    # a plain u chart (or a negbin_u baseline without extra variation) keeps no overdispersion
+    assert "Poisson count model" in defect_limits_note({**base, "sigma_source": "poisson", "overdispersion": None})
