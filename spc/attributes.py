@@ -127,10 +127,12 @@ def negbin_count_limits(ubar, inv_alpha, areas, *, k: float = 3.0) -> tuple[np.n
     return lo, hi
 
 
-def negbin_sigma(ubar: float, inv_alpha, areas) -> np.ndarray:
-    """Standard deviation of the density c / a under the model: sqrt(u-bar / a + u-bar^2 / alpha)."""
+def negbin_sigma(ubar, inv_alpha, areas) -> np.ndarray:
+    """Standard deviation of the density c / a under the model: sqrt(u-bar / a + u-bar^2 / alpha) (arguments
+    are numbers or one per area)."""
     a = np.asarray(areas, dtype=float)
-    return np.sqrt(ubar / a + ubar**2 * np.asarray(inv_alpha, dtype=float))
+    u = np.asarray(ubar, dtype=float)
+    return np.sqrt(u / a + u**2 * np.asarray(inv_alpha, dtype=float))
 
 
 @dataclass(frozen=True)

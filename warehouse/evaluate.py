@@ -33,9 +33,9 @@ from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime
 
-import numpy as np
 import polars as pl
 
+from spc.attributes import negbin_sigma
 from spc.cusum import CusumParams, evaluate_cusum
 from spc.ewma import EwmaParams, evaluate_ewma
 from spc.rules import BeyondLimits, context_points, evaluate_rules, rule_params
@@ -460,8 +460,7 @@ def _negbin_columns(frame: pl.DataFrame, *, center: str, inv_alpha: str, area: s
     ia = frame[inv_alpha].cast(pl.Float64).fill_null(0.0).to_numpy()
     a = frame[area].cast(pl.Float64).to_numpy()
     lcl, ucl = lim_mod.negbin_point_limits(c, ia, a, k)
-    sd = np.sqrt(c / a + c**2 * ia)
-    return pl.Series("ucl", ucl), pl.Series("lcl", lcl), pl.Series("sigma", sd)
+    return pl.Series("ucl", ucl), pl.Series("lcl", lcl), pl.Series("sigma", negbin_sigma(c, ia, a))
 
 
 def _freeze_missing(ctx: _Context, e: PlanEntry, pts: pl.DataFrame, series: list[int]) -> None:
