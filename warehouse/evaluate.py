@@ -619,24 +619,26 @@ def _rules_and_charts(e: PlanEntry, frame: pl.DataFrame, out: list, pass_cols: l
     if e.chart == "ewma":
         p = EwmaParams(lam=float(e.params["lambda"]), L=float(e.params["L"]), limits=str(e.params["limits"]))
         r = evaluate_ewma(base, p, state=state, passthrough=pass_cols)
-        out.append(
-            r.signals.rename({"value": "statistic"})
-            .rename({"point_value": "value"})
-            .with_columns(pl.col("value").alias("point_value"))
-        )
+        out.append(_statistic_signals(r.signals))
         ew = r.state
     if e.chart == "cusum":
         p = CusumParams(
             k=float(e.params["cusum_k"]), h=float(e.params["h"]), headstart=float(e.params["headstart"])
         )
         r = evaluate_cusum(base, p, state=state, passthrough=pass_cols)
-        out.append(
-            r.signals.rename({"value": "statistic"})
-            .rename({"point_value": "value"})
-            .with_columns(pl.col("value").alias("point_value"))
-        )
+        out.append(_statistic_signals(r.signals))
         cu = r.state
     return ew, cu
+
+
+def _statistic_signals(signals: pl.DataFrame) -> pl.DataFrame:
+    """EWMA / CUSUM signals in the run's signal columns: the chart statistic as ``statistic``, the point's
+    own value as ``value``."""
+    return (
+        signals.rename({"value": "statistic"})
+        .rename({"point_value": "value"})
+        .with_columns(pl.col("value").alias("point_value"))
+    )
 
 
 def _recompute(ctx: _Context, e: PlanEntry, pts: pl.DataFrame, series: list[int]) -> None:
